@@ -1,0 +1,30 @@
+# Every target sets itself up: a fresh clone needs nothing but Python 3.10+.
+PY ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench setup clean
+
+$(STAMP): pyproject.toml
+	@test -x $(BIN)/python || $(PY) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	@touch $(STAMP)
+
+setup: $(STAMP)
+
+## Run the live dashboard on a session the simulator writes in real time.
+demo: $(STAMP)
+	$(BIN)/qcmon demo
+
+## Run the whole test suite.
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+## Speed figures (printed, never asserted).
+bench: $(STAMP)
+	$(BIN)/python bench/run_all.py
+
+clean:
+	rm -rf $(VENV) .pytest_cache .hypothesis

@@ -1,0 +1,3 @@
+from qcmon.cli import main
+
+raise SystemExit(main())
