@@ -1,0 +1,7 @@
+"""Terminal dashboard of a live watch (textual)."""
+
+from __future__ import annotations
+
+from qcmon.dashboard.app import QcmonApp, run_dashboard
+
+__all__ = ["QcmonApp", "run_dashboard"]
