@@ -402,14 +402,16 @@ async def test_window_key_cycles_the_plot_window():
         await finish(pilot, app, monitor)
 
 
-async def test_help_shows_keys_and_caution():
-    app, monitor = make_app()
+@pytest.mark.parametrize("caution", [PROFILE.caution, ""])
+async def test_help_shows_keys_and_caution(caution):
+    profile = FakeProfile(caution=caution, limits=PROFILE.limits)
+    app, monitor = make_app(script(0, 20), profile=profile)
     async with app.run_test(size=(80, 24)) as pilot:
         await replayed(pilot, app, monitor)
         await pilot.press("question_mark")
         await until(pilot, lambda: isinstance(app.screen, HelpScreen), "help")
-        assert str(app.screen.query_one("#caution").content) == CAUTION
-        assert str(app.screen.query_one("#profile-caution").content) == PROFILE.caution
+        # The profile's caution on laser power and animal welfare; a general one when it has none.
+        assert str(app.screen.query_one("#caution").content) == (caution or CAUTION)
         await pilot.press("escape")
         await until(pilot, lambda: not isinstance(app.screen, HelpScreen), "help to close")
         await finish(pilot, app, monitor)
@@ -428,22 +430,27 @@ async def test_watch_ending_by_itself_keeps_the_dashboard_until_quit():
     assert app.return_value == monitor.result
 
 
-@pytest.mark.parametrize("size", [(80, 24), (200, 50), (40, 12)])
-async def test_layout_survives_sizes_and_resize(size):
+async def test_layout_survives_sizes_and_resize():
     app, monitor = make_app()
-    async with app.run_test(size=size) as pilot:
+    async with app.run_test(size=(80, 24)) as pilot:
         await replayed(pilot, app, monitor)
-        panels = list(app.query(MetricPanel))
-        assert len(panels) == 6
-        if size[0] >= 80:  # everything visible and inside the screen
-            for panel in panels:
-                r = panel.region
-                assert r.height >= 5 and r.right <= size[0] and r.bottom <= size[1] - 1, (panel.id, r)
-        for new in [(200, 50), (60, 15), (80, 24), (30, 8)]:
-            await pilot.resize_terminal(*new)
+        for size, columns in [((80, 24), 2), ((200, 50), 3), ((120, 30), 2)]:
+            await pilot.resize_terminal(*size)
             await pilot.pause()
-        wide = app.screen.has_class("-wide")
-        assert not wide  # back at 30 columns
+            panels = list(app.query(MetricPanel))
+            assert len(panels) == 6
+            assert len({p.region.x for p in panels}) == columns, size
+            for panel in panels:  # each panel whole, inside the screen, above the footer
+                r = panel.region
+                assert r.height >= 5 and r.right <= size[0] and r.bottom <= size[1] - 1, (size, panel.id, r)
+            events = app.query_one(EventList).region
+            assert events.height >= 6 and events.bottom <= size[1] - 1
+        for size in [(60, 15), (30, 8), (200, 50), (30, 8)]:
+            await pilot.resize_terminal(*size)
+            await pilot.pause()
+        assert not app.screen.has_class("-wide")  # back at 30 columns
+        assert not app.query_one(EventList).display  # 8 lines: the panels keep the room
+        assert all(p.region.height >= 1 for p in app.query(MetricPanel))
         await finish(pilot, app, monitor)
 
 

@@ -79,7 +79,7 @@ class QcmonApp(App[dict | None]):
     TITLE = "qcmon"
     ENABLE_COMMAND_PALETTE = False
     HORIZONTAL_BREAKPOINTS = [(0, "-narrow"), (150, "-wide")]
-    VERTICAL_BREAKPOINTS = [(0, "-short"), (36, "-tall")]
+    VERTICAL_BREAKPOINTS = [(0, "-tiny"), (20, "-short"), (36, "-tall")]
     BINDINGS = [
         Binding("q", "quit", "Quit"),
         Binding("r", "new_reference", "Reference"),
@@ -343,7 +343,7 @@ def run_dashboard(monitor, *, title: str | None = None) -> int:
         print(f"qcmon: the watch stopped with an error: {app.error}", file=sys.stderr)
         return 1
     result = result or app.result or {}
-    for key in ("summary", "report"):
-        if result.get(key):
-            print(f"{key}: {result[key]}")
+    for key, path in result.items():  # summary, report, out_dir, ...: where the record was written
+        if path:
+            print(f"{key}: {path}")
     return 0

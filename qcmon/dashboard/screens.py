@@ -13,7 +13,7 @@ from textual.screen import ModalScreen
 from textual.widgets import Input, Label, Static
 
 
-#: Shown in the help screen whatever the profile says.
+#: Shown in the help screen when the threshold profile carries no caution of its own.
 CAUTION = (
     "qcmon only advises: it never controls the microscope. Decisions on laser power, imaging duration and "
     "animal welfare follow your local rules, your licence and your facility's practice."
@@ -69,9 +69,8 @@ class HelpScreen(ModalScreen[None]):
             yield Static(Text(f"\nThreshold profile: {name}", style="bold underline"))
             yield Static(_limits_table(self._profile))
             yield Static(Text("\nCaution", style="bold underline"))
-            if caution:
-                yield Static(caution, id="profile-caution")
-            yield Static(CAUTION, id="caution")
+            # Every profile carries its caution; this general one stands in for a profile without.
+            yield Static(caution or CAUTION, id="caution")
             yield Static(Text("\nesc closes this help", style="dim"))
 
     def action_close(self) -> None:
