@@ -1,0 +1,218 @@
+"""The ``qcmon`` command. It only parses options and hands over; the work is done elsewhere."""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import threading
+from pathlib import Path
+
+from qcmon import __version__
+from qcmon.errors import QcmonError
+
+#: Exit statuses (documented in the README).
+EXIT_OK, EXIT_FLAGGED, EXIT_ERROR, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+def _positive(kind):
+    def parse(text: str):
+        try:
+            v = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a {kind.__name__}, got {text!r}") from None
+        if not v > 0:
+            raise argparse.ArgumentTypeError(f"must be greater than 0, got {text!r}")
+        return v
+    return parse
+
+
+def _add_acquisition(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("acquisition facts (used when the files do not carry them)")
+    g.add_argument("--frame-rate", type=_positive(float), metavar="HZ", help="time points per second")
+    g.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
+    g.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N",
+                   help="detector bit depth (8..16); the saturation level is 2^N − 1 (default: from the dtype)")
+    g.add_argument("--dark-level", type=float, metavar="DN",
+                   help="detector offset in DN (default: estimated by photon transfer)")
+    g.add_argument("--zstack", type=Path, metavar="FILE", help="reference z-stack TIFF, superficial → deep")
+    g.add_argument("--z-step", type=_positive(float), metavar="UM", help="plane spacing of the z-stack in µm")
+    g.add_argument("--channels", type=_positive(int), metavar="N", help="channels interleaved page by page")
+    g.add_argument("--planes", type=_positive(int), metavar="N", help="planes interleaved page by page")
+    g.add_argument("--motion-channel", type=int, metavar="C",
+                   help="measure motion on channel C and apply it to the others")
+    g.add_argument("--raw-dtype", metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
+    g.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
+    p.add_argument("--profile", default="default", metavar="NAME|FILE",
+                   help="threshold profile: a name from thresholds/ or a TOML file (default: %(default)s)")
+    p.add_argument("--out", type=Path, metavar="DIR",
+                   help="where the record goes (default: beside the session, SESSION.qcmon)")
+
+
+def _options(args, *, follow: bool):
+    from qcmon.live import MonitorOptions
+
+    return MonitorOptions(
+        path=args.path, out_dir=args.out, profile=args.profile, follow=follow,
+        poll_interval_s=getattr(args, "poll", None), until_idle_s=getattr(args, "until_idle", None),
+        on_alarm=getattr(args, "on_alarm", None), frame_rate_hz=args.frame_rate, pixel_size_um=args.pixel_size,
+        bit_depth=args.bit_depth, dark_level=args.dark_level, zstack=args.zstack, z_step_um=args.z_step,
+        motion_channel=args.motion_channel, channels=args.channels, planes=args.planes,
+        raw_dtype=args.raw_dtype, raw_shape=tuple(args.raw_shape) if args.raw_shape else None,
+        resume=not getattr(args, "restart", False))
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="qcmon", description="Quality control of fluorescence imaging sessions, live or after the fact.")
+    parser.add_argument("--version", action="version", version=f"qcmon {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("summarize", help="measure a finished session (folder or TIFF) and write its record")
+    p.add_argument("path", type=Path, metavar="PATH")
+    _add_acquisition(p)
+    p.add_argument("--restart", action="store_true", help="ignore an earlier record in --out and start afresh")
+    p.set_defaults(func=cmd_summarize)
+
+    p = sub.add_parser("watch", help="follow a session folder while the microscope writes it")
+    p.add_argument("path", type=Path, metavar="DIR")
+    _add_acquisition(p)
+    p.add_argument("--poll", type=_positive(float), metavar="SECONDS",
+                   help="look for changes every SECONDS instead of file-system events (network shares)")
+    p.add_argument("--until-idle", type=_positive(float), metavar="SECONDS",
+                   help="end the watch when no new frame came for SECONDS")
+    p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
+    p.add_argument("--on-alarm", metavar="COMMAND",
+                   help="run COMMAND when an alarm begins, with the event as JSON on its standard input")
+    p.add_argument("--restart", action="store_true", help="ignore an earlier record in --out and start afresh")
+    p.set_defaults(func=cmd_watch)
+
+    p = sub.add_parser("profiles", help="list the threshold profiles")
+    p.set_defaults(func=cmd_profiles)
+
+    try:
+        from qcmon.simulate import cli as sim_cli
+    except ImportError:  # pragma: no cover - simulator is part of the package
+        sim_cli = None
+    if sim_cli is not None:
+        p = sub.add_parser("simulate", help="write a synthetic session with known ground truth")
+        sim_cli.add_arguments(p)
+        p.set_defaults(func=sim_cli.run)
+
+    p = sub.add_parser("demo", help="watch a session the simulator writes live (nothing else needed)")
+    p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
+    p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
+                   help="length of the simulated session (default: the scenario's)")
+    p.add_argument("--out", type=Path, metavar="DIR", help="keep the session and its record here")
+    p.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except QcmonError as err:
+        print(f"qcmon: {err}", file=sys.stderr)
+        return EXIT_ERROR
+    except KeyboardInterrupt:
+        print("qcmon: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+
+def cmd_summarize(args) -> int:
+    from qcmon.console import format_event
+    from qcmon.live import Monitor
+
+    mon = Monitor(_options(args, follow=False))
+
+    class _Problems:
+        def on_rows(self, rows):
+            pass
+
+        def on_status(self, st):
+            pass
+
+        def on_event(self, ev):
+            if ev.kind == "problem":
+                print(format_event(ev), file=sys.stderr)
+
+    paths = mon.run(_Problems())
+    print(f"summary: {paths['summary']}\nreport:  {paths['report']}\ntraces:  {Path(paths['out_dir']) / 'traces.csv'}")
+    return EXIT_OK
+
+
+def _stop_on_signals(monitor) -> None:
+    """First Ctrl-C or SIGTERM ends the watch cleanly (the summary is written); a second Ctrl-C aborts."""
+    hits = {"n": 0}
+
+    def handler(signum, frame):
+        hits["n"] += 1
+        if hits["n"] > 1 and signum == signal.SIGINT:
+            raise KeyboardInterrupt
+        print("\nqcmon: ending the watch, writing the summary…", file=sys.stderr, flush=True)
+        monitor.stop()
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, handler)
+        signal.signal(signal.SIGTERM, handler)
+
+
+def _read_commands(monitor, stream) -> None:
+    """Plain mode: lines on standard input are commands ("r" new reference, "n TEXT" note, "q" end)."""
+    for line in stream:
+        line = line.strip()
+        if not line:
+            continue
+        word, _, rest = line.partition(" ")
+        if word in ("r", "ref", "reference"):
+            monitor.new_reference()
+        elif word in ("n", "note") and rest:
+            monitor.add_note(rest)
+        elif word in ("q", "quit"):
+            monitor.stop()
+            return
+
+
+def run_watch(monitor, *, plain: bool) -> int:
+    _stop_on_signals(monitor)
+    if not plain:
+        from qcmon.dashboard.app import run_dashboard
+
+        return run_dashboard(monitor)
+    from qcmon.console import PlainConsole
+
+    console = PlainConsole()
+    print(f"qcmon {__version__}: watching {monitor.path} → record in {monitor.out_dir} "
+          f"(profile {monitor.profile.name})", flush=True)
+    if monitor.profile.caution:
+        print(f"caution: {monitor.profile.caution}", flush=True)
+    if sys.stdin is not None and sys.stdin.isatty():
+        print("commands: r = new reference, n TEXT = add a note, q = end the watch", flush=True)
+        threading.Thread(target=_read_commands, args=(monitor, sys.stdin), daemon=True).start()
+    paths = monitor.run(console)
+    print(f"summary: {paths['summary']}\nreport:  {paths['report']}", flush=True)
+    return EXIT_OK
+
+
+def cmd_watch(args) -> int:
+    from qcmon.live import Monitor
+
+    plain = args.plain or not sys.stdout.isatty()
+    return run_watch(Monitor(_options(args, follow=True)), plain=plain)
+
+
+def cmd_profiles(args) -> int:
+    from qcmon.thresholds import list_profiles, load_profile
+
+    for name in list_profiles():
+        prof = load_profile(name)
+        print(f"{name:22s} {prof.description}")
+    return EXIT_OK
+
+
+def cmd_demo(args) -> int:
+    from qcmon.demo import run_demo
+
+    return run_demo(plain=args.plain or not sys.stdout.isatty(), seconds=args.seconds, out=args.out)

@@ -1,0 +1,388 @@
+"""One path from files to record: the watch of a live session and the offline summary of a finished one.
+
+:class:`Monitor` reads frames through :class:`~qcmon.sources.session.SessionSource`, measures them with the
+:class:`~qcmon.engine.Engine`, turns rows into threshold events, appends rows and events to the session record,
+tells its listeners (plain console, dashboard), and writes ``summary.json``, ``report.html`` and ``exclude.csv``
+when it ends. ``qcmon summarize`` is the same monitor run once over everything on disk (``follow=False``), so the
+live and offline numbers are the same by construction (and a test holds them against each other).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import queue
+import shlex
+import subprocess
+import threading
+import time
+from dataclasses import dataclass, field
+from datetime import datetime
+from pathlib import Path
+
+import numpy as np
+
+from qcmon import __version__
+from qcmon.engine import Engine, EngineSettings
+from qcmon.errors import FrameError, QcmonError
+from qcmon.events import Event
+from qcmon.frames import AcquisitionFacts, Frame
+from qcmon.record import SessionRecord, write_atomic
+from qcmon.report import write_report
+from qcmon.sources.session import SessionSource
+from qcmon.status import Listener, Status
+from qcmon.summary import exclude_ranges, summarize_traces
+from qcmon.thresholds import Profile, ThresholdTracker, load_profile
+
+
+@dataclass(slots=True)
+class MonitorOptions:
+    """What to watch and how. See ``qcmon watch --help`` for the user-facing names."""
+
+    path: Path
+    out_dir: Path | None = None
+    profile: str = "default"
+    follow: bool = True
+    poll_interval_s: float | None = None
+    until_idle_s: float | None = None
+    on_alarm: str | None = None
+    frame_rate_hz: float | None = None
+    pixel_size_um: float | None = None
+    bit_depth: int | None = None
+    dark_level: float | None = None
+    zstack: Path | None = None
+    z_step_um: float | None = None
+    motion_channel: int | None = None
+    channels: int | None = None
+    planes: int | None = None
+    raw_dtype: str | None = None
+    raw_shape: tuple[int, int] | None = None
+    resume: bool = True
+    status_every_s: float = 5.0
+    forecast_loss_pct: float = 20.0
+    engine_overrides: dict = field(default_factory=dict)
+
+
+def default_out_dir(path: Path) -> Path:
+    """Where the record goes unless ``--out`` says otherwise: beside the session, never inside it.
+
+    ``/data/mouse7/session3`` → ``/data/mouse7/session3.qcmon``; a single file ``run.tif`` → ``run.qcmon``.
+    """
+    path = Path(path).resolve()
+    stem = path.name if path.is_dir() else path.stem
+    return path.parent / f"{stem}.qcmon"
+
+
+class Monitor:
+    """Measure a session, live or after the fact, and keep its record.
+
+    Thread-safe controls: :meth:`stop`, :meth:`new_reference`, :meth:`add_note`. :meth:`run` blocks.
+    """
+
+    def __init__(self, options: MonitorOptions):
+        self.options = options
+        self.path = Path(options.path)
+        if not self.path.exists():
+            raise QcmonError(f"{self.path}: no such file or folder")
+        self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path)
+        if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
+            raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")
+        self.profile: Profile = load_profile(options.profile)
+        self._stop = threading.Event()
+        self._commands: queue.SimpleQueue = queue.SimpleQueue()
+        self._alarm_procs: list[subprocess.Popen] = []
+        self.problems: list[str] = []
+        self.facts = AcquisitionFacts()
+
+    # ---------------------------------------------------------------- controls
+    def stop(self) -> None:
+        self._stop.set()
+
+    def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
+        self._commands.put(("reference", channel, plane))
+
+    def add_note(self, text: str) -> None:
+        self._commands.put(("note", text))
+
+    # --------------------------------------------------------------------- run
+    def run(self, listener: Listener | None = None) -> dict:
+        """Measure until stopped (or idle, or, with ``follow=False``, until everything on disk is measured).
+
+        Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``.
+        """
+        o = self.options
+        listeners = [listener] if listener is not None else []
+        record = SessionRecord(self.out_dir, resume=o.resume)
+        done = record.last_frames() if o.resume else {}
+        source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
+                               raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
+                               pixel_size_um=o.pixel_size_um, on_problem=self._problem_to(record, listeners))
+        engine: Engine | None = None
+        tracker = ThresholdTracker(self.profile)
+        status = Status(folder=str(self.path), out_dir=str(self.out_dir))
+        last_row: dict | None = None
+        last_status = 0.0
+        idle_since = time.monotonic()
+        watcher = None
+        if o.follow:
+            from qcmon.sources.watcher import FolderWatcher
+
+            watch_dir = self.path if self.path.is_dir() else self.path.parent
+            watcher = FolderWatcher(watch_dir, poll_interval_s=o.poll_interval_s)
+            watcher.__enter__()
+        try:
+            while True:
+                frames = source.poll(final=not o.follow)
+                self.facts = source.facts
+                if frames:
+                    idle_since = time.monotonic()
+                    if engine is None:
+                        engine = Engine(self._settings(source.facts, frames[0]))
+                    rows = self._measure(engine, frames, record, listeners)
+                    rows = [r for r in rows if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
+                    if rows:
+                        self._deliver(rows, tracker, record, listeners, done_before=bool(done))
+                        last_row = rows[-1]
+                        status.frames_measured += len(rows)
+                        status.current_file = rows[-1]["source"]
+                        status.elapsed_s = float(rows[-1]["time_s"])
+                self._handle_commands(engine, record, listeners, last_row)
+                now = time.monotonic()
+                if now - last_status >= (0.25 if listeners else o.status_every_s) or not o.follow:
+                    self._update_status(status, source, engine, tracker, listeners)
+                    last_status = now
+                record.maybe_flush()
+                if not o.follow:
+                    break
+                if self._stop.is_set():
+                    break
+                if o.until_idle_s is not None and now - idle_since >= o.until_idle_s:
+                    break
+                if not frames:
+                    watcher.wait(0.2)
+            # end of watch: whatever is on disk now, then what the engine held back
+            if o.follow:
+                frames = source.poll(final=True)
+                if frames:
+                    if engine is None:
+                        engine = Engine(self._settings(source.facts, frames[0]))
+                    rows = [r for r in self._measure(engine, frames, record, listeners)
+                            if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
+                    self._deliver(rows, tracker, record, listeners, done_before=bool(done))
+            if engine is not None:
+                rows = [r for r in engine.flush() if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
+                if rows:
+                    self._deliver(rows, tracker, record, listeners, done_before=bool(done))
+                    last_row = rows[-1]
+                    status.frames_measured += len(rows)
+            self._handle_commands(engine, record, listeners, last_row)
+            for ev in tracker.close(last_row):
+                self._emit(ev, record, listeners)
+            self._update_status(status, source, engine, tracker, listeners)
+            record.flush()
+            return self._finish(record, source, engine)
+        finally:
+            if watcher is not None:
+                watcher.stop()
+            record.close()
+            self._reap_alarm_commands(wait=True)
+
+    # ----------------------------------------------------------------- helpers
+    def _settings(self, facts: AcquisitionFacts, first: Frame) -> EngineSettings:
+        o = self.options
+        zstack = None
+        z_step = o.z_step_um
+        if o.zstack is not None:
+            zstack, z_from_file = read_zstack(o.zstack)
+            z_step = z_step or z_from_file
+            if z_step is None:
+                raise QcmonError(f"{o.zstack}: the z-stack carries no plane spacing; give --z-step UM")
+        return EngineSettings(
+            frame_rate_hz=facts.get("frame_rate_hz") or o.frame_rate_hz,
+            pixel_size_um=facts.get("pixel_size_um") or o.pixel_size_um,
+            bit_depth=o.bit_depth or facts.get("bit_depth"),
+            dark_level=o.dark_level,
+            zstack=zstack, z_step_um=z_step, motion_channel=o.motion_channel,
+            **o.engine_overrides)
+
+    def _measure(self, engine: Engine, frames: list[Frame], record: SessionRecord, listeners) -> list[dict]:
+        rows: list[dict] = []
+        for fr in frames:
+            try:
+                rows.extend(engine.process(fr))
+            except FrameError as err:
+                self._problem_to(record, listeners)(err)
+        return rows
+
+    def _deliver(self, rows, tracker, record, listeners, *, done_before: bool) -> None:
+        record.append_rows(rows)
+        for row in rows:
+            for ev in tracker.update(row):
+                self._emit(ev, record, listeners)
+        for lst in listeners:
+            lst.on_rows(rows)
+
+    def _emit(self, ev: Event, record: SessionRecord, listeners) -> None:
+        if not ev.wall_time:
+            ev.wall_time = datetime.now().astimezone().isoformat(timespec="seconds")
+        record.append_event(ev)
+        for lst in listeners:
+            lst.on_event(ev)
+        if ev.kind == "start" and ev.state == "alarm" and self.options.on_alarm:
+            self._run_on_alarm(ev)
+
+    def _problem_to(self, record: SessionRecord, listeners):
+        def report(err: Exception) -> None:
+            msg = str(err)
+            self.problems.append(msg)
+            self._emit(Event(kind="problem", message=msg), record, listeners)
+        return report
+
+    def _handle_commands(self, engine, record, listeners, last_row) -> None:
+        while True:
+            try:
+                cmd = self._commands.get_nowait()
+            except queue.Empty:
+                return
+            frame = int(last_row["frame"]) if last_row else -1
+            t = float(last_row["time_s"]) if last_row else math.nan
+            if cmd[0] == "note":
+                self._emit(Event(kind="note", message=str(cmd[1]), frame=frame, time_s=t,
+                                 started_frame=frame, started_time_s=t), record, listeners)
+            elif cmd[0] == "reference":
+                if engine is not None:
+                    engine.new_reference(cmd[1], cmd[2])
+                self._emit(Event(kind="reference", frame=frame, time_s=t, started_frame=frame, started_time_s=t,
+                                 message="new reference requested: built from the next frames"),
+                           record, listeners)
+
+    def _update_status(self, status, source, engine, tracker, listeners) -> None:
+        facts = source.facts
+        status.facts = facts.as_dict()
+        rate = facts.facts.get("frame_rate_hz")
+        if rate is not None:
+            status.frame_rate_hz, status.frame_rate_origin = float(rate.value), rate.origin
+        status.backlog_frames = int(getattr(source, "backlog", 0) or 0)
+        status.states = {k: dict(v) for k, v in tracker.states.items()}
+        status.overall = tracker.overall
+        if engine is not None:
+            status.streams = engine.streams
+            loss = self.options.forecast_loss_pct
+            for c, p in engine.streams:
+                m = engine.forecast_min(c, p, loss)
+                key = "baseline_f" if (c, p) == engine.streams[0] else f"baseline_f[{c},{p}]"
+                if math.isfinite(m):
+                    status.forecasts[key] = f"brightness −{loss:g} % in ~{m:.0f} min at this rate"
+                else:
+                    status.forecasts[key] = "brightness steady"
+        for lst in listeners:
+            lst.on_status(status)
+
+    def _run_on_alarm(self, ev: Event) -> None:
+        """Run the user's command with the event as JSON on stdin. The command line is split once, never given
+        to a shell, and nothing from files or events is put into it."""
+        self._reap_alarm_commands(wait=False)
+        try:
+            proc = subprocess.Popen(shlex.split(self.options.on_alarm), stdin=subprocess.PIPE,
+                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        except OSError as err:
+            self.problems.append(f"--on-alarm {self.options.on_alarm!r} could not start: {err}")
+            return
+        try:
+            proc.stdin.write(ev.to_json().encode() + b"\n")
+            proc.stdin.close()
+        except OSError:
+            pass
+        self._alarm_procs.append(proc)
+
+    def _reap_alarm_commands(self, *, wait: bool) -> None:
+        keep = []
+        for p in self._alarm_procs:
+            if wait:
+                try:
+                    p.wait(timeout=10)
+                except subprocess.TimeoutExpired:
+                    p.kill()
+                    p.wait()
+            elif p.poll() is None:
+                keep.append(p)
+        self._alarm_procs = keep
+
+    def _finish(self, record: SessionRecord, source: SessionSource, engine: Engine | None) -> dict:
+        traces = record.read_traces()
+        events = record.read_events()
+        extra = {}
+        if engine is not None:
+            info = engine.stream_info()
+            first = info[engine.streams[0]] if engine.streams else {}
+            extra = {
+                "photon_transfer.gain": first.get("gain_dn_per_photon", math.nan),
+                "photon_transfer.dark_level": first.get("ptc_dark_level_dn", math.nan),
+                "photon_transfer.read_noise_dn": first.get("read_noise_dn", math.nan),
+                "photon_transfer.r2": first.get("ptc_r2", math.nan),
+                "dark_level.used_dn": first.get("dark_level_dn", math.nan),
+                "dark_level.origin": first.get("dark_level_origin", ""),
+                "saturation.level_dn": first.get("saturation_level_dn", math.nan),
+                "z.start_um": first.get("z_start_um", math.nan),
+                "streams": {f"{c},{p}": _jsonable(v) for (c, p), v in info.items()},
+            }
+        facts = source.facts.as_dict()
+        summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
+        summary["problems"] = list(self.problems)
+        summary["session"] = str(self.path)
+        paths = {"out_dir": str(self.out_dir)}
+        paths["summary"] = str(write_atomic(self.out_dir / "summary.json",
+                                            json.dumps(_jsonable(summary), indent=2, ensure_ascii=False)))
+        ranges = exclude_ranges(traces, events, self.profile)
+        paths["exclude"] = str(_write_exclude(self.out_dir / "exclude.csv", ranges))
+        paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts))
+        return paths
+
+
+def _write_exclude(path: Path, ranges) -> Path:
+    lines = ["channel,plane,first_frame,last_frame,reason"]
+    for r in ranges:
+        lines.append(",".join(str(x) for x in r))
+    return write_atomic(path, "\n".join(lines) + "\n")
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    return obj
+
+
+def read_zstack(path: Path) -> tuple[np.ndarray, float | None]:
+    """Read a reference z-stack (planes superficial → deep) and its plane spacing in µm when the file has it."""
+    import tifffile
+
+    path = Path(path)
+    try:
+        with tifffile.TiffFile(path) as tif:
+            stack = tif.asarray()
+            z_step = None
+            if tif.is_ome:
+                import xml.etree.ElementTree as ET
+
+                root = ET.fromstring(tif.ome_metadata)
+                for el in root.iter():
+                    if el.tag.endswith("Pixels") and el.get("PhysicalSizeZ"):
+                        z_step = float(el.get("PhysicalSizeZ"))
+                        break
+            elif tif.is_imagej and tif.imagej_metadata:
+                sp = tif.imagej_metadata.get("spacing")
+                z_step = float(sp) if sp else None
+    except (OSError, tifffile.TiffFileError) as err:
+        raise QcmonError(f"{path}: cannot read the z-stack: {err}") from None
+    stack = np.squeeze(stack)
+    if stack.ndim != 3:
+        raise QcmonError(f"{path}: a z-stack must have planes × rows × columns, got shape {stack.shape}")
+    return stack.astype(np.float32), z_step
