@@ -402,6 +402,39 @@ async def test_window_key_cycles_the_plot_window():
         await finish(pilot, app, monitor)
 
 
+async def test_backlog_and_waiting_reason_are_shown():
+    items = script(0, 20)
+    behind = status_at(19)
+    behind.backlog_frames, behind.paused_reason = 37, "building reference"
+    items.append(("status", behind))
+    app, monitor = make_app(items)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await replayed(pilot, app, monitor)
+        facts = str(app.query_one("#session-facts").content)
+        assert "building reference" in facts.splitlines()[0]
+        assert "behind by 37 frames" in facts.splitlines()[1]
+        await finish(pilot, app, monitor)
+
+
+class FailingMonitor(ReplayMonitor):
+    def run(self, listener):
+        super().run(listener)
+        raise ValueError("session_000.tif: not a TIFF file")
+
+
+async def test_a_failing_watch_is_reported_and_quit_gives_exit_code_1():
+    monitor = FailingMonitor(script(0, 20))
+    app = QcmonApp(monitor)
+    async with app.run_test(size=(80, 24)) as pilot:
+        monitor.stop()  # the double's run returns, then raises
+        await until(pilot, lambda: app.error is not None, "the error")
+        await pilot.pause()
+        assert "WATCH FAILED: session_000.tif: not a TIFF file" in str(app.query_one("#session-facts").content)
+        await pilot.press("q")
+        await until(pilot, lambda: app.return_code is not None, "exit")
+    assert app.return_code == 1 and app.return_value is None
+
+
 @pytest.mark.parametrize("caution", [PROFILE.caution, ""])
 async def test_help_shows_keys_and_caution(caution):
     profile = FakeProfile(caution=caution, limits=PROFILE.limits)
@@ -524,6 +557,25 @@ def test_plot_keeps_every_spike_and_draws_levels():
     # The spike's column has dots in the top row.
     col = 7 + int(v.argmax() / len(v) * 23 * 2) // 2
     assert lines[0][col] != " "
+
+
+def test_plot_column_ranges_match_a_plain_numpy_reference():
+    from qcmon.dashboard.plot import _column_ranges
+
+    rng = np.random.default_rng(3)
+    t = np.sort(rng.uniform(0, 300, 5000))
+    v = rng.normal(size=t.size)
+    v[rng.random(t.size) < 0.2] = np.nan
+    v[(t > 100) & (t < 130)] = np.nan  # whole columns without a value
+    lo, hi = _column_ranges(t, v, 0.0, 300.0, 40)
+    # Reference: numpy's nanmin/nanmax over each column's points, column = floor(t / window × ncols).
+    col = np.minimum((t / 300.0 * 40).astype(int), 39)
+    for c in range(40):
+        sel = v[col == c]
+        if np.isfinite(sel).any():
+            assert lo[c] == np.nanmin(sel) and hi[c] == np.nanmax(sel), c
+        else:
+            assert np.isnan(lo[c]) and np.isnan(hi[c]), c
 
 
 def test_history_drops_rows_older_than_the_longest_window():

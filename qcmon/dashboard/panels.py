@@ -267,6 +267,7 @@ class SessionHeader(Widget):
         if status.frame_rate_origin:
             rate_text += f" ({status.frame_rate_origin})"
         first = Text(no_wrap=True, overflow="ellipsis")
+        flags = flags or status.paused_reason  # ours first (PAUSED, stopping), else the watch's ("waiting …")
         if flags:
             first.append(flags, style="bold reverse")
             first.append(" ")
@@ -279,8 +280,6 @@ class SessionHeader(Widget):
         if status.backlog_frames:
             second.append(f" · behind by {status.backlog_frames} frames", style="bold reverse")
         second.append(f" · {stream_text} · {window_min}-min plots")
-        if status.paused_reason:
-            second.append(f" · {status.paused_reason}", style="italic")
         facts.update(Text("\n").join([first, second]))
         overall.update(Text(f"{state_text(status.overall)}\noverall", justify="center"))
         for s in ("normal", "warning", "alarm", "unknown"):

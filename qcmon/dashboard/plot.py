@@ -47,18 +47,19 @@ def short_number(value: float) -> str:
 
 
 def _column_ranges(t: np.ndarray, v: np.ndarray, t0: float, window_s: float, ncols: int):
-    """Min and max of the finite values per dot column; NaN where a column has none."""
+    """Min and max of the finite values per dot column; NaN where a column has none. ``t`` must be sorted."""
     lo = np.full(ncols, np.nan)
     hi = np.full(ncols, np.nan)
-    ok = np.isfinite(v) & np.isfinite(t)
-    if not ok.any():
+    if not t.size:
         return lo, hi
-    t, v = t[ok], v[ok]
-    col = np.clip(((t - t0) / window_s * ncols).astype(np.int64), 0, ncols - 1)
-    # Times are sorted, so the columns are too: reduce over runs of equal column.
-    starts = np.flatnonzero(np.r_[True, col[1:] != col[:-1]])
-    lo[col[starts]] = np.minimum.reduceat(v, starts)
-    hi[col[starts]] = np.maximum.reduceat(v, starts)
+    starts = np.searchsorted(t, t0 + window_s * np.arange(ncols) / ncols, side="left")
+    starts[0] = 0  # anything older than the window's start belongs to its first column
+    stops = np.r_[starts[1:], t.size]
+    used = np.flatnonzero(stops > starts)
+    if used.size:
+        # fmin/fmax skip NaN; a column of only NaN stays NaN.
+        lo[used] = np.fmin.reduceat(v, starts[used])
+        hi[used] = np.fmax.reduceat(v, starts[used])
     return lo, hi
 
 
