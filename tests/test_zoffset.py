@@ -1,0 +1,192 @@
+"""Accuracy of z offset, running mean and focus metrics (qcmon.metrics.zoffset, qcmon.metrics.focus).
+
+The test volume is made here: cells (Gaussian blobs, sigma 3 px laterally, 3 µm axially) in dim neuropil
+(small blobs, sigma 1.2 px and 1.5 µm), imaged with a Gaussian axial point-spread function (sigma 1.5 µm).
+An image at depth z is the lateral sum of blobs each weighted by its axial overlap with the focal plane.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import ndimage
+from skimage import filters
+
+from qcmon.metrics.focus import focus_corr, focus_measure
+from qcmon.metrics.zoffset import RunningMean, ZEstimator, ZResult
+
+SHAPE = (128, 128)
+PSF_Z_UM = 1.5
+
+
+class Volume:
+    def __init__(self, rng, depth_um=40.0):
+        m, n = SHAPE
+        self.groups = []
+        for count, sigma_xy, sigma_z, amp in ((90, 3.0, 3.0, 3.0), (2500, 1.2, 1.5, 0.4)):
+            y = rng.integers(0, m, count)
+            x = rng.integers(0, n, count)
+            z = rng.uniform(-depth_um / 2, depth_um / 2, count)
+            a = amp * rng.uniform(0.5, 1.5, count)
+            self.groups.append((y, x, z, a, sigma_xy, math.hypot(sigma_z, PSF_Z_UM)))
+
+    def image(self, z_um, dy=0, dx=0):
+        """Noise-free image at depth z_um (+ deeper), content shifted by whole pixels (dy, dx)."""
+        out = np.full(SHAPE, 0.05)
+        for y, x, z, a, sxy, sz in self.groups:
+            w = a * np.exp(-0.5 * ((z - z_um) / sz) ** 2)
+            plane = np.zeros(SHAPE)
+            np.add.at(plane, ((y + dy) % SHAPE[0], (x + dx) % SHAPE[1]), w)
+            out += ndimage.gaussian_filter(plane, sxy, mode="wrap") * (2 * math.pi * sxy ** 2)
+        return out
+
+
+def noisy_mean(vol, z, rng, *, photons=1.5, k=30):
+    img = vol.image(z)
+    lam = img / img.mean() * photons
+    return rng.poisson(lam, (k, *SHAPE)).mean(axis=0)
+
+
+@pytest.fixture(scope="module")
+def setup():
+    rng = np.random.default_rng(1)
+    vol = Volume(rng)
+    z_start = 0.3  # the session starts 0.3 µm below the stack's centre
+    planes = np.arange(-12, 13) * 1.0  # 25 planes, 1 µm step, superficial -> deep
+    # stack taken with the field shifted laterally by (3, -2) px against the session
+    stack = np.stack([vol.image(z, 3, -2) for z in planes]) * 200 + 100
+    reference = noisy_mean(vol, z_start, rng, k=60) * 8 + 100
+    return vol, stack, reference, z_start, rng
+
+
+def test_z_offset_accuracy(setup):
+    vol, stack, reference, z_start, rng = setup
+    est = ZEstimator(stack, z_step_um=1.0, reference=reference)
+    # the stack's lateral shift (3, -2) px was found (ground truth of the test volume)
+    assert_allclose(est.shift_px, (3.0, -2.0), atol=0.2)
+    # the start lies 0.3 µm deeper than the stack's centre (ground truth)
+    assert abs(est.start_um - z_start) <= 0.3
+    errors = []
+    for z in rng.uniform(-8, 8, 12) + z_start:
+        r = est.estimate(noisy_mean(vol, z, rng))
+        assert isinstance(r, ZResult)
+        errors.append(r.z_um - (z - z_start))
+        assert r.plane_index == int(np.argmin(np.abs(np.arange(-12, 13) - z))) or abs(r.z_um - (z - z_start)) < 0.5
+    # Project accuracy goal: |error| <= 0.5 µm within +-8 µm on a 1 µm-step stack (simulated ground truth).
+    print("z errors (µm):", np.round(errors, 3))
+    assert np.max(np.abs(errors)) <= 0.5
+
+
+def test_z_sign_deeper_is_positive_and_no_reference(setup):
+    vol, stack, _, _, rng = setup
+    unshifted = np.stack([vol.image(z) for z in np.arange(-12, 13) * 1.0])
+    est = ZEstimator(unshifted, z_step_um=1.0)
+    assert est.start_um == 0.0
+    r = est.estimate(vol.image(4.0))
+    assert_allclose(r.z_um, 4.0, atol=0.2)  # + deeper: toward increasing stack index (project convention)
+    assert r.plane_index == 16
+    # a 2 µm step stack measures in µm, not planes
+    est2 = ZEstimator(unshifted[::2], z_step_um=2.0)
+    assert_allclose(est2.estimate(vol.image(-5.0)).z_um, -5.0, atol=0.3)
+
+
+def test_z_profile_and_nan(setup):
+    _, stack, reference, _, _ = setup
+    est = ZEstimator(stack, z_step_um=1.0, reference=reference)
+    prof = est.profile(reference)
+    # the profile is the Pearson correlation with each registered plane (numpy corrcoef on the same crop/bin
+    # would need the registered planes; here its range and peak are checked)
+    assert prof.shape == (25,) and np.all(prof <= 1 + 1e-6)
+    assert int(np.argmax(prof)) == 12
+    with pytest.warns(UserWarning, match="constant"):
+        r = est.estimate(np.full(SHAPE, 7.0))
+    assert math.isnan(r.z_um) and r.plane_index == -1
+
+
+def test_z_validation():
+    stack = np.random.default_rng(0).random((5, 32, 32))
+    with pytest.raises(ValueError, match="z_step_um"):
+        ZEstimator(stack, z_step_um=0)
+    with pytest.raises(ValueError, match="stack"):
+        ZEstimator(stack[0], z_step_um=1)
+    with pytest.raises(ValueError, match="stack"):
+        ZEstimator(stack[:2], z_step_um=1)
+    with pytest.raises(ValueError, match="reference"):
+        ZEstimator(stack, z_step_um=1, reference=np.zeros((16, 16)))
+    with pytest.raises(ValueError, match="mean_image"):
+        ZEstimator(stack, z_step_um=1).estimate(np.zeros((16, 16)))
+
+
+def test_running_mean_matches_numpy():
+    rng = np.random.default_rng(3)
+    base = rng.random((40, 50)).astype(np.float32)
+    rm = RunningMean(4)
+    frames, shifts = [], []
+    for t in range(11):
+        dy, dx = int(rng.integers(-3, 4)), int(rng.integers(-3, 4))
+        # content moved by (+dy, +dx) (edge-repeated), plus noise
+        frame = ndimage.shift(base, (dy, dx), order=0, mode="nearest") + rng.normal(0, 0.01, base.shape)
+        frames.append(frame)
+        shifts.append((dy + rng.uniform(-0.4, 0.4), dx + rng.uniform(-0.4, 0.4)))  # rounded back to (dy, dx)
+        rm.push(frame, *shifts[-1])
+    assert rm.n_frames == 4 and rm._buf.shape == (4, 40, 50)  # constant memory: K frames
+    aligned = [ndimage.shift(f, (-round(s[0]), -round(s[1])), order=0, mode="nearest")
+               for f, s in zip(frames[-4:], shifts[-4:])]
+    # reference: scipy.ndimage.shift (whole pixels, nearest edge) and numpy's mean
+    assert_allclose(rm.mean, np.mean(aligned, axis=0), atol=1e-5)
+    inner = (slice(4, -4), slice(4, -4))
+    assert_allclose(rm.mean[inner], base[inner], atol=0.02)
+
+
+def test_running_mean_validation_and_nan():
+    with pytest.raises(ValueError, match="K"):
+        RunningMean(0)
+    rm = RunningMean(3)
+    with pytest.raises(ValueError, match="RunningMean"):
+        _ = rm.mean
+    rm.push(np.ones((8, 8)))
+    with pytest.raises(ValueError, match="frame"):
+        rm.push(np.ones((9, 8)))
+    with pytest.warns(UserWarning, match="no finite pixel"):
+        rm.push(np.full((8, 8), np.nan))
+    rm.push(np.ones((8, 8)) * 3, math.nan, math.nan)
+    assert_allclose(rm.mean, 2.0)
+
+
+def test_focus_measure_reference_values():
+    rng = np.random.default_rng(5)
+    noise = rng.standard_normal((256, 256))
+    # White noise: variance of the 5-point Laplacian = 4*1 + 16 = 20 times the pixel variance (analytic, from the
+    # kernel's coefficients).
+    assert_allclose(focus_measure(noise), 20.0, rtol=0.03)
+    # Reference library: scikit-image's Laplace filter (same 3x3 kernel), divided by the image variance.
+    img = ndimage.gaussian_filter(noise, 1.0)
+    expected = filters.laplace(img).var() / img.var()
+    assert_allclose(focus_measure(img), expected, rtol=0.02)
+    # Gain and offset do not change it.
+    assert_allclose(focus_measure(5 * img + 100), focus_measure(img), rtol=1e-5)
+
+
+def test_focus_measure_and_corr_peak_at_focus(setup):
+    vol, _, _, _, _ = setup
+    # Focus operators are largest at best focus (Pertuz, Puig & Garcia 2013): defocus = lateral blur here.
+    sharp = vol.image(0.0)
+    values = [focus_measure(ndimage.gaussian_filter(sharp, s)) for s in (0.0, 1.0, 2.0, 3.0)]
+    assert all(a > b for a, b in zip(values, values[1:]))
+    corrs = [focus_corr(vol.image(z), sharp) for z in (0.0, 2.0, 4.0, 8.0)]
+    assert_allclose(corrs[0], 1.0, atol=1e-9)
+    assert all(a > b for a, b in zip(corrs, corrs[1:]))
+    other = vol.image(3.0)
+    assert_allclose(focus_corr(other, sharp), np.corrcoef(other.ravel(), sharp.ravel())[0, 1], atol=1e-6)
+
+
+def test_focus_nan_with_warning():
+    with pytest.warns(UserWarning, match="constant"):
+        assert math.isnan(focus_measure(np.full((16, 16), 3, np.uint16)))
+    with pytest.warns(UserWarning, match="no finite pixel"):
+        assert math.isnan(focus_corr(np.full((16, 16), np.nan), np.random.default_rng(0).random((16, 16))))
+    with pytest.raises(ValueError, match="mean_image"):
+        focus_corr(np.zeros((8, 16)), np.zeros((16, 16)))
