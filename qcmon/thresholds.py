@@ -1,0 +1,505 @@
+"""Threshold profiles and the tracker that turns measurement rows into warning/alarm events.
+
+A profile is a TOML file in ``thresholds/`` (or a folder named by the environment variable
+``QCMON_THRESHOLDS``, or any path). Layout::
+
+    description = "Awake, head-fixed two-photon imaging"
+    caution = "qcmon only advises; ..."
+    extends = "default"          # optional: start from another profile (name or path)
+
+    [limits.displacement_um]
+    warn = 2.0                   # µm; common practice, no source
+    alarm = 5.0
+    direction = "above"          # "above", "below" or "abs_above"
+    persist_s = 1.0              # s the value must stay beyond (and back within) before the state changes
+    label = "Displacement"
+    unit = "µm"
+    # enabled = false            # drops a metric inherited from the extended profile
+
+Every metric is a column of ``traces.csv`` (:mod:`qcmon.columns`). A profile that extends another replaces
+only the keys it names (per metric). An invalid profile raises :class:`qcmon.errors.ProfileError` naming the
+file, the key and the allowed values, when it is loaded — before any frame is measured.
+
+The tracker's rule (per channel, plane and metric, on session time ``time_s``):
+
+* a metric **enters** a more severe state when its value has been beyond that state's level without a break for
+  ``persist_s`` seconds (measured from the first frame beyond the level to the current frame);
+* it **leaves** its state when the value has been back below that state's level for ``persist_s`` seconds; the
+  new state is then the instantaneous state of the current value;
+* a change of state is an ``end`` event of the old state followed by a ``start`` event of the new one
+  (warning → alarm: end of warning + start of alarm; alarm → warning: end of alarm + start of warning);
+* unknown values (NaN, a missing column, or an unknown ``time_s``) keep the current state, never start one, and
+  break any persistence count in progress (an excursion or a recovery must be seen without gaps).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+from dataclasses import dataclass, field
+from datetime import datetime
+from pathlib import Path
+from typing import Mapping
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+import qcmon
+from qcmon.columns import BY_NAME
+from qcmon.errors import ProfileError
+from qcmon.events import STATES, Event
+
+__all__ = [
+    "DIRECTIONS",
+    "METRICS",
+    "Limit",
+    "Profile",
+    "ThresholdTracker",
+    "list_profiles",
+    "load_profile",
+    "profile_dirs",
+]
+
+#: How a value is compared with its levels.
+DIRECTIONS: tuple[str, ...] = ("above", "below", "abs_above")
+
+#: Columns of ``traces.csv`` a profile may set limits on (the numeric measurement columns).
+METRICS: tuple[str, ...] = tuple(
+    c.name for c in BY_NAME.values() if c.kind == "float" and c.name != "time_s"
+)
+
+_TOP_KEYS = ("description", "caution", "extends", "limits")
+_LIMIT_KEYS = ("warn", "alarm", "direction", "persist_s", "label", "unit", "enabled")
+_REQUIRED_LIMIT_KEYS = ("warn", "alarm", "direction", "persist_s")
+_ENV = "QCMON_THRESHOLDS"
+_RANK = {s: i for i, s in enumerate(STATES)}
+
+
+@dataclass(frozen=True, slots=True)
+class Limit:
+    """Warning and alarm levels of one metric.
+
+    Attributes
+    ----------
+    metric : str
+        Column of ``traces.csv`` (e.g. ``"displacement_um"``).
+    warn, alarm : float
+        Levels in the metric's unit. For ``"above"`` alarm ≥ warn; for ``"below"`` alarm ≤ warn; for
+        ``"abs_above"`` 0 ≤ warn ≤ alarm and the levels apply to ``abs(value)``.
+    direction : str
+        ``"above"``, ``"below"`` or ``"abs_above"``.
+    persist_s : float
+        Seconds (session time) a value must stay beyond a level before the state is entered, and back within it
+        before the state is left.
+    label, unit : str
+        For display (e.g. ``"Displacement"``, ``"µm"``).
+    """
+
+    metric: str
+    warn: float
+    alarm: float
+    direction: str
+    persist_s: float
+    label: str
+    unit: str
+
+    def state_of(self, value: float) -> str:
+        """Instantaneous state of ``value`` (no persistence).
+
+        Returns
+        -------
+        state : str
+            ``"normal"``, ``"warning"`` or ``"alarm"``; ``"unknown"`` when ``value`` is NaN or missing (the
+            tracker then keeps the previous state).
+        """
+        try:
+            v = float(value)
+        except (TypeError, ValueError):
+            return "unknown"
+        if math.isnan(v):
+            return "unknown"
+        if self.direction == "below":
+            return "alarm" if v < self.alarm else "warning" if v < self.warn else "normal"
+        if self.direction == "abs_above":
+            v = abs(v)
+        return "alarm" if v > self.alarm else "warning" if v > self.warn else "normal"
+
+    def level(self, state: str) -> float:
+        """The level belonging to ``state`` ("warning" or "alarm")."""
+        return self.alarm if state == "alarm" else self.warn
+
+    def describe(self, state: str) -> str:
+        """E.g. ``"above alarm 5 µm"`` or ``"|value| above warning 2 µm"``."""
+        word = {"above": "above", "below": "below", "abs_above": "beyond ±"}[self.direction]
+        unit = f" {self.unit}" if self.unit else ""
+        return f"{word}{'' if word.endswith('±') else ' '}{_fmt(self.level(state))}{unit} ({state} level)"
+
+
+@dataclass(frozen=True, slots=True)
+class Profile:
+    """A loaded threshold profile.
+
+    Attributes
+    ----------
+    name : str
+        File stem (e.g. ``"awake_headfixed"``).
+    path : pathlib.Path
+        The TOML file.
+    description : str
+    caution : str
+        Text shown wherever advice touches laser power or the animal.
+    limits : dict of str to Limit
+        Keyed by metric (column name).
+    extends : tuple of str
+        Names of the profiles this one was built on, nearest first.
+    """
+
+    name: str
+    path: Path
+    description: str
+    caution: str
+    limits: dict[str, Limit] = field(default_factory=dict)
+    extends: tuple[str, ...] = ()
+
+
+def profile_dirs() -> list[Path]:
+    """Folders searched for profiles by name: ``$QCMON_THRESHOLDS`` (``os.pathsep``-separated), then the bundled ones."""
+    dirs = [Path(p) for p in os.environ.get(_ENV, "").split(os.pathsep) if p]
+    dirs.append(Path(qcmon.__file__).resolve().parent.parent / "thresholds")
+    return dirs
+
+
+def list_profiles() -> dict[str, Path]:
+    """Profiles that can be loaded by name, ``{name: path}``; earlier folders of :func:`profile_dirs` win."""
+    found: dict[str, Path] = {}
+    for d in profile_dirs():
+        if d.is_dir():
+            for p in sorted(d.glob("*.toml")):
+                found.setdefault(p.stem, p)
+    return dict(sorted(found.items()))
+
+
+def load_profile(name_or_path: str | os.PathLike) -> Profile:
+    """Load and validate a threshold profile.
+
+    Parameters
+    ----------
+    name_or_path : str or path-like
+        A profile name (file stem looked up in :func:`profile_dirs`) or the path of a TOML file.
+
+    Returns
+    -------
+    Profile
+
+    Raises
+    ------
+    ProfileError
+        Unknown name, unreadable file, bad TOML, unknown key or metric, wrong type, levels on the wrong side
+        for the direction, negative persistence, or a cycle of ``extends``. The message names the file and key.
+    """
+    return _load(_resolve(name_or_path, None), ())
+
+
+def _resolve(name_or_path: str | os.PathLike, relative_to: Path | None) -> Path:
+    text = os.fspath(name_or_path)
+    if isinstance(name_or_path, os.PathLike) or text.endswith(".toml") or os.sep in text or "/" in text:
+        p = Path(text).expanduser()
+        if not p.is_absolute() and relative_to is not None:
+            p = relative_to.parent / p
+        if not p.is_file():
+            raise ProfileError(f"{p}: threshold profile not found")
+        return p
+    available = list_profiles()
+    if text not in available:
+        raise ProfileError(
+            f"unknown threshold profile {text!r}; allowed: {', '.join(available) or '(none found)'} "
+            f"(searched {', '.join(str(d) for d in profile_dirs())}), or give the path of a .toml file"
+        )
+    return available[text]
+
+
+def _load(path: Path, chain: tuple[Path, ...]) -> Profile:
+    path = path.resolve()
+    if path in chain:
+        raise ProfileError(
+            f"{path}: key 'extends': profiles extend each other in a cycle: "
+            + " -> ".join(str(p.name) for p in (*chain, path))
+        )
+    try:
+        with open(path, "rb") as fh:
+            doc = tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProfileError(f"{path}: not valid TOML: {exc}") from None
+    except OSError as exc:
+        raise ProfileError(f"{path}: cannot read threshold profile: {exc.strerror or exc}") from None
+
+    def err(key: str, what: str) -> ProfileError:
+        return ProfileError(f"{path}: key '{key}': {what}")
+
+    for key in doc:
+        if key not in _TOP_KEYS:
+            raise err(key, f"unknown key; allowed: {', '.join(_TOP_KEYS)}")
+    for key in ("description", "caution", "extends"):
+        if key in doc and not isinstance(doc[key], str):
+            raise err(key, f"must be a string, got {type(doc[key]).__name__}")
+    limits_doc = doc.get("limits", {})
+    if not isinstance(limits_doc, dict):
+        raise err("limits", "must be a table of metrics ([limits.<metric>])")
+
+    if "extends" in doc:
+        try:
+            base = _load(_resolve(doc["extends"], path), (*chain, path))
+        except ProfileError as exc:
+            raise err("extends", str(exc)) from None
+        merged = {m: _limit_fields(lim) for m, lim in base.limits.items()}
+        description, caution = base.description, base.caution
+        extends = (base.name, *base.extends)
+    else:
+        merged, description, caution, extends = {}, "", "", ()
+
+    for metric, table in limits_doc.items():
+        where = f"limits.{metric}"
+        if metric not in METRICS:
+            raise err(where, f"unknown metric; allowed: {', '.join(METRICS)}")
+        if not isinstance(table, dict):
+            raise err(where, "must be a table with keys " + ", ".join(_LIMIT_KEYS))
+        for key, value in table.items():
+            if key not in _LIMIT_KEYS:
+                raise err(f"{where}.{key}", f"unknown key; allowed: {', '.join(_LIMIT_KEYS)}")
+            _check_type(err, f"{where}.{key}", key, value)
+        if table.get("enabled", True) is False:
+            merged.pop(metric, None)
+            continue
+        fields = merged.setdefault(metric, {})
+        fields.update({k: v for k, v in table.items() if k != "enabled"})
+
+    limits: dict[str, Limit] = {}
+    for metric, fields in merged.items():
+        where = f"limits.{metric}"
+        for key in _REQUIRED_LIMIT_KEYS:
+            if key not in fields:
+                raise err(f"{where}.{key}", "missing; every metric needs " + ", ".join(_REQUIRED_LIMIT_KEYS))
+        warn, alarm, direction = float(fields["warn"]), float(fields["alarm"]), fields["direction"]
+        if direction == "above" and alarm < warn:
+            raise err(where, f"direction 'above' needs alarm >= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        if direction == "below" and alarm > warn:
+            raise err(where, f"direction 'below' needs alarm <= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        if direction == "abs_above" and not 0 <= warn <= alarm:
+            raise err(where, f"direction 'abs_above' needs 0 <= warn <= alarm (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        column = BY_NAME[metric]
+        limits[metric] = Limit(
+            metric=metric,
+            warn=warn,
+            alarm=alarm,
+            direction=direction,
+            persist_s=float(fields["persist_s"]),
+            label=fields.get("label", metric.replace("_", " ")),
+            unit=fields.get("unit", column.unit),
+        )
+    description = doc.get("description", description)
+    caution = doc.get("caution", caution)
+    if not caution.strip():
+        raise err("caution", "missing or empty (set it here or in the profile this one extends); "
+                             "every profile carries the caution shown beside advice on laser power")
+    return Profile(name=path.stem, path=path, description=description, caution=caution, limits=limits,
+                   extends=extends)
+
+
+def _limit_fields(lim: Limit) -> dict[str, object]:
+    return {"warn": lim.warn, "alarm": lim.alarm, "direction": lim.direction, "persist_s": lim.persist_s,
+            "label": lim.label, "unit": lim.unit}
+
+
+def _check_type(err, where: str, key: str, value: object) -> None:
+    if key in ("warn", "alarm", "persist_s"):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise err(where, f"must be a number, got {type(value).__name__} {value!r}")
+        if not math.isfinite(value):
+            raise err(where, f"must be a finite number, got {value!r}")
+        if key == "persist_s" and value < 0:
+            raise err(where, f"must be >= 0 seconds, got {value!r}")
+    elif key == "direction":
+        if value not in DIRECTIONS:
+            raise err(where, f"got {value!r}; allowed: {', '.join(DIRECTIONS)}")
+    elif key in ("label", "unit"):
+        if not isinstance(value, str):
+            raise err(where, f"must be a string, got {type(value).__name__}")
+    elif key == "enabled":
+        if not isinstance(value, bool):
+            raise err(where, f"must be true or false, got {value!r}")
+
+
+def _fmt(v: float) -> str:
+    return f"{v:.4g}"
+
+
+def _now() -> str:
+    return datetime.now().astimezone().isoformat(timespec="seconds")
+
+
+@dataclass(slots=True)
+class _MetricState:
+    state: str = "normal"
+    started_frame: int = -1
+    started_time_s: float = math.nan
+    # first frame/time of the current unbroken run at or beyond each level (entry), or back within (exit)
+    onset: dict[str, tuple[int, float]] = field(default_factory=dict)
+    recovery: tuple[int, float] | None = None
+
+
+class ThresholdTracker:
+    """Turns measurement rows into warning/alarm events according to a :class:`Profile`.
+
+    Parameters
+    ----------
+    profile : Profile
+
+    Notes
+    -----
+    Each (channel, plane) and metric is tracked independently; see the module docstring for the rule.
+    Rows of one (channel, plane) must come in acquisition order.
+    """
+
+    def __init__(self, profile: Profile):
+        if not isinstance(profile, Profile):
+            raise ValueError(f"profile must be a Profile (see load_profile), got {type(profile).__name__}")
+        self.profile = profile
+        self._state: dict[tuple[int, int], dict[str, _MetricState]] = {}
+        self._last_row: dict[tuple[int, int], Mapping[str, object]] = {}
+
+    @property
+    def states(self) -> dict[tuple[int, int], dict[str, str]]:
+        """Current state per (channel, plane) and metric: ``"normal"``, ``"warning"`` or ``"alarm"``."""
+        return {key: {m: s.state for m, s in per.items()} for key, per in self._state.items()}
+
+    @property
+    def overall(self) -> str:
+        """The worst current state over every channel, plane and metric (``"normal"`` before any row)."""
+        worst = "normal"
+        for per in self._state.values():
+            for s in per.values():
+                if _RANK[s.state] > _RANK[worst]:
+                    worst = s.state
+        return worst
+
+    def update(self, row: Mapping[str, object]) -> list[Event]:
+        """Feed one measurement row; return the events it causes (possibly none).
+
+        Parameters
+        ----------
+        row : mapping
+            Keyed by :data:`qcmon.columns.NAMES`; needs ``frame``, ``time_s``, ``channel``, ``plane``.
+        """
+        key = (int(row.get("channel", 0)), int(row.get("plane", 0)))
+        per = self._state.get(key)
+        if per is None:
+            per = self._state[key] = {m: _MetricState() for m in self.profile.limits}
+        self._last_row[key] = row
+        frame = int(row.get("frame", -1))
+        t = _as_float(row.get("time_s"))
+        events: list[Event] = []
+        for metric, lim in self.profile.limits.items():
+            ms = per[metric]
+            value = _as_float(row.get(metric))
+            now = lim.state_of(value) if math.isfinite(t) else "unknown"
+            if now == "unknown":
+                ms.onset.clear()
+                ms.recovery = None
+                continue
+            rank = _RANK[now]
+            # persistence of runs at or beyond each level
+            for level in ("warning", "alarm"):
+                if rank >= _RANK[level]:
+                    ms.onset.setdefault(level, (frame, t))
+                else:
+                    ms.onset.pop(level, None)
+            cur = _RANK[ms.state]
+            target = ms.state
+            # escalation: the most severe level whose run has lasted persist_s
+            for level in ("alarm", "warning"):
+                if _RANK[level] > cur and level in ms.onset and t - ms.onset[level][1] >= lim.persist_s:
+                    target = level
+                    break
+            if target == ms.state and cur > 0:
+                if rank < cur:
+                    if ms.recovery is None:
+                        ms.recovery = (frame, t)
+                    if t - ms.recovery[1] >= lim.persist_s:
+                        target = now
+                else:
+                    ms.recovery = None
+            if target != ms.state:
+                events.extend(self._change(key, ms, lim, target, value, frame, t))
+        return events
+
+    def close(self, row: Mapping[str, object] | None = None) -> list[Event]:
+        """End every open warning/alarm at the end of the session.
+
+        Parameters
+        ----------
+        row : mapping, optional
+            The session's last row (frame, time_s, channel, plane); by default the last row seen for each
+            (channel, plane).
+
+        Returns
+        -------
+        list of Event
+            One ``end`` event per open state, its message saying the session ended it.
+        """
+        events: list[Event] = []
+        for key, per in self._state.items():
+            last = self._last_row.get(key, {})
+            if row is not None and (int(row.get("channel", 0)), int(row.get("plane", 0))) == key:
+                last = row
+            frame = int(last.get("frame", -1))
+            t = _as_float(last.get("time_s"))
+            for metric, ms in per.items():
+                if ms.state != "normal":
+                    lim = self.profile.limits[metric]
+                    events.extend(self._change(key, ms, lim, "normal", _as_float(last.get(metric)), frame, t,
+                                               by_session_end=True))
+                ms.onset.clear()
+                ms.recovery = None
+        return events
+
+    def _change(self, key, ms: _MetricState, lim: Limit, target: str, value: float, frame: int, t: float,
+                *, by_session_end: bool = False) -> list[Event]:
+        channel, plane = key
+        where = f" (channel {channel}, plane {plane})"
+        unit = f" {lim.unit}" if lim.unit else ""
+        events = []
+        if ms.state != "normal":
+            lasted = t - ms.started_time_s
+            if by_session_end:
+                msg = (f"{lim.label} {ms.state} ended by the session end after {lasted:.1f} s, "
+                       f"still {lim.describe(ms.state)}; last value {_fmt(value)}{unit}{where}")
+            else:
+                msg = (f"{lim.label} back from {ms.state} after {lasted:.1f} s: {_fmt(value)}{unit}, no longer "
+                       f"{lim.describe(ms.state)} for {_fmt(lim.persist_s)} s{where}")
+            events.append(Event(kind="end", metric=lim.metric, state=ms.state, value=value,
+                                limit=lim.level(ms.state), frame=frame, time_s=t, started_frame=ms.started_frame,
+                                started_time_s=ms.started_time_s, channel=channel, plane=plane, message=msg,
+                                wall_time=_now()))
+        if target != "normal":
+            onset = ms.onset.get(target, (frame, t))
+            msg = (f"{lim.label} {target}: {_fmt(value)}{unit}, {lim.describe(target)} since "
+                   f"t={onset[1]:.2f} s (frame {onset[0]}){where}")
+            events.append(Event(kind="start", metric=lim.metric, state=target, value=value,
+                                limit=lim.level(target), frame=frame, time_s=t, started_frame=frame,
+                                started_time_s=t, channel=channel, plane=plane, message=msg, wall_time=_now()))
+        ms.state = target
+        ms.started_frame, ms.started_time_s = frame, t
+        ms.recovery = None
+        return events
+
+
+def _as_float(value: object) -> float:
+    if value is None or value == "":
+        return math.nan
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return math.nan
