@@ -1,0 +1,501 @@
+"""The end-of-session summary (``summary.json``), the frame ranges to exclude (``exclude.csv``) and rebuilding both
+(and ``report.html``) from the appended record alone.
+
+Keys of ``summary.json`` (schema ``qcmon.summary/1``). Statistics ignore unknown (NaN) values; a statistic with
+no data is ``null``. Over several channels/planes the top-level statistics pool every row (max, min, mean, RMS,
+median, percentiles) or take the worst stream (fits and final values); ``streams`` holds each (channel, plane).
+
+=================================  =========  ==================================================================
+key                                unit       meaning
+=================================  =========  ==================================================================
+``schema``                                    ``"qcmon.summary/1"``
+``qcmon_version``                             version that wrote the file
+``frames``                                    rows in ``traces.csv`` (all channels and planes)
+``duration_s``                     s          last ``time_s`` − first ``time_s``
+``profile``                                   ``{"name", "path", "description", "caution"}``
+``facts``                                     acquisition facts ``{key: {"value", "origin"}}``
+``verdict``                                   worst metric verdict: ``"pass"``, ``"warning"``, ``"fail"``
+                                              (``"unknown"`` when no metric could be checked)
+``events``                                    counts: ``warnings``, ``alarms``, ``notes``, ``problems``
+``motion.max_px``                  px         largest ``displacement_px``
+``motion.rms_px``                  px         root mean square of ``displacement_px``
+``motion.max_um``                  µm         largest ``displacement_um`` (null without pixel size)
+``motion.rms_um``                  µm         root mean square of ``displacement_um``
+``registration.min_corr``                     smallest ``reg_corr``
+``registration.median_corr``                  median ``reg_corr``
+``z.max_abs_um``                   µm         largest ``|z_um|`` (null without a reference stack)
+``z.final_um``                     µm         last known ``z_um``
+``focus.min_corr``                            smallest ``focus_corr``
+``focus.final_corr``                          last known ``focus_corr``
+``bleach.slope_pct_per_min``       %/min      initial slope of an exponential fitted to ``baseline_f`` over the
+                                              whole session (log-linear least squares), % of initial per min
+``bleach.tau_min``                 min        time constant of that exponential (null unless it dims)
+``bleach.max_window_pct_per_min``  %/min      most negative ``bleach_pct_per_min`` (trailing-window slope)
+``brightness.final_pct``           %          last known ``brightness_pct``
+``brightness.min_pct``             %          smallest ``brightness_pct``
+``saturation.max_frac``            0..1       largest ``saturated_frac``
+``saturation.mean_frac``           0..1       mean ``saturated_frac``
+``clipping.max_frac``              0..1       largest ``clipped_frac``
+``clipping.mean_frac``             0..1       mean ``clipped_frac``
+``snr.median``                                median ``snr``
+``snr.p05``                                   5th percentile of ``snr``
+``photon_transfer.gain``           DN/photon  conversion gain (from the engine, via ``extra``)
+``photon_transfer.dark_level``     DN         dark level (from the engine, via ``extra``)
+``line_offset.median_px``          px         median ``line_offset_px``
+``line_offset.max_abs_px``         px         largest ``|line_offset_px|``
+``<group>.verdict``                           ``"pass"`` / ``"warning"`` / ``"fail"`` from the threshold events of
+                                              the group's metrics; ``"unknown"`` when the profile sets no limit
+                                              for them or there is no data
+``<group>.warning_s``              s          session time spent in warning (from the events)
+``<group>.alarm_s``                s          session time spent in alarm (from the events)
+``streams``                                   list, one entry per (channel, plane): ``channel``, ``plane``,
+                                              ``frames``, ``duration_s``, ``verdict`` and the groups above
+``exclude``                                   list of ``[channel, plane, first_frame, last_frame, reason]``
+``notes``                                     why a statistic is null (e.g. too few frames for a fit)
+=================================  =========  ==================================================================
+
+Keys of ``extra`` given as ``"group.key"`` are placed under their group (``extra={"photon_transfer.gain": 2.0}``
+gives ``summary["photon_transfer"]["gain"]``); other keys are copied as they are.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from pathlib import Path
+from typing import Iterable, Mapping, NamedTuple, Sequence
+
+import numpy as np
+
+import qcmon
+from qcmon.events import Event
+from qcmon.thresholds import Profile, load_profile
+
+__all__ = [
+    "GROUPS",
+    "SCHEMA",
+    "ExcludeRange",
+    "exclude_ranges",
+    "exclude_csv",
+    "fit_bleaching",
+    "rebuild",
+    "summarize_traces",
+    "write_outputs",
+]
+
+SCHEMA = "qcmon.summary/1"
+
+#: Summary groups and the ``traces.csv`` metrics whose events decide their verdict.
+GROUPS: dict[str, tuple[str, ...]] = {
+    "motion": ("displacement_um", "displacement_px"),
+    "registration": ("reg_corr",),
+    "z": ("z_um",),
+    "focus": ("focus_corr",),
+    "bleach": ("bleach_pct_per_min",),
+    "brightness": ("brightness_pct",),
+    "saturation": ("saturated_frac",),
+    "clipping": ("clipped_frac",),
+    "snr": ("snr",),
+    "line_offset": ("line_offset_px",),
+}
+
+_VERDICT_RANK = {"unknown": -1, "pass": 0, "warning": 1, "fail": 2}
+#: Metrics whose values beyond the alarm level exclude a frame even outside a declared alarm.
+_EXCLUDE_BY_VALUE = ("displacement_um", "displacement_px", "z_um")
+
+
+class ExcludeRange(NamedTuple):
+    """Frames ``first_frame``..``last_frame`` (inclusive) of one (channel, plane) to leave out of analysis."""
+
+    channel: int
+    plane: int
+    first_frame: int
+    last_frame: int
+    reason: str
+
+
+def fit_bleaching(time_s: np.ndarray, baseline_f: np.ndarray) -> tuple[float, float]:
+    """Fit ``b(t) = b0 · exp(k t)`` to the above-dark baseline by log-linear least squares.
+
+    Parameters
+    ----------
+    time_s : (N,) ndarray
+        Session time, s.
+    baseline_f : (N,) ndarray
+        Baseline above the dark level, DN. Values that are not finite or not positive are left out.
+
+    Returns
+    -------
+    slope_pct_per_min : float
+        ``100 · k`` with ``k`` in 1/min: the initial slope of the fitted exponential in % of the fitted initial
+        brightness per minute (negative = dimming).
+    tau_min : float
+        ``-1 / k`` in minutes when the baseline dims (``k < 0``), else NaN.
+
+    Warns
+    -----
+    UserWarning
+        Fewer than 3 usable points or no time span: both values NaN.
+
+    Notes
+    -----
+    Least squares on ``ln b`` weighs every frame's relative error equally; for a pure exponential it gives the
+    same rate as a non-linear fit (``scipy.optimize.curve_fit``), which the tests check.
+    """
+    t = np.asarray(time_s, dtype=float)
+    b = np.asarray(baseline_f, dtype=float)
+    if t.shape != b.shape:
+        raise ValueError(f"time_s and baseline_f must have the same shape, got {t.shape} and {b.shape}")
+    ok = np.isfinite(t) & np.isfinite(b) & (b > 0)
+    if ok.sum() < 3 or np.ptp(t[ok]) <= 0:
+        warnings.warn("bleaching fit needs at least 3 frames with a positive baseline over a time span; "
+                      "slope and time constant are NaN", UserWarning, stacklevel=2)
+        return math.nan, math.nan
+    t_min = t[ok] / 60.0
+    k = float(np.polynomial.polynomial.polyfit(t_min, np.log(b[ok]), 1)[1])
+    return 100.0 * k, (-1.0 / k if k < 0 else math.nan)
+
+
+def _finite(a: np.ndarray) -> np.ndarray:
+    a = np.asarray(a, dtype=float)
+    return a[np.isfinite(a)]
+
+
+def _stat(a: np.ndarray, how: str) -> float:
+    v = _finite(a)
+    if v.size == 0:
+        return math.nan
+    if how == "max":
+        return float(v.max())
+    if how == "min":
+        return float(v.min())
+    if how == "mean":
+        return float(v.mean())
+    if how == "rms":
+        return float(np.sqrt(np.mean(v * v)))
+    if how == "median":
+        return float(np.median(v))
+    if how == "p05":
+        return float(np.percentile(v, 5))
+    if how == "max_abs":
+        return float(np.abs(v).max())
+    if how == "final":
+        return float(v[-1])
+    raise ValueError(how)
+
+
+#: group -> key -> (column, statistic). Pooled statistics over streams; "final" is per stream only.
+_STATS: dict[str, dict[str, tuple[str, str]]] = {
+    "motion": {"max_px": ("displacement_px", "max"), "rms_px": ("displacement_px", "rms"),
+               "max_um": ("displacement_um", "max"), "rms_um": ("displacement_um", "rms")},
+    "registration": {"min_corr": ("reg_corr", "min"), "median_corr": ("reg_corr", "median")},
+    "z": {"max_abs_um": ("z_um", "max_abs"), "final_um": ("z_um", "final")},
+    "focus": {"min_corr": ("focus_corr", "min"), "final_corr": ("focus_corr", "final")},
+    "bleach": {"max_window_pct_per_min": ("bleach_pct_per_min", "min")},
+    "brightness": {"final_pct": ("brightness_pct", "final"), "min_pct": ("brightness_pct", "min")},
+    "saturation": {"max_frac": ("saturated_frac", "max"), "mean_frac": ("saturated_frac", "mean")},
+    "clipping": {"max_frac": ("clipped_frac", "max"), "mean_frac": ("clipped_frac", "mean")},
+    "snr": {"median": ("snr", "median"), "p05": ("snr", "p05")},
+    "line_offset": {"median_px": ("line_offset_px", "median"), "max_abs_px": ("line_offset_px", "max_abs")},
+}
+
+
+def _streams(traces: Mapping[str, np.ndarray]) -> dict[tuple[int, int], np.ndarray]:
+    """Row indices of each (channel, plane), in frame order."""
+    ch = np.asarray(traces["channel"], dtype=np.int64)
+    pl = np.asarray(traces["plane"], dtype=np.int64)
+    fr = np.asarray(traces["frame"], dtype=np.int64)
+    out = {}
+    for c, p in sorted(set(zip(ch.tolist(), pl.tolist()))):
+        idx = np.flatnonzero((ch == c) & (pl == p))
+        out[(c, p)] = idx[np.argsort(fr[idx], kind="stable")]
+    return out
+
+
+def _periods(events: Sequence[Event], key: tuple[int, int], metrics: Iterable[str], state: str,
+             last_frame: int, last_time: float) -> list[tuple[int, int, float, float]]:
+    """(first_frame, last_frame, start_s, end_s) of each declared ``state`` of ``metrics`` in one stream."""
+    metrics = set(metrics)
+    open_: dict[str, tuple[int, float]] = {}
+    out = []
+    for ev in events:
+        if ev.metric not in metrics or ev.state != state or (ev.channel, ev.plane) != key:
+            continue
+        if ev.kind == "start":
+            open_[ev.metric] = (ev.frame, ev.time_s)
+        elif ev.kind == "end":
+            start = open_.pop(ev.metric, (ev.started_frame, ev.started_time_s))
+            out.append((start[0], ev.frame, start[1], ev.time_s))
+    for start in open_.values():  # record ended without an end event (crash): open until the last frame
+        out.append((start[0], last_frame, start[1], last_time))
+    return out
+
+
+def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]) -> dict:
+    t = np.asarray(traces["time_s"], dtype=float)[idx]
+    tf = _finite(t)
+    frames = np.asarray(traces["frame"], dtype=np.int64)[idx]
+    last_frame = int(frames[-1]) if frames.size else -1
+    last_time = float(tf[-1]) if tf.size else math.nan
+    out: dict[str, object] = {"channel": key[0], "plane": key[1], "frames": int(idx.size),
+                              "duration_s": float(tf[-1] - tf[0]) if tf.size else math.nan}
+    for group, stats in _STATS.items():
+        out[group] = {name: _stat(np.asarray(traces[col], dtype=float)[idx], how)
+                      for name, (col, how) in stats.items()}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        slope, tau = fit_bleaching(t, np.asarray(traces["baseline_f"], dtype=float)[idx])
+    for w in caught:
+        notes.append(f"channel {key[0]}, plane {key[1]}: {w.message}")
+    out["bleach"].update(slope_pct_per_min=slope, tau_min=tau)
+    worst = "unknown"
+    for group, metrics in GROUPS.items():
+        g = out[group]
+        limited = [m for m in metrics if m in profile.limits
+                   and np.isfinite(np.asarray(traces[m], dtype=float)[idx]).any()]
+        spans = {s: _periods(events, key, metrics, s, last_frame, last_time) for s in ("warning", "alarm")}
+        for s in ("warning", "alarm"):
+            g[f"{s}_s"] = float(sum(e - b for _, _, b, e in spans[s] if math.isfinite(e - b)))
+        if spans["alarm"]:
+            g["verdict"] = "fail"
+        elif spans["warning"]:
+            g["verdict"] = "warning"
+        else:
+            g["verdict"] = "pass" if limited else "unknown"
+        if _VERDICT_RANK[g["verdict"]] > _VERDICT_RANK[worst]:
+            worst = g["verdict"]
+    out["verdict"] = worst
+    return out
+
+
+def _worst_final(values: list[float], *, prefer: str) -> float:
+    v = [x for x in values if math.isfinite(x)]
+    if not v:
+        return math.nan
+    if prefer == "min":
+        return min(v)
+    return max(v, key=abs)
+
+
+def _merge_extra(summary: dict, extra: Mapping[str, object]) -> None:
+    for key, value in extra.items():
+        if "." in key:
+            group, sub = key.split(".", 1)
+            target = summary.setdefault(group, {})
+            if isinstance(target, dict):
+                target[sub] = value
+                continue
+        if isinstance(value, Mapping) and isinstance(summary.get(key), dict):
+            summary[key].update(value)
+        else:
+            summary[key] = value
+
+
+def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], *, facts: Mapping | None = None,
+                     profile: Profile, extra: Mapping[str, object] | None = None) -> dict:
+    """Build the content of ``summary.json`` (keys and units: see the module docstring).
+
+    Parameters
+    ----------
+    traces : dict of str to ndarray
+        Columns of ``traces.csv`` (:func:`qcmon.record.read_traces` or :func:`qcmon.record.rows_to_traces`).
+    events : sequence of Event
+        The session's events in order.
+    facts : mapping, optional
+        ``AcquisitionFacts.as_dict()``.
+    profile : Profile
+        The threshold profile the session ran with.
+    extra : mapping, optional
+        Results of the engine (photon transfer gain and dark level, ...), merged in.
+
+    Returns
+    -------
+    dict
+        Plain JSON-able content (NaN stands for null; :func:`write_outputs` writes it as null).
+    """
+    if not isinstance(profile, Profile):
+        raise ValueError(f"profile must be a Profile, got {type(profile).__name__}")
+    events = list(events)
+    notes: list[str] = []
+    streams = _streams(traces)
+    per = [_stream_summary(traces, idx, events, key, profile, notes) for key, idx in streams.items()]
+    t = _finite(traces["time_s"])
+    summary: dict[str, object] = {
+        "schema": SCHEMA,
+        "qcmon_version": qcmon.__version__,
+        "frames": int(len(traces["frame"])),
+        "duration_s": float(t.max() - t.min()) if t.size else math.nan,
+        "profile": {"name": profile.name, "path": str(profile.path), "description": profile.description,
+                    "caution": profile.caution},
+        "facts": dict(facts or {}),
+        "verdict": "unknown",
+        "events": {
+            "warnings": sum(1 for e in events if e.kind == "start" and e.state == "warning"),
+            "alarms": sum(1 for e in events if e.kind == "start" and e.state == "alarm"),
+            "notes": sum(1 for e in events if e.kind == "note"),
+            "problems": sum(1 for e in events if e.kind == "problem"),
+        },
+    }
+    for group, stats in _STATS.items():
+        g: dict[str, object] = {}
+        for name, (col, how) in stats.items():
+            if how == "final":
+                g[name] = _worst_final([s[group][name] for s in per],
+                                       prefer="min" if group in ("brightness", "focus") else "abs")
+            else:
+                g[name] = _stat(traces[col], how)
+        summary[group] = g
+    b = summary["bleach"]
+    slopes = [s["bleach"]["slope_pct_per_min"] for s in per]
+    b["slope_pct_per_min"] = _worst_final(slopes, prefer="min")
+    taus = [s["bleach"]["tau_min"] for s in per if math.isfinite(s["bleach"]["tau_min"])]
+    b["tau_min"] = min(taus) if taus else math.nan
+    summary["photon_transfer"] = {"gain": math.nan, "dark_level": math.nan}
+    worst = "unknown"
+    for group in GROUPS:
+        g = summary[group]
+        verdicts = [s[group]["verdict"] for s in per]
+        g["verdict"] = max(verdicts, key=_VERDICT_RANK.__getitem__) if verdicts else "unknown"
+        for s in ("warning_s", "alarm_s"):
+            g[s] = float(sum(p[group][s] for p in per))
+        if _VERDICT_RANK[g["verdict"]] > _VERDICT_RANK[worst]:
+            worst = g["verdict"]
+    summary["verdict"] = worst
+    summary["streams"] = per
+    summary["exclude"] = [list(r) for r in exclude_ranges(traces, events, profile)]
+    summary["notes"] = notes
+    if extra:
+        _merge_extra(summary, extra)
+    return summary
+
+
+def exclude_ranges(traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile
+                   ) -> list[ExcludeRange]:
+    """Frame ranges to leave out of analysis.
+
+    A frame is excluded while any metric is in a declared alarm (from its start event's frame to its end event's
+    frame, inclusive; an alarm the record never ended lasts to the stream's last frame), and wherever
+    ``displacement_um``, ``displacement_px`` or ``z_um`` is beyond its alarm level (even before the persistence
+    time declared the alarm).
+
+    Returns
+    -------
+    list of ExcludeRange
+        ``(channel, plane, first_frame, last_frame, reason)`` sorted by stream and frame; ``reason`` lists the
+        causes separated by ``"; "``, e.g. ``"alarm: saturated_frac; displacement_um beyond alarm level"``.
+    """
+    events = list(events)
+    out: list[ExcludeRange] = []
+    for key, idx in _streams(traces).items():
+        frames = np.asarray(traces["frame"], dtype=np.int64)[idx]
+        if frames.size == 0:
+            continue
+        masks: dict[str, np.ndarray] = {}
+        for metric in profile.limits:
+            for first, last, _, _ in _periods(events, key, (metric,), "alarm", int(frames[-1]), math.nan):
+                m = masks.setdefault(f"alarm: {metric}", np.zeros(frames.size, bool))
+                m |= (frames >= first) & (frames <= last)
+        for metric in _EXCLUDE_BY_VALUE:
+            lim = profile.limits.get(metric)
+            if lim is None:
+                continue
+            v = np.asarray(traces[metric], dtype=float)[idx]
+            with np.errstate(invalid="ignore"):
+                a = np.abs(v) if lim.direction == "abs_above" else v
+                beyond = a < lim.alarm if lim.direction == "below" else a > lim.alarm
+            if beyond.any():
+                masks[f"{metric} beyond alarm level"] = beyond
+        if not masks:
+            continue
+        reasons = sorted(masks)
+        stack = np.vstack([masks[r] for r in reasons])
+        anym = stack.any(axis=0)
+        edges = np.flatnonzero(np.diff(np.concatenate(([0], anym.view(np.int8), [0]))))
+        for lo, hi in zip(edges[::2], edges[1::2]):
+            why = "; ".join(r for r, m in zip(reasons, stack) if m[lo:hi].any())
+            out.append(ExcludeRange(key[0], key[1], int(frames[lo]), int(frames[hi - 1]), why))
+    return out
+
+
+def exclude_csv(ranges: Iterable[ExcludeRange]) -> str:
+    """Text of ``exclude.csv``: columns channel, plane, first_frame, last_frame, reason."""
+    import csv
+    import io
+
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(("channel", "plane", "first_frame", "last_frame", "reason"))
+    w.writerows(ranges)
+    return buf.getvalue()
+
+
+def _jsonable(obj):
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def summary_json(summary: Mapping) -> str:
+    """``summary`` as JSON text (NaN written as null)."""
+    return json.dumps(_jsonable(summary), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events: Sequence[Event], *,
+                  facts: Mapping | None = None, profile: Profile, extra: Mapping | None = None) -> dict:
+    """Write ``summary.json``, ``exclude.csv`` and ``report.html`` atomically into ``out_dir``.
+
+    Returns
+    -------
+    dict
+        The summary.
+    """
+    from qcmon.record import write_atomic
+    from qcmon.report import write_report
+
+    out_dir = Path(out_dir)
+    summary = summarize_traces(traces, events, facts=facts, profile=profile, extra=extra)
+    write_atomic(out_dir / "summary.json", summary_json(summary))
+    write_atomic(out_dir / "exclude.csv", exclude_csv(exclude_ranges(traces, events, profile)))
+    write_report(out_dir, summary, traces, events, profile, facts or {})
+    return summary
+
+
+def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
+    """Rebuild ``summary.json``, ``exclude.csv`` and ``report.html`` from the appended record alone.
+
+    Parameters
+    ----------
+    out_dir : path-like
+        Folder with ``traces.csv`` and ``events.jsonl`` (and ``session.json`` if the session wrote one: facts,
+        profile name, engine results).
+    profile : Profile or str, optional
+        Threshold profile (object, name or path); default: the one named in ``session.json``, else
+        ``"default"``. Verdicts come from the recorded events, which the session's own profile produced.
+
+    Returns
+    -------
+    dict
+        The summary written.
+    """
+    from qcmon.record import read_events, read_info, read_traces
+
+    out_dir = Path(out_dir)
+    info = read_info(out_dir)
+    if profile is None:
+        profile = info.get("profile", "default")
+    if not isinstance(profile, Profile):
+        profile = load_profile(profile)
+    traces = read_traces(out_dir)
+    events = read_events(out_dir)
+    return write_outputs(out_dir, traces, events, facts=info.get("facts", {}), profile=profile,
+                         extra=info.get("extra"))
