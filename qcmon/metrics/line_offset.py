@@ -1,0 +1,110 @@
+"""Offset between the two scan directions of a bidirectionally scanned frame."""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+from scipy import fft as sfft
+from scipy import signal
+
+from qcmon.metrics._validate import as_image, positive_int
+
+__all__ = ["line_offset_px"]
+
+
+def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
+    """Subpixel shift of the odd rows' content against the even rows' (bidirectional scanning).
+
+    Each odd row is compared with the mean of the even rows above and below it (so that a slanted structure,
+    which shifts from one row to the next, does not bias the result). The 1-D cross-power spectra of these row
+    pairs (row means removed) are summed, the integer peak of their inverse transform is found, and the peak is
+    refined by evaluating the band-limited cross-correlation on a fine grid around it (the 1-D form of the
+    matrix-multiply DFT upsampling of Guizar-Sicairos et al. 2008).
+
+    Parameters
+    ----------
+    frame : (M, N) array_like
+        One frame, rows by columns, M >= 3, N >= 8, any integer or float dtype.
+    row_step : int, optional
+        Use every ``row_step``-th odd row only (fewer FFTs; precision falls roughly as ``sqrt(row_step)``).
+        Default 1.
+    upsample : int, optional
+        Subpixel resolution is ``1 / upsample`` px (then refined once more ten times finer). Default 100.
+
+    Returns
+    -------
+    offset_px : float
+        Shift of the odd rows' content relative to the even rows', in px, + toward increasing column index,
+        in ``(-N/2, N/2)``. NaN with a UserWarning when the frame has no structure along the rows (e.g. constant).
+
+    Notes
+    -----
+    A pure shift ``d`` makes the cross-correlation the autocorrelation translated by ``d``; the autocorrelation is
+    symmetric, so the maximum of its band-limited interpolation lies exactly at ``d``. The spectrum is not
+    whitened (no phase-correlation normalisation): at a few photons per pixel the high frequencies are mostly
+    shot noise, and whitening would give them the same weight as the structured low frequencies. Frames are
+    not periodic; content leaving one edge and entering the other makes a bias of order ``d / N`` of the shift,
+    well below 0.01 px for ``|d| <= 3`` px at N = 512.
+
+    References
+    ----------
+    .. [1] C. D. Kuglin and D. C. Hines, "The phase correlation image alignment method", Proc. IEEE Int. Conf.
+       Cybernetics and Society, 163-165 (1975).
+    .. [2] M. Guizar-Sicairos, S. T. Thurman and J. R. Fienup, "Efficient subpixel image registration
+       algorithms", Optics Letters 33(2), 156-158 (2008).
+    """
+    a = as_image(frame, "frame", min_shape=(3, 8))
+    row_step = positive_int(row_step, "row_step")
+    upsample = positive_int(upsample, "upsample")
+    m, n = a.shape
+    n_odd = (m - 1) // 2  # odd rows 1, 3, ... that have an even row on both sides
+    odd_rows = np.arange(1, 2 * n_odd, 2)[::row_step]
+    f = a.astype(np.float32, copy=False)
+    odd = f[odd_rows]
+    even = 0.5 * (f[odd_rows - 1] + f[odd_rows + 1])
+    taper = _edge_taper(n)
+    odd = (odd - odd.mean(axis=1, keepdims=True)) * taper
+    even = (even - even.mean(axis=1, keepdims=True)) * taper
+    spec_odd = sfft.rfft(odd, axis=1)
+    spec_even = sfft.rfft(even, axis=1)
+    cross = np.einsum("ij,ij->j", spec_odd, spec_even.conj()).astype(np.complex128)
+    if n % 2 == 0:
+        cross[-1] = 0.0  # the Nyquist term has no well-defined phase for a fractional shift
+    if not np.any(np.abs(cross) > 0):
+        warnings.warn("line_offset_px: the frame has no structure along its rows; offset undefined",
+                      UserWarning, stacklevel=2)
+        return math.nan
+    corr = sfft.irfft(cross, n=n)
+    peak = int(np.argmax(corr))
+    if peak > n // 2:
+        peak -= n
+    best = _refine_peak(cross, n, float(peak), half_width=1.0, step=1.0 / upsample)
+    best = _refine_peak(cross, n, best, half_width=1.0 / upsample, step=0.1 / upsample)
+    return float(best)
+
+
+def _edge_taper(n: int) -> np.ndarray:
+    """Tukey window (25 % cosine edges) so the jump between a row's two ends does not pull the peak to 0."""
+    return signal.windows.tukey(n, alpha=0.25).astype(np.float32)
+
+
+def _refine_peak(cross: np.ndarray, n: int, centre: float, *, half_width: float, step: float) -> float:
+    """Maximum of the band-limited cross-correlation ``c(s)`` on a grid of ``step`` px around ``centre``.
+
+    ``c(s) = Re[C_0 + 2 * sum_{k>=1} C_k exp(2 pi i k s / n)]`` from the half spectrum ``C`` of a real signal.
+    """
+    shifts = centre + np.arange(-half_width, half_width + step / 2, step)
+    k = np.arange(cross.size)
+    weights = np.full(cross.size, 2.0)
+    weights[0] = 1.0
+    kernel = np.exp(2j * np.pi * np.outer(shifts, k) / n)
+    values = (kernel @ (weights * cross)).real
+    i = int(np.argmax(values))
+    if 0 < i < values.size - 1:  # parabolic interpolation between the finest grid points
+        y0, y1, y2 = values[i - 1], values[i], values[i + 1]
+        denom = y0 - 2 * y1 + y2
+        frac = 0.5 * (y0 - y2) / denom if denom < 0 else 0.0
+        return float(shifts[i] + frac * step)
+    return float(shifts[i])

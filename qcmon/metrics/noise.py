@@ -1,0 +1,78 @@
+"""Per-pixel noise of a single frame: Immerkær's fast noise variance estimate."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from qcmon.metrics._validate import as_image, positive_int
+
+__all__ = ["immerkaer_sigma"]
+
+#: sqrt(pi / 2) / 6: turns the mean absolute Laplacian-difference response into sigma (Immerkær 1996, eq. 5).
+_SCALE = math.sqrt(math.pi / 2.0) / 6.0
+
+
+def immerkaer_sigma(image, *, row_step: int = 1) -> float:
+    """Standard deviation of additive white noise in one frame (Immerkær's method).
+
+    The frame is filtered with the 3x3 kernel ``N = [[1, -2, 1], [-2, 4, -2], [1, -2, 1]]`` (the difference of
+    two Laplacian approximations, blind to any locally quadratic signal) and the noise standard deviation is
+
+    ``sigma = sqrt(pi / 2) / (6 (W - 2) (H - 2)) * sum |image * N|``
+
+    over the interior pixels. ``N`` is separable (the outer product of ``[1, -2, 1]`` with itself), so the filter
+    is computed as two 1-D second differences, in float32.
+
+    Parameters
+    ----------
+    image : (M, N) array_like
+        One frame (any integer or float dtype), rows by columns, M, N >= 3.
+    row_step : int, optional
+        Use every ``row_step``-th output row only (the three input rows each output row needs are always
+        consecutive). The estimate stays unbiased; its relative standard error grows as
+        ``sqrt(row_step / ((M - 2) (N - 2)))`` times about 1.1 (Gaussian noise), i.e. about 0.4 % for a 512 x 512
+        frame with ``row_step=4``. Default 1 (every row, as in the paper).
+
+    Returns
+    -------
+    sigma : float
+        Noise standard deviation in the image's units (DN). 0 for a frame with no noise (e.g. constant).
+
+    Notes
+    -----
+    The estimate assumes noise that is white and of the same variance everywhere. For photon (Poisson) noise,
+    whose variance follows the signal, it gives (approximately) the mean of the local standard deviations over
+    the frame (a mean absolute deviation, scaled as for a Gaussian). Structure that is not locally quadratic
+    (edges, fine texture, a line offset between the scan directions) adds to the estimate, so it is an upper
+    bound on noisy, detailed images; Immerkær (1996) reports good agreement on natural images up to moderate
+    detail. Compare :func:`skimage.restoration.estimate_sigma`, a wavelet (Donoho & Johnstone 1994) estimate
+    which agrees within a few percent on white Gaussian noise.
+
+    References
+    ----------
+    .. [1] J. Immerkær, "Fast noise variance estimation", Computer Vision and Image Understanding 64(2),
+       300-302 (1996).
+    """
+    a = as_image(image, "image", min_shape=(3, 3))
+    row_step = positive_int(row_step, "row_step")
+    m, n = a.shape
+    centre_rows = np.arange(1, m - 1, row_step)
+    if row_step == 1:
+        f = a.astype(np.float32, copy=False)
+        up, mid, down = f[:-2], f[1:-1], f[2:]
+    else:
+        # Gather the three rows around every chosen output row in one fancy-indexing pass.
+        k = centre_rows.size
+        f = a[np.concatenate((centre_rows - 1, centre_rows, centre_rows + 1))].astype(np.float32, copy=False)
+        up, mid, down = f[:k], f[k : 2 * k], f[2 * k :]
+    d = up + down  # second difference down the columns
+    d -= mid
+    d -= mid
+    e = d[:, :-2] + d[:, 2:]  # second difference along the rows
+    e -= d[:, 1:-1]
+    e -= d[:, 1:-1]
+    np.abs(e, out=e)
+    total = float(e.sum())  # float32 pairwise summation: relative error ~1e-6
+    return _SCALE * total / e.size
