@@ -63,16 +63,20 @@ def _name(prefix: str, number: int, zero_pad: int) -> str:
     return f"{prefix}{number:0{zero_pad}d}.tif" if zero_pad else f"{prefix}{number}.tif"
 
 
-def _write_zstack(sim: Simulator, path: Path, *, ome: bool) -> None:
+def _packing(compression: str | None) -> dict:
+    return {"compression": compression, "predictor": True} if compression else {}
+
+
+def _write_zstack(sim: Simulator, path: Path, *, ome: bool, compression: str | None = None) -> None:
     c = sim.config
     stack = sim.zstack()
     if ome:
-        tifffile.imwrite(path, stack, ome=True, photometric="minisblack", **_resolution(c),
+        tifffile.imwrite(path, stack, ome=True, photometric="minisblack", **_resolution(c), **_packing(compression),
                          metadata={"axes": "ZYX", "PhysicalSizeZ": c.z_step_um, "PhysicalSizeZUnit": "µm",
                                    "PhysicalSizeX": c.pixel_size_um, "PhysicalSizeXUnit": "µm",
                                    "PhysicalSizeY": c.pixel_size_um, "PhysicalSizeYUnit": "µm"})
     else:
-        tifffile.imwrite(path, stack, imagej=True, resolution=(1 / c.pixel_size_um, 1 / c.pixel_size_um),
+        tifffile.imwrite(path, stack, imagej=True, **_packing(compression), resolution=(1 / c.pixel_size_um, 1 / c.pixel_size_um),
                          metadata={"axes": "ZYX", "spacing": c.z_step_um, "unit": "um"})
 
 
@@ -96,7 +100,7 @@ def _encode_single(page: np.ndarray, c: SimConfig) -> bytes:
 def write_session(config: SimConfig, out_dir, *, layout: str = "multipage", chunk_frames: int = 100,
                   live: bool = False, ome: bool = True, prefix: str = "run_", zero_pad: int = 5,
                   atomic: bool = True, partial_delay_s: float = 0.0, overwrite: bool = False,
-                  progress=None) -> dict:
+                  compression: str | None = None, progress=None) -> dict:
     """Write a simulated session folder.
 
     Creates ``OUT/scenario.json`` (config, planted events, layout), ``OUT/zstack.tif`` (reference stack with
@@ -130,6 +134,9 @@ def write_session(config: SimConfig, out_dir, *, layout: str = "multipage", chun
         final name directly (a reader can meet a partial file), in two halves ``partial_delay_s`` apart.
     partial_delay_s : float
         Pause (s) between the two halves of a directly written per-frame file.
+    compression : str, optional
+        tifffile compression (e.g. "zlib", with a horizontal predictor) for the z-stack and non-live
+        multipage/chunk files; ``None`` (default) writes uncompressed files.
     overwrite : bool
         Allow an existing non-empty ``OUT/frames``.
     progress : callable, optional
@@ -154,11 +161,12 @@ def write_session(config: SimConfig, out_dir, *, layout: str = "multipage", chun
     frames_dir.mkdir(parents=True, exist_ok=True)
     sim = Simulator(c)
     meta = {"schema": 1, "scenario": c.scenario, "layout": layout, "live": live, "ome": ome,
+            "compression": compression,
             "page_order": "time, plane, channel", "n_pages": c.n_pages,
             "events": planted_events(c), "config": config_to_dict(c),
             "truth_columns": [{"name": n, "unit": u, "description": d} for n, u, d in TRUTH_COLUMNS]}
     (out / "scenario.json").write_text(json.dumps(meta, indent=2, ensure_ascii=False), encoding="utf-8")
-    _write_zstack(sim, out / "zstack.tif", ome=ome)
+    _write_zstack(sim, out / "zstack.tif", ome=ome, compression=compression)
 
     pages_per_t = c.planes * c.channels
     files: list[str] = []
@@ -174,10 +182,10 @@ def write_session(config: SimConfig, out_dir, *, layout: str = "multipage", chun
         arr = np.stack(batch).reshape(-1, c.planes, c.channels, c.height, c.width)
         if ome:
             tifffile.imwrite(path, arr, ome=True, photometric="minisblack", metadata=_ome_metadata(c),
-                             **_resolution(c))
+                             **_resolution(c), **_packing(compression))
         else:
             tifffile.imwrite(path, arr.reshape(-1, c.height, c.width), photometric="minisblack",
-                             **_resolution(c))
+                             **_resolution(c), **_packing(compression))
         files.append(str(path))
         batch.clear()
 
