@@ -17,13 +17,17 @@ def field_of_view(shape, *, mean_photons, n_cells=60, rng, cell_radius=5.0, neur
     neuropil = ndimage.gaussian_filter(rng.random(shape), 8.0, mode="wrap")
     neuropil = (neuropil - neuropil.min()) / (np.ptp(neuropil) + 1e-12)
     neuropil = 0.3 + neuropil
-    yy, xx = np.mgrid[0:rows, 0:cols]
     cells = np.zeros(shape)
     masks = []
+    half = int(4 * cell_radius) + 1
     for _ in range(n_cells):
         cy, cx = rng.uniform(0, rows), rng.uniform(0, cols)
         r = cell_radius * rng.uniform(0.7, 1.3)
-        blob = np.exp(-0.5 * ((yy - cy) ** 2 + (xx - cx) ** 2) / (0.6 * r) ** 2)
+        r0, r1 = max(int(cy) - half, 0), min(int(cy) + half, rows)
+        c0, c1 = max(int(cx) - half, 0), min(int(cx) + half, cols)
+        yy, xx = np.mgrid[r0:r1, c0:c1]
+        blob = np.zeros(shape)
+        blob[r0:r1, c0:c1] = np.exp(-0.5 * ((yy - cy) ** 2 + (xx - cx) ** 2) / (0.6 * r) ** 2)
         masks.append(blob)
         cells += rng.uniform(1.0, 3.0) * blob
     lam = neuropil_frac * neuropil / neuropil.mean() + (1 - neuropil_frac) * cells / max(cells.mean(), 1e-12)
