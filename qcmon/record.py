@@ -154,10 +154,15 @@ def _cut_partial_line(path: Path) -> int:
         return size - keep
 
 
+_KINDS = {c.name: c.kind for c in BY_NAME.values()}
+
+
 def _format_value(name: str, value: object) -> str:
-    kind = BY_NAME[name].kind if name in BY_NAME else "float"
     if value is None:
         return ""
+    kind = _KINDS.get(name, "float")
+    if kind == "float" and type(value) is float:
+        return "" if value != value else repr(value)
     if kind == "str":
         return str(value).replace("\r", " ").replace("\n", " ")
     try:

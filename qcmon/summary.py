@@ -55,7 +55,8 @@ key                                unit       meaning
 =================================  =========  ==================================================================
 
 Keys of ``extra`` given as ``"group.key"`` are placed under their group (``extra={"photon_transfer.gain": 2.0}``
-gives ``summary["photon_transfer"]["gain"]``); other keys are copied as they are.
+gives ``summary["photon_transfer"]["gain"]``); other keys are copied as they are, except that a key qcmon's
+summary already has (e.g. ``streams``) goes to ``summary["engine"][key]``.
 """
 
 from __future__ import annotations
@@ -288,6 +289,8 @@ def _merge_extra(summary: dict, extra: Mapping[str, object]) -> None:
                 continue
         if isinstance(value, Mapping) and isinstance(summary.get(key), dict):
             summary[key].update(value)
+        elif key in summary:  # never replace qcmon's own keys (e.g. "streams")
+            summary.setdefault("engine", {})[key] = value
         else:
             summary[key] = value
 
@@ -477,7 +480,7 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
     ----------
     out_dir : path-like
         Folder with ``traces.csv`` and ``events.jsonl`` (and ``session.json`` if the session wrote one: facts,
-        profile name, engine results).
+        profile name, engine results; without it, those are taken from an earlier ``summary.json`` if any).
     profile : Profile or str, optional
         Threshold profile (object, name or path); default: the one named in ``session.json``, else
         ``"default"``. Verdicts come from the recorded events, which the session's own profile produced.
@@ -491,6 +494,15 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
 
     out_dir = Path(out_dir)
     info = read_info(out_dir)
+    previous = out_dir / "summary.json"
+    if not info and previous.exists():  # a session without session.json: take facts and profile from before
+        try:
+            old = json.loads(previous.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            old = {}
+        info = {"facts": old.get("facts", {}), "profile": (old.get("profile") or {}).get("path") or "default",
+                "extra": {f"photon_transfer.{k}": (math.nan if v is None else v)
+                          for k, v in (old.get("photon_transfer") or {}).items()}}
     if profile is None:
         profile = info.get("profile", "default")
     if not isinstance(profile, Profile):

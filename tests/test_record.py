@@ -247,3 +247,27 @@ def test_rebuild_from_record_gives_the_same_summary(tmp_path):
     lines = (tmp_path / "exclude.csv").read_text().splitlines()
     assert lines[0] == "channel,plane,first_frame,last_frame,reason" and lines[1].startswith("0,0,200,")
     assert (tmp_path / "report.html").exists()
+
+
+def test_extra_never_replaces_qcmon_keys():
+    prof = load_profile("default")
+    rows = make_rows(50, step=(0, 0))
+    s = summarize_traces(rows_to_traces(rows), [], facts={}, profile=prof,
+                         extra={"streams": {"0,0": {"gain": 2}}, "z.start_um": 1.5, "photon_transfer.r2": 0.99})
+    assert isinstance(s["streams"], list) and s["engine"]["streams"] == {"0,0": {"gain": 2}}
+    assert s["z"]["start_um"] == 1.5 and s["photon_transfer"]["r2"] == 0.99
+
+
+def test_rebuild_without_session_info_uses_previous_summary(tmp_path):
+    prof = load_profile("anaesthetised")
+    rows = make_rows(300)
+    tracker = ThresholdTracker(prof)
+    events = [ev for r in rows for ev in tracker.update(r)] + tracker.close()
+    with SessionRecord(tmp_path) as rec:
+        rec.append_rows(rows)
+        rec.append_events(events)
+    facts = {"frame_rate_hz": {"value": 10.0, "origin": "OME-TIFF"}}
+    first = summarize_traces(rows_to_traces(rows), events, facts=facts, profile=prof,
+                             extra={"photon_transfer.gain": 1.5, "photon_transfer.dark_level": 90.0})
+    write_atomic(tmp_path / "summary.json", summary_json(first))
+    assert summary_json(rebuild(tmp_path)) == summary_json(first)
