@@ -265,9 +265,9 @@ class ShiftEstimator:
         absc = np.abs(c)
         # Frame noise power per frequency from the highest frequencies (no signal there).
         noise = g_full[self._noise_rows, self._noise_c0:]
-        sigma2 = float(np.mean(noise.real ** 2 + noise.imag ** 2))
+        sigma2 = float(np.vdot(noise, noise).real) / noise.size
         # Reference-to-frame signal power ratio over the band (frame power less its noise).
-        total = float(np.sum(g_band.real ** 2 + g_band.imag ** 2))
+        total = float(np.vdot(g_band, g_band).real)
         frame_power = max(total - self._n_band * sigma2, 0.01 * total, 1e-30)
         a = self._band_power_ref / frame_power
         s = self._absf2 * np.float32(1.0 / max(a * sigma2, 1e-30))
@@ -295,11 +295,24 @@ class ShiftEstimator:
             or has no finite pixel.
         """
         arr = as_image(frame, "frame", shape=self.shape, min_size=16)
-        gb = finite_float32(bin_image(arr, self.bin_factor), "frame", stacklevel=3)
-        if gb is None:
+        gb = bin_image(arr, self.bin_factor)
+        if gb is arr or np.may_share_memory(gb, arr):
+            gb = gb.copy()  # worked on in place below; never touch the caller's frame
+        if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(gb).all():
+            gb = finite_float32(gb, "frame", stacklevel=3)
+            if gb is None:
+                return _NAN_RESULT
+        mean = gb.mean(dtype=np.float64)
+        gb -= np.float32(mean)
+        if self._win is not None:
+            gb *= self._win
+        gw = gb.ravel()
+        gsum = float(gw.sum(dtype=np.float64))
+        gnorm2 = float(np.dot(gw, gw)) - gsum * gsum / gw.size
+        if not gnorm2 > gw.size * (1e-6 * abs(mean)) ** 2 or not math.isfinite(gnorm2):
+            warnings.warn("frame is constant; shift is NaN", UserWarning, stacklevel=2)
             return _NAN_RESULT
-        gw = self._prepare(gb)
-        g_full = sfft.rfft2(gw, workers=self.workers)
+        g_full = sfft.rfft2(gb, workers=self.workers)
         g_band = _crop_rows(g_full, self._band[0])[:, :self._kcb]
         r = self._weighted(g_band, g_full)
         surf = sfft.irfft2(r, s=self._band, workers=self.workers)
@@ -318,21 +331,16 @@ class ShiftEstimator:
         lim_r, lim_c = self._lim
         cy = float(np.clip(cy, -lim_r, lim_r))
         cx = float(np.clip(cx, -lim_c, lim_c))
-        corr = self._pearson(gw, g_full, cy, cx)
+        corr = self._pearson(g_full, gnorm2, cy, cx)
         b = self.bin_factor
         return ShiftResult(cy * b, cx * b, corr)
 
-    def _pearson(self, gw: np.ndarray, g_full: np.ndarray, sy: float, sx: float) -> float:
+    def _pearson(self, g_full: np.ndarray, gnorm2: float, sy: float, sx: float) -> float:
         mb, nb = self._bshape
         er = np.exp((1j * _TWO_PI / mb) * sy * self._kr_full).astype(np.complex64)
         ec = np.exp((1j * _TWO_PI / nb) * sx * self._kc_full).astype(np.complex64)
-        cross = float(((er @ (g_full * self._hconjf_full)) @ ec).real) / (mb * nb)
-        g = gw.ravel()
-        n = g.size
-        gsum = float(g.sum(dtype=np.float64))
-        gnorm2 = float(np.dot(g, g)) - gsum * gsum / n
-        if not gnorm2 > 0:
-            return math.nan
+        g_full *= self._hconjf_full  # g_full is not used after this
+        cross = float((er @ g_full @ ec).real) / (mb * nb)
         return cross / (math.sqrt(gnorm2) * self._ref_norm)
 
 
