@@ -271,3 +271,22 @@ def test_rebuild_without_session_info_uses_previous_summary(tmp_path):
                              extra={"photon_transfer.gain": 1.5, "photon_transfer.dark_level": 90.0})
     write_atomic(tmp_path / "summary.json", summary_json(first))
     assert summary_json(rebuild(tmp_path)) == summary_json(first)
+
+
+def test_record_in_unwritable_folder_gives_qcmon_error_and_keeps_old_record(tmp_path, monkeypatch):
+    with SessionRecord(tmp_path) as rec:
+        rec.append_rows(make_rows(7))
+    before = (tmp_path / "traces.csv").read_bytes()
+    import qcmon.record
+
+    def refuse(path, mode="r", *a, **k):
+        if any(c in mode for c in "wa+"):
+            raise PermissionError(errno.EACCES, "Permission denied", str(path))
+        return open(path, mode, *a, **k)
+
+    monkeypatch.setattr(qcmon.record, "open", refuse, raising=False)
+    with pytest.raises(QcmonError, match="read-only") as info:
+        SessionRecord(tmp_path, resume=True)
+    assert str(tmp_path) in str(info.value)
+    monkeypatch.undo()
+    assert (tmp_path / "traces.csv").read_bytes() == before
