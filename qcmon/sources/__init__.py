@@ -1,0 +1,12 @@
+"""Frame sources: a session's frames, read as the microscope writes them or afterwards, through one reader.
+
+- :class:`SessionSource` reads a session folder (TIFF pages, raw streams with a sidecar) or one file.
+- :class:`FolderWatcher` wakes a consumer when the folder changes; :func:`iter_live` ties the two together.
+"""
+
+from __future__ import annotations
+
+from qcmon.sources.session import SessionSource, natural_key
+from qcmon.sources.watcher import FolderWatcher, iter_live
+
+__all__ = ["FolderWatcher", "SessionSource", "iter_live", "natural_key"]

@@ -1,0 +1,195 @@
+"""Raw frame streams: a file of headerless frames (``NAME.raw``, ``.bin`` or ``.dat``) described by a sidecar.
+
+The sidecar ``NAME.toml`` sits beside the stream and uses these keys (all ours):
+
+==================  ========  ==========================================================================
+key                 required  meaning
+==================  ========  ==========================================================================
+``dtype``           yes       numpy type string of one pixel, e.g. ``"uint16"`` or ``"<u2"`` / ``">u2"``
+                              (unsigned integers only; byte order little-endian unless given)
+``height``          yes       rows per frame (px)
+``width``           yes       columns per frame (px)
+``header_bytes``    no        bytes before the first frame (default 0)
+``frame_rate_hz``   no        time points per second (volumes per second when ``planes`` > 1)
+``channels``        no        channels interleaved per plane (default 1)
+``planes``          no        planes per time point (default 1)
+``pixel_size_um``   no        pixel size (µm)
+``z_step_um``       no        distance between planes (µm)
+``bit_depth``       no        significant bits of the detector (e.g. 12 for a 12-bit camera in uint16)
+==================  ========  ==========================================================================
+
+Frames follow each other without gaps, in time -> plane -> channel order. A frame is complete when the file
+size covers all its bytes. Without a sidecar, the options ``raw_dtype`` and ``raw_shape`` describe the stream.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+import numpy as np
+
+from qcmon.errors import FrameError, NotReadyError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+RAW_SUFFIXES = (".raw", ".bin", ".dat")
+SIDECAR_KEYS = {
+    "dtype": str, "height": int, "width": int, "header_bytes": int, "frame_rate_hz": (int, float),
+    "channels": int, "planes": int, "pixel_size_um": (int, float), "z_step_um": (int, float), "bit_depth": int,
+}
+SIDECAR = "sidecar"
+
+
+def parse_dtype(value, *, what: str) -> np.dtype:
+    """An unsigned-integer numpy dtype from ``value``; ValueError naming ``what`` otherwise."""
+    try:
+        dtype = np.dtype(value)
+    except TypeError as exc:
+        raise ValueError(f"{what}: {value!r} is not a numpy dtype") from exc
+    if dtype.kind != "u":
+        raise ValueError(f"{what}: {dtype} is not supported; unsigned integers expected (uint8, uint16, uint32)")
+    return dtype
+
+
+def read_sidecar(path: str) -> dict:
+    """The checked contents of a sidecar TOML file.
+
+    Raises
+    ------
+    NotReadyError
+        The file cannot be parsed (it may still be being written).
+    FrameError
+        Unknown keys, wrong types or values.
+    """
+    try:
+        with open(path, "rb") as fh:
+            config = tomllib.load(fh)
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise NotReadyError(f"sidecar cannot be read yet: {exc}") from exc
+    unknown = sorted(set(config) - set(SIDECAR_KEYS))
+    if unknown:
+        raise FrameError(f"unknown sidecar key(s) {', '.join(unknown)}; allowed: {', '.join(SIDECAR_KEYS)}",
+                         path=path)
+    for key, value in config.items():
+        kind = SIDECAR_KEYS[key]
+        if isinstance(value, bool) or not isinstance(value, kind):
+            raise FrameError(f"sidecar key {key} = {value!r} has the wrong type", path=path)
+        if key != "dtype" and not (value > 0 or (key == "header_bytes" and value == 0)):
+            raise FrameError(f"sidecar key {key} = {value!r} must be positive", path=path)
+    if "dtype" in config:
+        try:
+            config["dtype"] = parse_dtype(config["dtype"], what=f"sidecar key dtype in {path}")
+        except ValueError as exc:
+            raise FrameError(str(exc), path=path) from None
+    return config
+
+
+class RawStream:
+    """The reading state of one raw stream.
+
+    Parameters
+    ----------
+    path : str
+        The stream.
+    dtype : numpy dtype, optional
+        Pixel type when the sidecar does not give one (option ``raw_dtype``).
+    shape : (int, int), optional
+        (height, width) in px when the sidecar does not give them (option ``raw_shape``).
+    """
+
+    kind = "raw"
+
+    def __init__(self, path: str, *, dtype=None, shape=None):
+        self.path = path
+        self.sidecar: str | None = None
+        self.option_dtype = dtype
+        self.option_shape = shape
+        self.pages_done = 0
+        self.skip = 0
+        self.signature: tuple[int, int] | None = None
+        self.config: dict | None = None
+        self._from_sidecar: set[str] = set()
+        self.meta = None
+
+    def _find_sidecar(self) -> str | None:
+        folder, name = os.path.split(self.path)
+        wanted = os.path.splitext(name)[0].lower() + ".toml"
+        for candidate in sorted(os.listdir(folder or ".")):
+            if candidate.lower() == wanted:
+                return os.path.join(folder, candidate)
+        return None
+
+    def _configure(self, give_up: bool) -> dict:
+        self.sidecar = self._find_sidecar()
+        config = read_sidecar(self.sidecar) if self.sidecar else {}
+        self._from_sidecar = set(config)
+        if "dtype" not in config and self.option_dtype is not None:
+            config["dtype"] = self.option_dtype
+        if ("height" not in config or "width" not in config) and self.option_shape is not None:
+            config.setdefault("height", int(self.option_shape[0]))
+            config.setdefault("width", int(self.option_shape[1]))
+        missing = [k for k in ("dtype", "height", "width") if k not in config]
+        if missing:
+            where = f"sidecar {self.sidecar}" if self.sidecar else "no sidecar NAME.toml beside it"
+            if not self.sidecar and not give_up:
+                raise NotReadyError(f"raw stream without a sidecar yet ({', '.join(missing)} unknown)")
+            raise FrameError(f"raw stream without {', '.join(missing)} ({where}; or give raw_dtype and raw_shape)",
+                             path=self.path)
+        config.setdefault("header_bytes", 0)
+        return config
+
+    def read(self, limit: int, *, give_up: bool = False, on_open=None):
+        """Read up to ``limit`` new complete frames; same contract as :meth:`TiffStream.read`."""
+        if self.config is None:
+            try:
+                self.config = self._configure(give_up)
+            except (NotReadyError, FrameError) as exc:
+                return [], exc
+            if on_open is not None:
+                on_open(self, None)
+        c = self.config
+        shape = (c["height"], c["width"])
+        dtype = c["dtype"]
+        frame_bytes = shape[0] * shape[1] * dtype.itemsize
+        items = []
+        with open(self.path, "rb") as fh:  # read-only, closed on return
+            st = os.fstat(fh.fileno())
+            available = max(0, (st.st_size - c["header_bytes"]) // frame_bytes)
+            self.pages_done += self.skip
+            self.skip = 0
+            count = min(available - self.pages_done, limit)
+            fh.seek(c["header_bytes"] + self.pages_done * frame_bytes)
+            for _ in range(max(count, 0)):
+                data = np.empty(shape, dtype)
+                try:
+                    got = fh.readinto(data)
+                except OSError as exc:
+                    return items, NotReadyError(f"read error: {exc}")
+                if got != frame_bytes:  # the file shrank under us
+                    return items, NotReadyError("raw stream is shorter than its size said")
+                items.append((self.pages_done, data))
+                self.pages_done += 1
+        at_end = self.pages_done >= available
+        self.signature = (st.st_size, st.st_mtime_ns) if at_end else None
+        remainder = st.st_size - c["header_bytes"] - available * frame_bytes
+        if at_end and remainder > 0:
+            return items, NotReadyError(f"frame {available} is incomplete: {remainder} of {frame_bytes} bytes written")
+        return items, None
+
+    def sidecar_facts(self) -> dict[str, tuple[object, str]]:
+        """Facts of the sidecar (origin "sidecar"); options fill what it lacks (origin "option")."""
+        c = self.config or {}
+        from_sidecar = self._from_sidecar
+        facts = {}
+        for key in ("frame_rate_hz", "channels", "planes", "pixel_size_um", "z_step_um", "bit_depth"):
+            if key in c:
+                facts[key] = (c[key], SIDECAR)
+        if "dtype" in c:
+            facts["dtype"] = (str(c["dtype"]), SIDECAR if "dtype" in from_sidecar else "option")
+        if "height" in c:
+            facts["shape"] = ((c["height"], c["width"]), SIDECAR if "height" in from_sidecar else "option")
+        return facts

@@ -1,0 +1,428 @@
+"""A session's frames, live or after the fact, through one reader.
+
+Which files belong to a session
+-------------------------------
+``path`` is a session folder or one file. In a folder (not its sub-folders) qcmon reads
+
+- TIFF files: names ending ``.tif`` or ``.tiff`` in any letter case (OME-TIFF and BigTIFF included);
+- raw streams: ``NAME.raw``, ``NAME.bin`` or ``NAME.dat`` (any case), described by ``NAME.toml`` beside them or
+  by the options ``raw_dtype`` and ``raw_shape`` (see :mod:`qcmon.sources.raw`).
+
+It ignores everything else, and also hidden files (names starting with ``.``, which includes ``._`` copies made
+by some file servers) and temporary or lock files (names starting with ``~``); writers that write under a
+temporary name and rename at the end are seen at the rename.
+
+Files are read in *natural order*: the name is split into runs of digits and of other characters, digits compare
+as numbers and text without regard to case, so ``run_2.tif`` comes before ``run_10.tif``; equal keys fall back
+to the exact name. Pages run time -> plane -> channel: for each time point, for each plane, one page per channel
+(OME ``DimensionOrder="XYZCT"`` swaps plane and channel), continuing from one file to the next.
+
+Live reading
+------------
+Only complete pages are handed on (their directory, values and pixel data lie inside the file as it is now).
+Files are read strictly in order; an incomplete file holds back the files after it. While the session runs, an
+incomplete file is waited for, except that a file which has not changed for ``grace_s`` seconds *while a later
+file exists* is reported as truncated and passed over (a writer does not come back to an earlier file), and a
+complete page that fails to decode for ``grace_s`` seconds is reported and skipped. The last file is waited for
+indefinitely (an armed acquisition may create its file long before the first trigger) until ``poll(final=True)``,
+which reports everything still incomplete.
+
+When a file is finished (a later file exists and this one was read to its end), it is not looked at again.
+A file that appears after later files were read, or that shrinks, is reported and not read.
+"""
+
+from __future__ import annotations
+
+import bisect
+import math
+import os
+import re
+import time
+from collections.abc import Callable, Iterator
+
+import numpy as np
+
+from qcmon.errors import FrameError, NotReadyError
+from qcmon.frames import AcquisitionFacts, Frame
+from qcmon.sources.metadata import FileMetadata, read_file_metadata
+from qcmon.sources.raw import RAW_SUFFIXES, RawStream, parse_dtype
+from qcmon.sources.tiffpages import TiffStream
+
+TIFF_SUFFIXES = (".tif", ".tiff")
+POSITION_FORMAT = "qcmon-position"
+POSITION_VERSION = 1
+OPTION = "option"
+_DIGITS = re.compile(r"(\d+)")
+
+
+def natural_key(name: str) -> tuple:
+    """Sort key putting ``run_2.tif`` before ``run_10.tif`` (digit runs compare as numbers, text case-blind)."""
+    parts = _DIGITS.split(name.casefold())
+    return tuple(int(p) if i % 2 else p for i, p in enumerate(parts)), name
+
+
+def is_ignored(name: str) -> bool:
+    """True for hidden (``.``) and temporary/lock (``~``) names."""
+    return name.startswith((".", "~"))
+
+
+def _suffix(name: str) -> str:
+    return os.path.splitext(name)[1].lower()
+
+
+class SessionSource:
+    """Frames of an imaging session, read as the microscope writes them or after it has finished.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A session folder or a single TIFF file (or raw stream).
+    channels, planes : int, optional
+        Channels and planes interleaved in the pages, when the files do not say.
+    raw_dtype : numpy dtype-like, optional
+        Pixel type of raw streams without a sidecar ``dtype`` (unsigned integers only).
+    raw_shape : (int, int), optional
+        (height, width) of raw frames without sidecar ``height``/``width`` (px).
+    frame_rate_hz : float, optional
+        Time points per second (volumes per second when planes > 1), when the files do not say.
+    pixel_size_um : float, optional
+        Pixel size (µm), when the files do not say.
+    start : dict, optional
+        A token from :attr:`position`: reading resumes after the frames it records.
+    on_problem : callable, optional
+        Called with each :class:`~qcmon.errors.FrameError` (bad file or page); reading goes on. Problems are also
+        collected in :attr:`problems`.
+    override : bool
+        False (default): options fill in what the files do not say; when a file says otherwise, the file wins and
+        the disagreement is listed in :attr:`conflicts`. True: options win over file metadata.
+    grace_s : float
+        Seconds an incomplete file may stay unchanged while a later file exists (or a complete page may fail to
+        decode) before it is reported and passed over (s).
+
+    Notes
+    -----
+    Frames are numbered per (channel, plane): ``Frame.index`` is the time point. ``Frame.time_s`` comes from OME
+    ``Plane/@DeltaT`` (seconds from the first frame) when the file has it, else NaN. Memory per open file is
+    a few bytes per page (the directory offsets, to detect a corrupt looping chain).
+    """
+
+    def __init__(self, path, *, channels: int | None = None, planes: int | None = None, raw_dtype=None,
+                 raw_shape=None, frame_rate_hz: float | None = None, pixel_size_um: float | None = None,
+                 start: dict | None = None, on_problem: Callable[[FrameError], object] | None = None,
+                 override: bool = False, grace_s: float = 30.0):
+        path = os.fspath(path)
+        if not os.path.exists(path):
+            raise ValueError(f"path: {path} does not exist")
+        for name, value in (("channels", channels), ("planes", planes)):
+            if value is not None and (isinstance(value, bool) or not isinstance(value, int) or value < 1):
+                raise ValueError(f"{name}: must be a positive integer, got {value!r}")
+        for name, value in (("frame_rate_hz", frame_rate_hz), ("pixel_size_um", pixel_size_um)):
+            if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
+                raise ValueError(f"{name}: must be a positive number, got {value!r}")
+        if raw_shape is not None:
+            if len(raw_shape) != 2 or any(int(n) != n or n < 1 for n in raw_shape):
+                raise ValueError(f"raw_shape: (height, width) in px expected, got {raw_shape!r}")
+            raw_shape = (int(raw_shape[0]), int(raw_shape[1]))
+        if not (grace_s >= 0):
+            raise ValueError(f"grace_s: must be >= 0 s, got {grace_s!r}")
+        self.path = path
+        self._folder = path if os.path.isdir(path) else os.path.dirname(path) or "."
+        self._single = None if os.path.isdir(path) else os.path.basename(path)
+        self._raw_dtype = None if raw_dtype is None else parse_dtype(raw_dtype, what="raw_dtype")
+        self._raw_shape = raw_shape
+        self._options = {"channels": channels, "planes": planes, "frame_rate_hz": frame_rate_hz,
+                         "pixel_size_um": pixel_size_um}
+        self._override = bool(override)
+        self.grace_s = float(grace_s)
+        self._on_problem = on_problem
+        #: Every problem met so far (bad files and pages that were skipped).
+        self.problems: list[FrameError] = []
+        #: Options that disagree with the files (the file's value is used unless ``override=True``).
+        self.conflicts: list[str] = []
+        #: Metadata present in the files that could not be used, with the reason.
+        self.notes: list[str] = []
+        self._reported: set[tuple[str, str]] = set()
+        self._queue: list[tuple[tuple, str]] = []  # unfinished files in natural order
+        self._streams: dict[str, TiffStream | RawStream] = {}
+        self._done: dict[str, int] = {}  # finished files -> pages consumed
+        self._dead: dict[str, int] = {}  # files given up -> pages consumed
+        self._frontier: tuple | None = None  # natural key of the latest file that was read from
+        self._stall: dict[str, tuple[tuple[int, int], float]] = {}
+        self._count = 0  # pages met, in acquisition order (bad pages included: they hold a channel/plane slot)
+        self._layout: tuple[int, int, bool] | None = None  # (channels, planes, plane_fastest)
+        self._facts: AcquisitionFacts | None = None
+        self._plane_fastest = False
+        self._frame_kind: tuple[tuple[int, ...], str] | None = None
+        self._t0: float | None = None
+        self._resume: dict[str, int] = {}
+        if start is not None:
+            self._restore(start)
+
+    # ------------------------------------------------------------------ public
+    def poll(self, final: bool = False, *, max_frames: int | None = None) -> list[Frame]:
+        """Frames that became complete since the last call, in acquisition order.
+
+        Parameters
+        ----------
+        final : bool
+            The session has ended (batch reading, or the end of a watch): whatever is still incomplete is reported
+            as a problem instead of being waited for.
+        max_frames : int, optional
+            Return at most this many frames (the rest come with the next calls); bounds memory on big sessions.
+
+        Returns
+        -------
+        list of Frame
+            Never the same frame twice, never skipping one.
+        """
+        if max_frames is not None and max_frames < 1:
+            raise ValueError(f"max_frames: must be >= 1, got {max_frames!r}")
+        limit = math.inf if max_frames is None else max_frames
+        self._scan()
+        out: list[Frame] = []
+        while self._queue and len(out) < limit:
+            key, name = self._queue[0]
+            stream = self._streams[name]
+            is_last = len(self._queue) == 1
+            path = stream.path
+            try:
+                st = os.stat(path)
+            except OSError as exc:
+                self._give_up(FrameError(f"cannot be read: {exc}", path=path))
+                continue
+            signature = (st.st_size, st.st_mtime_ns)
+            if stream.signature is not None and signature == stream.signature:
+                if is_last:
+                    break  # nothing new
+                self._finish()
+                continue
+            if stream.signature is not None and st.st_size < stream.signature[0]:
+                self._give_up(FrameError(f"file shrank from {stream.signature[0]} to {st.st_size} bytes "
+                                         "(rewritten?); not read further", path=path, page=stream.pages_done))
+                continue
+            stalled = self._stalled(name, signature)
+            try:
+                items, stop = stream.read(min(limit - len(out), 1 << 30), give_up=final or stalled,
+                                          on_open=self._opened)
+            except OSError as exc:
+                items, stop = [], NotReadyError(f"cannot be opened: {exc}")
+            for page, data in items:
+                self._emit(stream, page, data, out)
+            if stream.pages_done and (self._frontier is None or key > self._frontier):
+                self._frontier = key
+            if isinstance(stop, FrameError):
+                self._give_up(stop)
+                continue
+            if isinstance(stop, NotReadyError):
+                if final or (stalled and not is_last):
+                    what = "file is incomplete (truncated?)" if not final else "file is incomplete at the end"
+                    self._give_up(FrameError(f"{what}: {stop}", path=path, page=stream.pages_done))
+                    continue
+                if name not in self._stall or self._stall[name][0] != signature:
+                    self._stall[name] = (signature, time.monotonic())
+                break
+            self._stall.pop(name, None)
+            if len(out) >= limit or stream.signature is None:
+                break
+            if is_last:
+                break
+            self._finish()
+        return out
+
+    def __iter__(self) -> Iterator[Frame]:
+        """All frames of a finished session (``poll(final=True)`` in chunks of 64)."""
+        while True:
+            frames = self.poll(final=True, max_frames=64)
+            if not frames:
+                return
+            yield from frames
+
+    @property
+    def facts(self) -> AcquisitionFacts:
+        """Acquisition facts with their origin: from the first data file when it has been opened, plus options."""
+        if self._facts is not None:
+            return self._facts
+        return self._merge_facts({})
+
+    @property
+    def position(self) -> dict:
+        """A JSON-serialisable token of how far reading has got; pass it as ``start=`` to resume."""
+        files = dict(self._done)
+        files.update(self._dead)
+        for _, name in self._queue:
+            stream = self._streams[name]
+            files[name] = stream.pages_done + stream.skip
+        return {
+            "format": POSITION_FORMAT,
+            "version": POSITION_VERSION,
+            "pages": self._count,
+            "files": files,
+            "given_up": sorted(self._dead),
+            "layout": None if self._layout is None else list(self._layout),
+            "frame": None if self._frame_kind is None else [list(self._frame_kind[0]), self._frame_kind[1]],
+            "t0": self._t0,
+        }
+
+    # ----------------------------------------------------------------- helpers
+    def _restore(self, token: dict) -> None:
+        if not isinstance(token, dict) or token.get("format") != POSITION_FORMAT:
+            raise ValueError("start: not a position token of SessionSource")
+        if token.get("version") != POSITION_VERSION:
+            raise ValueError(f"start: position token version {token.get('version')} is not {POSITION_VERSION}")
+        files = {str(k): int(v) for k, v in token["files"].items()}
+        given_up = set(token.get("given_up", ()))
+        self._count = int(token["pages"])
+        if token.get("layout") is not None:
+            c, z, fast = token["layout"]
+            self._layout = (int(c), int(z), bool(fast))
+        if token.get("frame") is not None:
+            self._frame_kind = (tuple(token["frame"][0]), str(token["frame"][1]))
+        self._t0 = token.get("t0")
+        if not files:
+            return
+        ordered = sorted(files, key=natural_key)
+        last = ordered[-1]
+        for name in ordered[:-1]:
+            (self._dead if name in given_up else self._done)[name] = files[name]
+        if last in given_up:
+            self._dead[last] = files[last]
+        else:
+            self._resume[last] = files[last]
+        self._frontier = natural_key(last)
+
+    def _scan(self) -> None:
+        if self._single is not None:
+            names = [self._single]
+        else:
+            names = []
+            with os.scandir(self._folder) as it:
+                for entry in it:
+                    name = entry.name
+                    if (is_ignored(name) or name in self._done or name in self._dead or name in self._streams
+                            or _suffix(name) not in TIFF_SUFFIXES + RAW_SUFFIXES):
+                        continue
+                    try:
+                        if entry.is_file():
+                            names.append(name)
+                    except OSError:
+                        continue
+        for name in sorted(names, key=natural_key):
+            if name in self._done or name in self._dead or name in self._streams:
+                continue
+            key = natural_key(name)
+            full = os.path.join(self._folder, name)
+            if self._frontier is not None and key < self._frontier:
+                self._dead[name] = 0
+                self._problem(FrameError("appeared after later files had been read; not read, to keep the "
+                                         "acquisition order", path=full))
+                continue
+            if _suffix(name) in RAW_SUFFIXES:
+                stream = RawStream(full, dtype=self._raw_dtype, shape=self._raw_shape)
+            else:
+                stream = TiffStream(full)
+            stream.skip = self._resume.pop(name, 0)
+            self._streams[name] = stream
+            bisect.insort(self._queue, (key, name))
+
+    def _stalled(self, name: str, signature: tuple[int, int]) -> bool:
+        record = self._stall.get(name)
+        return record is not None and record[0] == signature and time.monotonic() - record[1] >= self.grace_s
+
+    def _finish(self) -> None:
+        """The first queued file is read to its end and a later file exists: it is not looked at again."""
+        self._retire(self._done)
+
+    def _give_up(self, err: FrameError) -> None:
+        """Report ``err`` and stop reading the first queued file."""
+        self._problem(err)
+        self._retire(self._dead)
+
+    def _retire(self, into: dict[str, int]) -> None:
+        key, name = self._queue.pop(0)
+        stream = self._streams.pop(name)
+        into[name] = stream.pages_done + stream.skip
+        self._stall.pop(name, None)
+        self._frontier = key if self._frontier is None else max(self._frontier, key)
+
+    def _problem(self, err: FrameError) -> None:
+        tag = (err.path or "", err.reason)
+        if tag in self._reported:
+            return  # the same problem in the same file is reported once
+        self._reported.add(tag)
+        self.problems.append(err)
+        if self._on_problem is not None:
+            self._on_problem(err)
+
+    def _opened(self, stream, tif) -> None:
+        if stream.meta is not None:
+            return
+        if tif is None:
+            stream.meta = FileMetadata(facts=stream.sidecar_facts(), plane_fastest=False)
+        else:
+            try:
+                stream.meta = read_file_metadata(tif)
+            except Exception as exc:  # noqa: BLE001 - metadata is optional; never stop reading for it
+                stream.meta = FileMetadata(notes=[f"metadata cannot be read: {exc}"])
+        for note in stream.meta.notes:
+            self.notes.append(f"{stream.path}: {note}")
+        if self._facts is None:
+            self._facts = self._merge_facts(stream.meta.facts)
+            self._plane_fastest = bool(stream.meta.plane_fastest)
+
+    def _merge_facts(self, file_facts: dict) -> AcquisitionFacts:
+        facts = AcquisitionFacts()
+        options = {k: v for k, v in self._options.items() if v is not None}
+        if self._override:
+            for key, value in options.items():
+                facts.set(key, value, OPTION)
+        for key, (value, origin) in file_facts.items():
+            if key in options and not self._override and not _same(options[key], value):
+                self.conflicts.append(f"option {key}={options[key]!r} differs from {origin} {value!r}; "
+                                      f"the file's value is used (override=True to use the option)")
+            facts.set(key, value, origin)
+        for key, value in options.items():
+            facts.set(key, value, OPTION)
+        if "bit_depth" not in facts.facts and "dtype" in facts.facts:
+            facts.set("bit_depth", np.dtype(facts.get("dtype")).itemsize * 8, "dtype")
+        return facts
+
+    def _emit(self, stream, page: int, data, out: list[Frame]) -> None:
+        if data is None:
+            return  # a thumbnail page: not a frame
+        if self._layout is None:
+            facts = self.facts
+            self._layout = (int(facts.get("channels", 1)), int(facts.get("planes", 1)),
+                            self._plane_fastest)
+        n_c, n_z, plane_fastest = self._layout
+        n = self._count
+        self._count += 1
+        if plane_fastest:
+            plane, channel = n % n_z, (n // n_z) % n_c
+        else:
+            channel, plane = n % n_c, (n // n_c) % n_z
+        index = n // (n_c * n_z)
+        if isinstance(data, FrameError):
+            self._problem(data)
+            return
+        kind = (tuple(data.shape), str(data.dtype))
+        if self._frame_kind is None:
+            self._frame_kind = kind
+        elif kind != self._frame_kind:
+            self._problem(FrameError(
+                f"frame size/type changed from {self._frame_kind[0]} {self._frame_kind[1]} to {kind[0]} {kind[1]}; "
+                "such pages are skipped", path=stream.path, page=page))
+            return
+        time_s = math.nan
+        if stream.meta is not None:
+            stamp = stream.meta.timestamp(page)
+            if math.isfinite(stamp):
+                if self._t0 is None:
+                    self._t0 = stamp
+                time_s = stamp - self._t0
+        out.append(Frame(data, index, channel=channel, plane=plane, time_s=time_s, source=stream.path, page=page))
+
+
+def _same(a, b) -> bool:
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        return math.isclose(a, b, rel_tol=1e-6)
+    return a == b
