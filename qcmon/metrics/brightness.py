@@ -105,6 +105,9 @@ class BrightnessTracker:
         self._hist_t: list[float] = []
         self._hist_b: list[float] = []
         self._hist_w: list[float] = []
+        self._unit = 1
+        self._pend_t = self._pend_b = 0.0
+        self._pend_n = 0
         self._block_start = math.nan
         self._block_sum = 0.0
         self._block_n = 0
@@ -169,18 +172,26 @@ class BrightnessTracker:
         self._state = BrightnessState(baseline, pct, float(slope))
 
     def _add_history(self, t: float, b: float) -> None:
-        self._hist_t.append(t)
-        self._hist_b.append(b)
-        self._hist_w.append(1.0)
-        if len(self._hist_t) >= self.max_history:  # merge neighbouring pairs: constant memory
-            t_arr, b_arr, w_arr = (np.asarray(v) for v in (self._hist_t, self._hist_b, self._hist_w))
-            m = (t_arr.size // 2) * 2
-            w2 = w_arr[:m].reshape(-1, 2).sum(axis=1)
-            t2 = (t_arr[:m] * w_arr[:m]).reshape(-1, 2).sum(axis=1) / w2
-            b2 = (b_arr[:m] * w_arr[:m]).reshape(-1, 2).sum(axis=1) / w2
-            self._hist_t = list(t2) + list(t_arr[m:])
-            self._hist_b = list(b2) + list(b_arr[m:])
-            self._hist_w = list(w2) + list(w_arr[m:])
+        # Points of equal duration: incoming baselines are averaged in groups of ``_unit``; when the history is
+        # full, neighbouring pairs are merged and ``_unit`` doubles (constant memory, uniform resolution).
+        self._pend_t += t
+        self._pend_b += b
+        self._pend_n += 1
+        if self._pend_n < self._unit:
+            return
+        self._hist_t.append(self._pend_t / self._pend_n)
+        self._hist_b.append(self._pend_b / self._pend_n)
+        self._hist_w.append(float(self._pend_n))
+        self._pend_t = self._pend_b = 0.0
+        self._pend_n = 0
+        if len(self._hist_t) >= self.max_history:
+            m = (len(self._hist_t) // 2) * 2
+            t_arr, b_arr, w_arr = (np.asarray(v[:m]).reshape(-1, 2) for v in (self._hist_t, self._hist_b, self._hist_w))
+            w2 = w_arr.sum(axis=1)
+            self._hist_t = list((t_arr * w_arr).sum(axis=1) / w2) + self._hist_t[m:]
+            self._hist_b = list((b_arr * w_arr).sum(axis=1) / w2) + self._hist_b[m:]
+            self._hist_w = list(w2) + self._hist_w[m:]
+            self._unit *= 2
 
     @property
     def state(self) -> BrightnessState:

@@ -1,0 +1,110 @@
+"""Tests of the brightness baseline and bleach rate."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy.signal import lfilter
+
+from qcmon.metrics.brightness import BrightnessTracker
+
+
+def _session(tau_min, minutes, *, fs=30.0, n_cells=40, seed=0, f0=1000.0):
+    """Frame means above dark: exponential bleaching x (1 + calcium activity) + shot noise of the mean."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int(minutes * 60 * fs)) / fs
+    activity = np.zeros_like(t)
+    decay = math.exp(-1.0 / (0.7 * fs))  # ~0.7 s transient decay (common practice, no source)
+    for _ in range(n_cells):
+        spikes = np.zeros_like(t)
+        hits = rng.random(t.size) < 0.2 / fs
+        spikes[hits] = rng.uniform(0.3, 1.0, hits.sum())  # ΔF/F up to 100 %
+        activity += (1.0 / n_cells) * 0.5 * lfilter([1.0], [1.0, -decay], spikes)
+    resting = f0 * np.exp(-t / 60.0 / tau_min)
+    return t, resting * (1 + activity) + rng.normal(0, 0.5, t.size)
+
+
+def _run(t, f, **kw):
+    tracker = BrightnessTracker(**kw)
+    states = [tracker.update(ti, fi) for ti, fi in zip(t, f)]
+    return tracker, states
+
+
+@pytest.mark.parametrize("tau_min, minutes", [(20.0, 10.0), (60.0, 20.0)])
+def test_session_fit_slope_within_5_percent(tau_min, minutes):
+    # Ground truth of the simulation: slope at t = 0 is -100 / tau %/min of the initial brightness.
+    t, f = _session(tau_min, minutes)
+    tracker, _ = _run(t, f)
+    fit = tracker.session_fit()
+    assert_allclose(fit.slope_pct_per_min, -100.0 / tau_min, rtol=0.05)
+    assert_allclose(fit.tau_min, tau_min, rtol=0.05)
+    assert fit.r2 > 0.95
+
+
+def test_trailing_slope_tracks_truth_despite_activity():
+    tau = 20.0
+    t, f = _session(tau, 10.0, seed=1)
+    _, states = _run(t, f, window_s=120.0)
+    slope = np.array([s.bleach_pct_per_min for s in states])
+    ok = ~np.isnan(slope)
+    # Truth at the window centre (a linear fit over the window estimates the rate there).
+    truth = -100.0 / tau * np.exp(-(t - 60.0) / 60.0 / tau)
+    assert ok.sum() > 0.7 * t.size
+    assert_allclose(np.median(slope[ok] / truth[ok]), 1.0, atol=0.05)
+    late = ok & (t > 300)
+    assert_allclose(slope[late].mean() / truth[late].mean(), 1.0, atol=0.05)
+
+
+def test_activity_does_not_move_baseline():
+    t, f = _session(1e9, 2.0, seed=2)  # no bleaching
+    _, states = _run(t, f)
+    pct = np.array([s.brightness_pct for s in states])
+    pct = pct[~np.isnan(pct)]
+    assert np.all(np.abs(pct - 100) < 2.0)  # the mean itself swings by much more
+    assert np.ptp(f) / np.median(f) > 0.05
+
+
+def test_forecast_and_sign():
+    t, f = _session(20.0, 5.0, seed=3)
+    tracker, _ = _run(t, f)
+    state = tracker.state
+    assert state.bleach_pct_per_min < 0  # negative = dimming
+    expect = (state.brightness_pct - 50.0) / -state.bleach_pct_per_min
+    assert tracker.forecast_min(50.0) == pytest.approx(expect)
+    assert tracker.forecast_min(0.0) == 0.0
+    rising, _ = _run(t, f[::-1])
+    assert rising.forecast_min(10.0) == math.inf
+
+
+def test_memory_is_bounded():
+    tracker = BrightnessTracker(max_history=64, block_s=0.1, baseline_s=1.0, initial_s=1.0, window_s=5.0)
+    for i in range(30000):
+        tracker.update(i / 100.0, 100.0 * math.exp(-i / 100.0 / 600.0))
+    assert len(tracker._hist_t) < 64
+    assert_allclose(tracker.session_fit().tau_min, 10.0, rtol=0.01)
+
+
+def test_undefined_before_data():
+    tracker = BrightnessTracker()
+    with pytest.warns(UserWarning, match="undefined"):
+        assert math.isnan(tracker.session_fit().tau_min)
+    with pytest.warns(UserWarning, match="undefined"):
+        assert math.isnan(tracker.forecast_min(10))
+    state = tracker.update(0.0, math.nan)
+    assert math.isnan(state.baseline_f)
+
+
+def test_bad_input():
+    with pytest.raises(ValueError, match="window_s"):
+        BrightnessTracker(window_s=0)
+    with pytest.raises(ValueError, match="percentile"):
+        BrightnessTracker(percentile=120)
+    tracker = BrightnessTracker()
+    tracker.update(1.0, 5.0)
+    with pytest.raises(ValueError, match="time_s"):
+        tracker.update(0.5, 5.0)
+    with pytest.raises(ValueError, match="loss_pct"):
+        tracker.forecast_min(-1)
