@@ -77,8 +77,9 @@ class Specimen:
             self._otf_x[-1] = 0.0
         self._ky = ky
         self._kx = kx
-        odd = (np.arange(c.height) % 2).astype(bool)
-        self._odd_rows = odd
+        # frame rows 0, 2, 4, ... are "even" (bidirectional scan), whatever the crop offset
+        self._even_sel = slice(0, None, 2)
+        self._odd_sel = slice(1, None, 2)
         self._cache: dict[int, tuple[float, tuple]] = {}
 
     # construction ----------------------------------------------------------------------------------------
@@ -215,19 +216,19 @@ class Specimen:
         nw = np.atleast_1d(np.asarray(neuropil_weight, dtype=float))
         H, W = self.config.height, self.config.width
         flat = self._flat[sel].ravel()
-        ramp_y = self._otf_y * np.exp(-2j * math.pi * self._ky * dy_px)
-        even_x = self._otf_x * np.exp(-2j * math.pi * self._kx * (dx_px - line_offset_px / 2.0))
-        odd_x = self._otf_x * np.exp(-2j * math.pi * self._kx * (dx_px + line_offset_px / 2.0))
-        row_x = np.where(self._odd_rows[:, None], odd_x[None, :], even_x[None, :])
+        ramp_y = (self._otf_y * np.exp(-2j * math.pi * self._ky * dy_px)).astype(np.complex64)[:, None]
+        even_x = (self._otf_x * np.exp(-2j * math.pi * self._kx * (dx_px - line_offset_px / 2.0))).astype(np.complex64)
+        odd_x = (self._otf_x * np.exp(-2j * math.pi * self._kx * (dx_px + line_offset_px / 2.0))).astype(np.complex64)
         out = np.empty((cw.shape[0], H, W), np.float32)
         for ch in range(cw.shape[0]):
             weights = (light * cw[ch, sel][:, None, None].astype(np.float32)).ravel()
             cells = np.bincount(flat, weights=weights, minlength=self.HL * self.WL).reshape(self.HL, self.WL)
             spec = sfft.rfft2(cells.astype(np.float32))
-            spec += nw[ch] * base_spec
-            spec *= ramp_y[:, None]
+            spec += np.complex64(nw[ch]) * base_spec
+            spec *= ramp_y
             rows = sfft.ifft(spec, axis=0)[self.oy:self.oy + H]
-            rows *= row_x
+            rows[self._even_sel] *= even_x
+            rows[self._odd_sel] *= odd_x
             img = sfft.irfft(rows, n=self.WL, axis=1)[:, self.ox:self.ox + W]
             np.maximum(img, 0.0, out=out[ch])
         return out
