@@ -433,3 +433,22 @@ def test_option_validation(tmp_path):
         SessionSource(tmp_path / "missing")
     with pytest.raises(ValueError, match="start"):
         SessionSource(tmp_path, start={"files": {}})
+
+
+def test_simulated_session_reads_the_same_in_every_layout(tmp_path):
+    from qcmon.simulate import SimConfig
+    from qcmon.simulate._write import write_session
+
+    config = SimConfig(n_frames=5, height=20, width=24, channels=2, planes=2)
+    runs = {}
+    for layout in ("multipage", "chunks", "per_frame", "raw"):
+        write_session(config, tmp_path / layout, layout=layout, chunk_frames=2)
+        source = SessionSource(tmp_path / layout / "frames", channels=2, planes=2)
+        runs[layout] = list(source)
+        assert source.problems == []
+    reference = tifffile.imread(tmp_path / "multipage" / "frames" / "run_00001.tif").reshape(-1, 20, 24)
+    for layout, frames in runs.items():
+        # reference: tifffile reading the simulator's single multipage file
+        _frames_equal(frames, list(reference))
+        assert [(f.index, f.plane, f.channel) for f in frames] == [
+            (t, z, c) for t in range(5) for z in range(2) for c in range(2)]

@@ -2,21 +2,24 @@
 
 The sidecar ``NAME.toml`` sits beside the stream and uses these keys (all ours):
 
-==================  ========  ==========================================================================
+=================== ========  =========================================================================
 key                 required  meaning
-==================  ========  ==========================================================================
+=================== ========  =========================================================================
 ``dtype``           yes       numpy type string of one pixel, e.g. ``"uint16"`` or ``"<u2"`` / ``">u2"``
-                              (unsigned integers only; byte order little-endian unless given)
+                              (unsigned integers only)
 ``height``          yes       rows per frame (px)
 ``width``           yes       columns per frame (px)
+``byte_order``      no        ``"little"`` (default) or ``"big"``, when ``dtype`` does not say
 ``header_bytes``    no        bytes before the first frame (default 0)
+``page_order``      no        must be ``"time, plane, channel"`` (the only order read)
 ``frame_rate_hz``   no        time points per second (volumes per second when ``planes`` > 1)
 ``channels``        no        channels interleaved per plane (default 1)
 ``planes``          no        planes per time point (default 1)
 ``pixel_size_um``   no        pixel size (µm)
-``z_step_um``       no        distance between planes (µm)
-``bit_depth``       no        significant bits of the detector (e.g. 12 for a 12-bit camera in uint16)
-==================  ========  ==========================================================================
+``plane_spacing_um`` no       distance between planes (µm)
+``bits``            no        significant bits of the detector (e.g. 12 for a 12-bit camera in uint16)
+``n_pages``         no        pages the stream holds when complete (informational)
+=================== ========  =========================================================================
 
 Frames follow each other without gaps, in time -> plane -> channel order. A frame is complete when the file
 size covers all its bytes. Without a sidecar, the options ``raw_dtype`` and ``raw_shape`` describe the stream.
@@ -38,9 +41,14 @@ else:  # pragma: no cover
 
 RAW_SUFFIXES = (".raw", ".bin", ".dat")
 SIDECAR_KEYS = {
-    "dtype": str, "height": int, "width": int, "header_bytes": int, "frame_rate_hz": (int, float),
-    "channels": int, "planes": int, "pixel_size_um": (int, float), "z_step_um": (int, float), "bit_depth": int,
+    "dtype": str, "height": int, "width": int, "byte_order": str, "header_bytes": int, "page_order": str,
+    "frame_rate_hz": (int, float), "channels": int, "planes": int, "pixel_size_um": (int, float),
+    "plane_spacing_um": (int, float), "bits": int, "n_pages": int,
 }
+#: Sidecar keys -> :class:`~qcmon.frames.AcquisitionFacts` keys.
+FACT_KEYS = {"frame_rate_hz": "frame_rate_hz", "channels": "channels", "planes": "planes",
+             "pixel_size_um": "pixel_size_um", "plane_spacing_um": "z_step_um", "bits": "bit_depth"}
+PAGE_ORDER = "time, plane, channel"
 SIDECAR = "sidecar"
 
 
@@ -78,13 +86,22 @@ def read_sidecar(path: str) -> dict:
         kind = SIDECAR_KEYS[key]
         if isinstance(value, bool) or not isinstance(value, kind):
             raise FrameError(f"sidecar key {key} = {value!r} has the wrong type", path=path)
-        if key != "dtype" and not (value > 0 or (key == "header_bytes" and value == 0)):
+        if kind is not str and not (value > 0 or (key == "header_bytes" and value == 0)):
             raise FrameError(f"sidecar key {key} = {value!r} must be positive", path=path)
+    order = config.pop("byte_order", "little")
+    if order not in ("little", "big"):
+        raise FrameError(f'sidecar key byte_order = {order!r}: "little" or "big" expected', path=path)
+    if config.get("page_order", PAGE_ORDER).replace(" ", "") != PAGE_ORDER.replace(" ", ""):
+        raise FrameError(f"sidecar key page_order = {config['page_order']!r}: only {PAGE_ORDER!r} is read",
+                         path=path)
     if "dtype" in config:
         try:
-            config["dtype"] = parse_dtype(config["dtype"], what=f"sidecar key dtype in {path}")
+            dtype = parse_dtype(config["dtype"], what=f"sidecar key dtype in {path}")
         except ValueError as exc:
             raise FrameError(str(exc), path=path) from None
+        if dtype.byteorder == "=" or dtype.byteorder == "|":
+            dtype = dtype.newbyteorder("<" if order == "little" else ">")
+        config["dtype"] = dtype
     return config
 
 
@@ -171,6 +188,8 @@ class RawStream:
                     return items, NotReadyError(f"read error: {exc}")
                 if got != frame_bytes:  # the file shrank under us
                     return items, NotReadyError("raw stream is shorter than its size said")
+                if not dtype.isnative:
+                    data = data.byteswap().view(dtype.newbyteorder("="))
                 items.append((self.pages_done, data))
                 self.pages_done += 1
         at_end = self.pages_done >= available
@@ -185,11 +204,11 @@ class RawStream:
         c = self.config or {}
         from_sidecar = self._from_sidecar
         facts = {}
-        for key in ("frame_rate_hz", "channels", "planes", "pixel_size_um", "z_step_um", "bit_depth"):
+        for key, fact in FACT_KEYS.items():
             if key in c:
-                facts[key] = (c[key], SIDECAR)
+                facts[fact] = (c[key], SIDECAR)
         if "dtype" in c:
-            facts["dtype"] = (str(c["dtype"]), SIDECAR if "dtype" in from_sidecar else "option")
+            facts["dtype"] = (c["dtype"].name, SIDECAR if "dtype" in from_sidecar else "option")
         if "height" in c:
             facts["shape"] = ((c["height"], c["width"]), SIDECAR if "height" in from_sidecar else "option")
         return facts
