@@ -365,3 +365,23 @@ def test_sample_frames_bundle():
         assert tif.is_ome and len(tif.pages) == 240
     truth = np.genfromtxt(folder / "truth.csv", delimiter=",", names=True)
     assert truth["z_um"][-1] > 2.0  # planted drift + step
+
+
+def test_direct_per_frame_files_can_be_seen_partial(tmp_path):
+    # atomic=False writes the final name in two halves: a watcher can meet an incomplete file (what the
+    # folder reader must cope with); atomic=True never shows one (checked in the live per-frame test)
+    cfg = SimConfig(n_frames=2, height=32, width=32, zstack_half_planes=1)
+    out = tmp_path / "direct"
+    th = threading.Thread(target=write_session, args=(cfg, out),
+                          kwargs={"layout": "per_frame", "atomic": False, "partial_delay_s": 0.3})
+    th.start()
+    sizes = set()
+    first = out / "frames" / "run_00001.tif"
+    while th.is_alive():
+        if first.exists():
+            sizes.add(first.stat().st_size)
+        time.sleep(0.01)
+    th.join()
+    final = first.stat().st_size
+    assert any(0 < s < final for s in sizes)
+    np.testing.assert_array_equal(tifffile.imread(first), simulate(cfg).pages[0])

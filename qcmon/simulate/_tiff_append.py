@@ -85,7 +85,8 @@ class AppendingTiffWriter:
             (262, _SHORT, 1, struct.pack("<H", 1)),
         ]
         if self.n_pages == 0 and self._description:
-            text = self._description.encode("utf-8") + b"\0"
+            # TIFF ASCII is 7-bit: non-ASCII characters (µ) become XML character references
+            text = self._description.encode("ascii", "xmlcharrefreplace") + b"\0"
             tags.append((270, _ASCII, len(text), text))
         tags += [
             (273, _LONG, 1, struct.pack("<I", pos)),
