@@ -164,7 +164,7 @@ def test_gain_change_saturates_and_truth_reports_it():
     t = res.truth
     before, after = t["time_s"] < cfg.gain_change_time_s, t["time_s"] >= cfg.gain_change_time_s
     assert_allclose(t["gain"][before], 30.0)
-    assert_allclose(t["gain"][after], 240.0)
+    assert_allclose(t["gain"][after], 30.0 * 16)
     top = 2**cfg.bits - 1
     measured = (res.pages == top).mean(axis=(1, 2))
     assert_allclose(t["saturated_frac"], measured)
@@ -262,7 +262,10 @@ def test_written_files_read_back(tmp_path, layout):
     res = simulate(cfg)
     info = write_session(cfg, tmp_path / "s", layout=layout, chunk_frames=4, zero_pad=0)
     if layout == "raw":
-        import tomllib
+        try:
+            import tomllib
+        except ImportError:  # Python 3.10
+            import tomli as tomllib
 
         meta = tomllib.loads(Path(info["frames_dir"], "frames.toml").read_text(encoding="utf-8"))
         assert (meta["height"], meta["width"], meta["channels"], meta["dtype"]) == (32, 48, 2, "uint16")

@@ -1,14 +1,10 @@
-"""Named scenarios: configs with planted events at fixed fractions of the session.
+"""Named scenarios: configs with planted events at fixed fractions of the session length ``T``.
 
-=================  =====================================================================================
-name               planted events (times as fractions of the session length ``T``)
-=================  =====================================================================================
-``clean``          none: slow wander (0.5 px) and fast jitter (0.15 px) only
-``drift``          focal drift of +2 µm/min over the whole session and a +2 µm focal step at 0.6 T
-``motion_burst``   strong motion (3 px std) from 0.4 T for 0.1 T, and a lasting jump of (+4, -3) px at 0.7 T
-``gain_saturation`` gain × 8 at 0.5 T (active cells and bright pixels saturate)
-``demo``           focal drift +1.5 µm/min, strong motion (3 px) from 0.3 T for 0.08 T, gain × 8 at 0.7 T
-=================  =====================================================================================
+- ``clean``: no planted event; slow wander (0.5 px) and fast jitter (0.15 px) only.
+- ``drift``: focal drift of +2 µm/min over the whole session and a +2 µm focal step at 0.6 T.
+- ``motion_burst``: strong motion (3 px std) from 0.4 T for 0.1 T, and a lasting jump of (+4, -3) px at 0.7 T.
+- ``gain_saturation``: detector gain × 16 at 0.5 T (bright cells saturate the detector).
+- ``demo``: focal drift +1.5 µm/min, strong motion (3 px) from 0.3 T for 0.08 T, gain × 16 at 0.7 T.
 
 The events also appear in ``scenario.json`` (see :func:`qcmon.simulate.planted_events`).
 """
@@ -23,8 +19,8 @@ SCENARIOS: dict[str, str] = {
     "clean": "no planted event; slow wander and fast jitter only",
     "drift": "focal drift +2 µm/min and a +2 µm focal step at 60 % of the session",
     "motion_burst": "strong motion from 40 % for 10 % of the session; lasting (+4, -3) px jump at 70 %",
-    "gain_saturation": "detector gain × 8 at 50 % of the session",
-    "demo": "focal drift +1.5 µm/min, strong motion at 30 % for 8 %, gain × 8 at 70 %",
+    "gain_saturation": "detector gain × 16 at 50 % of the session",
+    "demo": "focal drift +1.5 µm/min, strong motion at 30 % for 8 %, gain × 16 at 70 %",
 }
 
 
@@ -53,9 +49,9 @@ def scenario_config(name: str, **overrides) -> SimConfig:
     elif name == "motion_burst":
         events = {"bursts": ((0.4 * T, 0.1 * T, 3.0),), "jumps": ((0.7 * T, 4.0, -3.0),)}
     elif name == "gain_saturation":
-        events = {"gain_change_time_s": 0.5 * T, "gain_change_factor": 8.0}
+        events = {"gain_change_time_s": 0.5 * T, "gain_change_factor": 16.0}
     elif name == "demo":
         events = {"z_drift_um_per_min": 1.5, "bursts": ((0.3 * T, 0.08 * T, 3.0),),
-                  "gain_change_time_s": 0.7 * T, "gain_change_factor": 8.0}
+                  "gain_change_time_s": 0.7 * T, "gain_change_factor": 16.0}
     events = {k: v for k, v in events.items() if k not in overrides}
     return base.replace(scenario=name, **events)
