@@ -39,37 +39,22 @@ _STRIP_OFFSETS, _STRIP_COUNTS, _TILE_OFFSETS, _TILE_COUNTS = 273, 279, 324, 325
 _MAX_TAGS = 4096  # the same sanity limit as tifffile
 
 
-@dataclass(frozen=True, slots=True)
 class TiffHeader:
-    """Byte order and offset sizes of a classic TIFF or BigTIFF file."""
+    """Byte order and offset sizes of a classic TIFF or BigTIFF file (fields precomputed: read per page)."""
 
-    byteorder: str  # "<" or ">"
-    bigtiff: bool
+    __slots__ = ("byteorder", "bigtiff", "first_pointer", "offset_format", "offset_size", "tagno_format",
+                 "tagno_size", "tag_size", "tag_head_format")
 
-    @property
-    def first_pointer(self) -> int:
-        """File position of the offset of the first IFD."""
-        return 8 if self.bigtiff else 4
-
-    @property
-    def offset_format(self) -> str:
-        return self.byteorder + ("Q" if self.bigtiff else "I")
-
-    @property
-    def offset_size(self) -> int:
-        return 8 if self.bigtiff else 4
-
-    @property
-    def tagno_format(self) -> str:
-        return self.byteorder + ("Q" if self.bigtiff else "H")
-
-    @property
-    def tagno_size(self) -> int:
-        return 8 if self.bigtiff else 2
-
-    @property
-    def tag_size(self) -> int:
-        return 20 if self.bigtiff else 12
+    def __init__(self, byteorder: str, bigtiff: bool):
+        self.byteorder = byteorder  # "<" or ">"
+        self.bigtiff = bigtiff
+        self.first_pointer = 8 if bigtiff else 4  # file position of the offset of the first IFD
+        self.offset_format = byteorder + ("Q" if bigtiff else "I")
+        self.offset_size = 8 if bigtiff else 4
+        self.tagno_format = byteorder + ("Q" if bigtiff else "H")
+        self.tagno_size = 8 if bigtiff else 2
+        self.tag_size = 20 if bigtiff else 12
+        self.tag_head_format = byteorder + ("HHQ" if bigtiff else "HHI")
 
 
 def read_header(fh, size: int, path: str) -> TiffHeader:
@@ -150,15 +135,15 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
         return IfdInfo(offset, next_pointer, (), False, (), ())
     buf = fh.read(nbytes)
     bo = header.byteorder
-    head_format = bo + ("HHQ" if header.bigtiff else "HHI")
-    inline = header.offset_size
+    head_format = header.tag_head_format
+    inline, tag_size = header.offset_size, header.tag_size
     fingerprint = []
     values: dict[int, tuple[int, ...]] = {}
     reduced = False
     for i in range(tagno):
-        start = i * header.tag_size
+        start = i * tag_size
         code, dtype, count = struct.unpack_from(head_format, buf, start)
-        value = buf[start + header.tag_size - inline : start + header.tag_size]
+        value = buf[start + tag_size - inline : start + tag_size]
         length = count * _TYPE_SIZES.get(dtype, 1)
         value_offset = None
         if length > inline:
