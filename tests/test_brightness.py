@@ -108,3 +108,20 @@ def test_bad_input():
         tracker.update(0.5, 5.0)
     with pytest.raises(ValueError, match="loss_pct"):
         tracker.forecast_min(-1)
+
+
+def test_session_fit_on_simulated_session():
+    # qcmon's simulator: bleaching exp(-t / tau) of the indicator (truth column bleach_factor) under calcium
+    # activity and slow neuropil fluctuations; 10 min at 2.5 Hz, 64 x 64 px to stay fast.
+    from qcmon.simulate import SimConfig, simulate
+
+    config = SimConfig(n_frames=1500, height=64, width=64, frame_rate_hz=2.5, bleach_tau_min=(20.0,),
+                       channel_brightness=(1.0,), channel_neuropil=(1.0,), zstack_half_planes=1, zstack_average=1,
+                       jitter_px=0.0, slow_drift_px=0.0)
+    result = simulate(config)
+    truth = result.truth
+    tracker = BrightnessTracker(block_s=1.0)
+    for page, t, dark in zip(result.pages, truth["time_s"], truth["dark_level"]):
+        tracker.update(t, page.mean() - dark)
+    rate = np.polyfit(truth["time_s"] / 60.0, np.log(truth["bleach_factor"]), 1)[0]
+    assert_allclose(tracker.session_fit().slope_pct_per_min, 100.0 * rate, rtol=0.05)

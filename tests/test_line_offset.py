@@ -60,3 +60,12 @@ def test_bad_input():
         line_offset_px(np.zeros((2, 32)))
     with pytest.raises(ValueError, match="row_step"):
         line_offset_px(np.zeros((8, 32)), row_step=0)
+
+
+def test_on_simulated_session():
+    # qcmon's simulator plants the bidirectional offset (truth column line_offset_px); 256 x 256 at 1.5 photons/px.
+    from qcmon.simulate import SimConfig, simulate
+
+    result = simulate(SimConfig(n_frames=12, line_offset_px=-1.7))
+    estimates = [line_offset_px(page) for page in result.pages]
+    assert abs(np.median(estimates) - result.truth["line_offset_px"][0]) < 0.1

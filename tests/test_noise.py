@@ -93,3 +93,13 @@ def test_bad_input():
         immerkaer_sigma(np.zeros(10))
     with pytest.raises(ValueError, match="row_step"):
         immerkaer_sigma(np.zeros((10, 10)), row_step=0)
+
+
+def test_on_simulated_dark_frames():
+    # qcmon's simulator with no light: the frames are dark level + read noise (truth column read_noise_dn).
+    from qcmon.simulate import SimConfig, simulate
+
+    result = simulate(SimConfig(n_frames=3, mean_photons_per_px=1e-9, read_noise_dn=8.0, dark_dn=100.0))
+    sigma = np.mean([immerkaer_sigma(p) for p in result.pages])
+    expected = np.sqrt(result.truth["read_noise_dn"][0] ** 2 + 1 / 12)  # + rounding to integers
+    assert_allclose(sigma, expected, rtol=0.05)

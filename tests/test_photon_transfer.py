@@ -133,3 +133,19 @@ def test_bad_input():
     pt = PhotonTransfer(max_value=10)
     with pytest.raises(ValueError, match="shape"):
         pt.update(np.zeros((8, 8)), np.zeros((8, 9)))
+
+
+def test_on_simulated_session():
+    # qcmon's simulator (detector truth: gain, dark level, read noise) with its default activity and motion.
+    from qcmon.simulate import SimConfig, simulate
+
+    result = simulate(SimConfig(n_frames=120, gain_dn_per_photon=20.0, dark_dn=200.0, read_noise_dn=3.0))
+    truth = result.truth
+    pt = PhotonTransfer(max_value=4095, read_noise_dn=float(truth["read_noise_dn"][0]), pair_step=1, row_step=2)
+    for previous, frame in zip(result.pages[:-1], result.pages[1:]):
+        pt.update(frame, previous)
+    res = pt.result()
+    assert_allclose(res.gain_dn_per_photon, truth["gain"][0], rtol=0.05)
+    assert_allclose(res.dark_level_dn, truth["dark_level"][0], rtol=0.05)
+    photons = photons_per_px(result.pages[60].mean() - res.dark_level_dn, res.gain_dn_per_photon)
+    assert_allclose(photons, truth["mean_photons_per_px"][60], rtol=0.1)

@@ -56,3 +56,16 @@ def test_bad_input():
         saturation_fractions(np.zeros((4, 4)), max_value=0, floor=0)
     with pytest.raises(ValueError, match="frame"):
         saturation_fractions(np.zeros(4), max_value=10)
+
+
+def test_on_simulated_session():
+    # qcmon's simulator records the saturated and clipped fractions of each noisy frame.
+    from qcmon.simulate import SimConfig, simulate
+
+    result = simulate(SimConfig(n_frames=5, mean_photons_per_px=30.0, bits=12))
+    truth = result.truth
+    assert truth["saturated_frac"].max() > 0
+    for i, page in enumerate(result.pages):
+        sat, clip = saturation_fractions(page, max_value=detector_max(page.dtype, bit_depth=12))
+        assert sat == truth["saturated_frac"][i]
+        assert clip == truth["clipped_frac"][i]

@@ -14,6 +14,8 @@ __all__ = ["PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "pho
 
 #: Samples whose squared high-passed difference exceeds this many predicted variances are outliers (6 sigma).
 _OUTLIER_VAR = 36.0
+#: Stencils whose neighbours' squared gradient exceeds this many times its flat-field expectation are left out.
+_FLAT_GRAD = 3.0
 #: Fewest samples a bin needs to enter the fit.
 _MIN_BIN_COUNT = 50
 
@@ -150,7 +152,7 @@ class PhotonTransfer:
         self._calls += 1
         if (self._calls - 1) % self.pair_step:
             return False
-        x, y, nbr, ok = self._samples(a, b)
+        x, y, nbr, grad2, ok = self._samples(a, b)
         if self._edges is None:
             self._set_edges(nbr[ok])
             if self._edges is None:
@@ -162,6 +164,9 @@ class PhotonTransfer:
             predicted = np.maximum(slope * np.maximum(x, nbr) + intercept, 1e-6)
             ok &= y <= _OUTLIER_VAR * predicted
             ok &= nbr + 6.0 * np.sqrt(predicted) < self.max_value
+            # Residual motion turns local structure into frame-to-frame change; keep stencils whose
+            # surroundings look flat at the noise level (a selection by independent pixels: no bias).
+            ok &= grad2 <= _FLAT_GRAD * 8.0 * np.maximum(slope * nbr + intercept, 1e-6)
         lo, scale = self._edges
         idx = np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale
         idx = np.minimum(idx.astype(np.intp), self.n_bins - 1)
@@ -189,9 +194,15 @@ class PhotonTransfer:
         y = (h * h) / 3.0
         x = (0.5 * s[k : 2 * k, 1:-1] + 0.125 * (s[:k, 1:-1] + s[2 * k :, 1:-1])) / 1.5
         nbr = 0.25 * (s[k : 2 * k, :-2] + s[k : 2 * k, 2:])
+        # Local structure seen by the columns either side (independent of the stencil's noise): squared
+        # horizontal and vertical differences of the pair sums; 8 x the pixel variance on a flat field.
+        gx = s[k : 2 * k, 2:] - s[k : 2 * k, :-2]
+        gy_left = s[2 * k :, :-2] - s[:k, :-2]
+        gy_right = s[2 * k :, 2:] - s[:k, 2:]
+        grad2 = gx * gx + 0.5 * (gy_left * gy_left + gy_right * gy_right)
         badc = bad[:k] | bad[k : 2 * k] | bad[2 * k :]
         ok = ~(badc[:, 1:-1] | badc[:, :-2] | badc[:, 2:])
-        return x.ravel(), y.ravel(), nbr.ravel(), ok.ravel()
+        return x.ravel(), y.ravel(), nbr.ravel(), grad2.ravel(), ok.ravel()
 
     def _set_edges(self, nbr: np.ndarray) -> None:
         """Bins equally spaced in sqrt(neighbour mean - low end): about equal noise per bin (shot noise)."""
