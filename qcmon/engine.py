@@ -205,7 +205,9 @@ class Engine:
                     info.update(gain_dn_per_photon=res.gain_dn_per_photon, ptc_dark_level_dn=res.dark_level_dn,
                                 read_noise_dn=res.read_noise_dn, ptc_points=res.n_points, ptc_r2=res.r2)
             if st.brightness is not None:
-                fit = st.brightness.session_fit()
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", UserWarning)  # too short a session: NaN fit
+                    fit = st.brightness.session_fit()
                 info.update(bleach_slope_pct_per_min=fit.slope_pct_per_min, bleach_tau_min=fit.tau_min,
                             bleach_r2=fit.r2)
             if st.zest is not None:
@@ -213,11 +215,18 @@ class Engine:
             out[key] = info
         return out
 
+    def reference_image(self, channel: int, plane: int) -> np.ndarray | None:
+        """The current reference of a stream (float32, rows × columns), or None before it is built."""
+        st = self._streams.get((channel, plane))
+        return None if st is None else st.reference
+
     def forecast_min(self, channel: int, plane: int, loss_pct: float) -> float:
         st = self._streams.get((channel, plane))
         if st is None or st.brightness is None:
             return NAN
-        return st.brightness.forecast_min(loss_pct)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # no bleach rate yet: NaN
+            return st.brightness.forecast_min(loss_pct)
 
     # ----------------------------------------------------------------- private
     def _stream(self, frame: Frame) -> _Stream:
@@ -250,9 +259,11 @@ class Engine:
         s = self.settings
         if st.shift is None:  # first start: detector facts
             st.max_value = float(detector_max(frames[0].data.dtype, s.bit_depth))
-            st.ptc = PhotonTransfer(max_value=st.max_value)
+            # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
+            st.ptc = PhotonTransfer(max_value=st.max_value, pair_step=1)
             for a, b in zip(stack[1:], stack[:-1]):
                 st.ptc.update(a, b)
+            st.ptc.pair_step = s.photon_transfer_every
             self._set_dark_level(st, stack)
             st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
         with warnings.catch_warnings():
@@ -339,9 +350,9 @@ class Engine:
 
             # focus / z from a motion-corrected running mean, every z_every frames
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
-            st.running.add(img, shift=ishift)
+            st.running.push(img, dy, dx)
             if st.n_measured % s.z_every == 0 or st.n_measured < s.z_every:
-                mean_img = st.running.mean()
+                mean_img = st.running.mean
                 st.last_focus = (focus_corr(mean_img, st.reference), focus_measure(mean_img))
                 if st.zest is not None:
                     zr = st.zest.estimate(mean_img)
@@ -361,7 +372,7 @@ class Engine:
             sigma = immerkaer_sigma(img)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
-            if st.prev is not None and st.n_measured % s.photon_transfer_every == 0:
+            if st.prev is not None:
                 cur, prev = _overlap(img, st.prev, (ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1]))
                 if cur.size:
                     st.ptc.update(cur, prev)

@@ -22,6 +22,7 @@ from datetime import datetime
 from pathlib import Path
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from qcmon import __version__
 from qcmon.engine import Engine, EngineSettings
@@ -111,6 +112,12 @@ class Monitor:
 
         Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``.
         """
+        # The engine's matrix products are small: one BLAS thread is fastest, and it leaves the other core to
+        # the acquisition computer's own work (and to a second qcmon in an audit).
+        with threadpool_limits(limits=1, user_api="blas"):
+            return self._run(listener)
+
+    def _run(self, listener: Listener | None) -> dict:
         o = self.options
         listeners = [listener] if listener is not None else []
         record = SessionRecord(self.out_dir, resume=o.resume)
@@ -336,6 +343,10 @@ class Monitor:
                                             json.dumps(_jsonable(summary), indent=2, ensure_ascii=False)))
         ranges = exclude_ranges(traces, events, self.profile)
         paths["exclude"] = str(_write_exclude(self.out_dir / "exclude.csv", ranges))
+        if engine is not None and engine.streams:
+            ref = engine.reference_image(*engine.streams[0])
+            if ref is not None:
+                paths["reference"] = str(_write_tiff_atomic(self.out_dir / "reference.tif", ref))
         paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts))
         return paths
 
@@ -345,6 +356,16 @@ def _write_exclude(path: Path, ranges) -> Path:
     for r in ranges:
         lines.append(",".join(str(x) for x in r))
     return write_atomic(path, "\n".join(lines) + "\n")
+
+
+def _write_tiff_atomic(path: Path, image: np.ndarray) -> Path:
+    import io
+
+    import tifffile
+
+    buf = io.BytesIO()
+    tifffile.imwrite(buf, np.asarray(image, dtype=np.float32))
+    return write_atomic(path, buf.getvalue())
 
 
 def _jsonable(obj):
