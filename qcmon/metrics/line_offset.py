@@ -31,7 +31,8 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
         Use every ``row_step``-th odd row only (fewer FFTs; precision falls roughly as ``sqrt(row_step)``).
         Default 1.
     upsample : int, optional
-        Subpixel resolution is ``1 / upsample`` px (then refined once more ten times finer). Default 100.
+        The peak is found on a 0.1 px grid, then on a ``1 / upsample`` px grid around it, then refined by a
+        parabola through the three best points. Default 100.
 
     Returns
     -------
@@ -80,8 +81,8 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     peak = int(np.argmax(corr))
     if peak > n // 2:
         peak -= n
-    best = _refine_peak(cross, n, float(peak), half_width=1.0, step=1.0 / upsample)
-    best = _refine_peak(cross, n, best, half_width=1.0 / upsample, step=0.1 / upsample)
+    best = _refine_peak(cross, n, float(peak), half_width=1.0, step=0.1)
+    best = _refine_peak(cross, n, best, half_width=0.1, step=0.1 * 10.0 / upsample)
     return float(best)
 
 
@@ -95,7 +96,7 @@ def _refine_peak(cross: np.ndarray, n: int, centre: float, *, half_width: float,
 
     ``c(s) = Re[C_0 + 2 * sum_{k>=1} C_k exp(2 pi i k s / n)]`` from the half spectrum ``C`` of a real signal.
     """
-    shifts = centre + np.arange(-half_width, half_width + step / 2, step)
+    shifts = centre + step * np.arange(-round(half_width / step), round(half_width / step) + 1)
     k = np.arange(cross.size)
     weights = np.full(cross.size, 2.0)
     weights[0] = 1.0
