@@ -7,6 +7,7 @@ noise at a chosen mean photon count per pixel, a conversion gain and a dark offs
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -74,7 +75,7 @@ def test_accuracy_against_truth_and_skimage(field512, photons, target):
     est = ShiftEstimator(reference, upsample=20)
     sk_ref = reference.astype(np.float32)
     ours, theirs = [], []
-    for _ in range(25):
+    for _ in range(16):
         d = rng.uniform(-20, 20, 2)
         frame = expose(shifted_crop(field512, d[0], d[1], shape), photons, rng)
         r = est.estimate(frame)
@@ -170,13 +171,18 @@ def test_build_reference_is_sharper_than_mean_and_centred():
     assert_allclose((pos.dy_px, pos.dx_px), offset, atol=0.15)
 
 
+@functools.lru_cache(maxsize=None)
+def _small_field(seed):
+    return make_field((128 + 2 * PAD, 128 + 2 * PAD), np.random.default_rng(seed), cell_diam=8.0)
+
+
 @settings(max_examples=15, deadline=None)
-@given(dy=st.floats(-10, 10), dx=st.floats(-10, 10), seed=st.integers(0, 2**16))
+@given(dy=st.floats(-10, 10), dx=st.floats(-10, 10), seed=st.integers(0, 5))
 def test_property_shifted_image_measures_its_shift(dy, dx, seed):
-    rng = np.random.default_rng(seed)
-    field = make_field((96 + 2 * PAD, 96 + 2 * PAD), rng, cell_diam=8.0)
-    ref = shifted_crop(field, 0, 0, (96, 96))
-    r = ShiftEstimator(ref).estimate(shifted_crop(field, dy, dx, (96, 96)))
+    field = _small_field(seed)
+    ref = shifted_crop(field, 0, 0, (128, 128))
+    r = ShiftEstimator(ref).estimate(shifted_crop(field, dy, dx, (128, 128)))
+    # noise-free but with non-periodic edges: 0.1 px (project goal at this small size)
     assert_allclose((r.dy_px, r.dx_px), (dy, dx), atol=0.1)
 
 
@@ -243,3 +249,29 @@ def test_validation_names_the_parameter():
         build_reference(ref)
     with pytest.raises(ValueError, match="iterations"):
         build_reference(np.stack([ref, ref]), iterations=0)
+
+
+@pytest.mark.parametrize("photons, target", [(0.5, 0.1), (1.5, 0.05)])
+def test_accuracy_on_simulated_session(photons, target):
+    # Simulated two-photon session (qcmon.simulate): calcium activity, optical blur, slow drift, a jump and a
+    # burst of fast motion; ground truth shifts are relative to the z-stack's starting plane.
+    from qcmon.simulate import SimConfig, simulate
+
+    cfg = SimConfig(n_frames=30, height=256, width=256, mean_photons_per_px=photons,
+                    bursts=((0.4, 1.0, 6.0),), jumps=((1.0, 8.0, -5.0),), seed=3)
+    res = simulate(cfg)
+    frames = res.frames_for()
+    truth = np.stack([res.truth["dy_px"], res.truth["dx_px"]], axis=1)
+    reference = res.zstack[res.zstack.shape[0] // 2].astype(np.float32)
+    est = ShiftEstimator(reference)
+    ours = np.array([est.estimate(f)[:2] for f in frames]) - truth
+    # scikit-image reference library (sign negated to the content-shift convention)
+    theirs = np.array([-phase_cross_correlation(reference, f.astype(np.float32), upsample_factor=20)[0]
+                       for f in frames]) - truth
+    print(f"simulated, {photons} photons/px: qcmon RMS {rms(ours):.3f} px, skimage RMS {rms(theirs):.3f} px")
+    assert rms(ours) <= target  # project accuracy goal against the simulator's ground truth
+    assert rms(ours) < rms(theirs)
+    # A reference built from the session's own first frames gives the same shifts up to a constant offset.
+    built = ShiftEstimator(build_reference(frames[:20], iterations=2))
+    rel = np.array([built.estimate(f)[:2] for f in frames]) - truth
+    assert rms(rel - np.median(rel, axis=0)) <= 1.5 * target
