@@ -121,16 +121,14 @@ class Monitor:
         o = self.options
         listeners = [listener] if listener is not None else []
         record = SessionRecord(self.out_dir, resume=o.resume)
-        done = record.last_frames() if o.resume else {}
+        run = _RunState(done=record.last_frames() if o.resume else {},
+                        status=Status(folder=str(self.path), out_dir=str(self.out_dir)),
+                        tracker=ThresholdTracker(self.profile))
+        if run.done:
+            run.status.paused_reason = "resuming: replaying the frames already recorded"
         source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
                                raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
                                pixel_size_um=o.pixel_size_um, on_problem=self._problem_to(record, listeners))
-        engine: Engine | None = None
-        tracker = ThresholdTracker(self.profile)
-        status = Status(folder=str(self.path), out_dir=str(self.out_dir))
-        last_row: dict | None = None
-        last_status = 0.0
-        idle_since = time.monotonic()
         watcher = None
         if o.follow:
             from qcmon.sources.watcher import FolderWatcher
@@ -138,62 +136,82 @@ class Monitor:
             watch_dir = self.path if self.path.is_dir() else self.path.parent
             watcher = FolderWatcher(watch_dir, poll_interval_s=o.poll_interval_s)
             watcher.__enter__()
+        last_status = -math.inf
+        idle_since = time.monotonic()
         try:
             while True:
-                frames = source.poll(final=not o.follow)
+                frames = source.poll(final=not o.follow, max_frames=_BATCH)
                 self.facts = source.facts
                 if frames:
                     idle_since = time.monotonic()
-                    if engine is None:
-                        engine = Engine(self._settings(source.facts, frames[0]))
-                    rows = self._measure(engine, frames, record, listeners)
-                    rows = [r for r in rows if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
-                    if rows:
-                        self._deliver(rows, tracker, record, listeners, done_before=bool(done))
-                        last_row = rows[-1]
-                        status.frames_measured += len(rows)
-                        status.current_file = rows[-1]["source"]
-                        status.elapsed_s = float(rows[-1]["time_s"])
-                self._handle_commands(engine, record, listeners, last_row)
+                    self._ingest(run, source, frames, record, listeners)
+                self._handle_commands(run, record, listeners)
                 now = time.monotonic()
-                if now - last_status >= (0.25 if listeners else o.status_every_s) or not o.follow:
-                    self._update_status(status, source, engine, tracker, listeners)
+                if now - last_status >= (0.25 if listeners else o.status_every_s):
+                    self._update_status(run, source, listeners)
                     last_status = now
                 record.maybe_flush()
-                if not o.follow:
-                    break
-                if self._stop.is_set():
+                run.behind = len(frames) == _BATCH
+                if run.behind:
+                    continue  # more is waiting on disk: no pause, and no end yet
+                if not o.follow or self._stop.is_set():
                     break
                 if o.until_idle_s is not None and now - idle_since >= o.until_idle_s:
                     break
                 if not frames:
                     watcher.wait(0.2)
-            # end of watch: whatever is on disk now, then what the engine held back
-            if o.follow:
-                frames = source.poll(final=True)
-                if frames:
-                    if engine is None:
-                        engine = Engine(self._settings(source.facts, frames[0]))
-                    rows = [r for r in self._measure(engine, frames, record, listeners)
-                            if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
-                    self._deliver(rows, tracker, record, listeners, done_before=bool(done))
-            if engine is not None:
-                rows = [r for r in engine.flush() if r["frame"] > done.get((r["channel"], r["plane"]), -1)]
-                if rows:
-                    self._deliver(rows, tracker, record, listeners, done_before=bool(done))
-                    last_row = rows[-1]
-                    status.frames_measured += len(rows)
-            self._handle_commands(engine, record, listeners, last_row)
-            for ev in tracker.close(last_row):
+            # end of watch: whatever completed meanwhile, then what the engine held back
+            while o.follow:
+                frames = source.poll(final=True, max_frames=_BATCH)
+                self._ingest(run, source, frames, record, listeners)
+                if len(frames) < _BATCH:
+                    break
+            if run.engine is not None:
+                self._deliver(run, run.engine.flush(), record, listeners)
+            self._handle_commands(run, record, listeners)
+            for ev in run.tracker.close(run.last_row):
                 self._emit(ev, record, listeners)
-            self._update_status(status, source, engine, tracker, listeners)
+            run.status.paused_reason = "session ended"
+            self._update_status(run, source, listeners)
             record.flush()
-            return self._finish(record, source, engine)
+            return self._finish(record, source, run.engine)
         finally:
             if watcher is not None:
                 watcher.stop()
             record.close()
             self._reap_alarm_commands(wait=True)
+
+    def _ingest(self, run: "_RunState", source: SessionSource, frames: list[Frame], record, listeners) -> None:
+        if not frames:
+            return
+        if run.engine is None:
+            run.engine = Engine(self._settings(source.facts, frames[0]))
+        rows: list[dict] = []
+        for fr in frames:
+            try:
+                rows.extend(run.engine.process(fr))
+            except FrameError as err:
+                self._problem_to(record, listeners)(err)
+        self._deliver(run, rows, record, listeners)
+
+    def _deliver(self, run: "_RunState", rows: list[dict], record, listeners) -> None:
+        """Record rows not recorded before (resume), raise their events and pass them on."""
+        if run.done:
+            rows = [r for r in rows if r["frame"] > run.done.get((r["channel"], r["plane"]), -1)]
+            if rows and run.status.paused_reason.startswith("resuming"):
+                run.status.paused_reason = ""
+        if not rows:
+            return
+        record.append_rows(rows)
+        for row in rows:
+            for ev in run.tracker.update(row):
+                self._emit(ev, record, listeners)
+        for lst in listeners:
+            lst.on_rows(rows)
+        run.last_row = rows[-1]
+        run.status.frames_measured += len(rows)
+        run.status.current_file = str(rows[-1]["source"])
+        run.status.elapsed_s = float(rows[-1]["time_s"])
 
     # ----------------------------------------------------------------- helpers
     def _settings(self, facts: AcquisitionFacts, first: Frame) -> EngineSettings:
@@ -213,23 +231,6 @@ class Monitor:
             zstack=zstack, z_step_um=z_step, motion_channel=o.motion_channel,
             **o.engine_overrides)
 
-    def _measure(self, engine: Engine, frames: list[Frame], record: SessionRecord, listeners) -> list[dict]:
-        rows: list[dict] = []
-        for fr in frames:
-            try:
-                rows.extend(engine.process(fr))
-            except FrameError as err:
-                self._problem_to(record, listeners)(err)
-        return rows
-
-    def _deliver(self, rows, tracker, record, listeners, *, done_before: bool) -> None:
-        record.append_rows(rows)
-        for row in rows:
-            for ev in tracker.update(row):
-                self._emit(ev, record, listeners)
-        for lst in listeners:
-            lst.on_rows(rows)
-
     def _emit(self, ev: Event, record: SessionRecord, listeners) -> None:
         if not ev.wall_time:
             ev.wall_time = datetime.now().astimezone().isoformat(timespec="seconds")
@@ -246,7 +247,8 @@ class Monitor:
             self._emit(Event(kind="problem", message=msg), record, listeners)
         return report
 
-    def _handle_commands(self, engine, record, listeners, last_row) -> None:
+    def _handle_commands(self, run: "_RunState", record, listeners) -> None:
+        engine, last_row = run.engine, run.last_row
         while True:
             try:
                 cmd = self._commands.get_nowait()
@@ -264,13 +266,15 @@ class Monitor:
                                  message="new reference requested: built from the next frames"),
                            record, listeners)
 
-    def _update_status(self, status, source, engine, tracker, listeners) -> None:
+    def _update_status(self, run: "_RunState", source, listeners) -> None:
+        status, engine, tracker = run.status, run.engine, run.tracker
         facts = source.facts
         status.facts = facts.as_dict()
         rate = facts.facts.get("frame_rate_hz")
         if rate is not None:
             status.frame_rate_hz, status.frame_rate_origin = float(rate.value), rate.origin
-        status.backlog_frames = int(getattr(source, "backlog", 0) or 0)
+        # a full batch means at least one more batch was already complete on disk
+        status.backlog_frames = _BATCH if run.behind else 0
         status.states = {k: dict(v) for k, v in tracker.states.items()}
         status.overall = tracker.overall
         if engine is not None:
@@ -349,6 +353,20 @@ class Monitor:
                 paths["reference"] = str(_write_tiff_atomic(self.out_dir / "reference.tif", ref))
         paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts))
         return paths
+
+
+#: Frames read per poll: bounds memory and keeps the display alive while a backlog is measured.
+_BATCH = 256
+
+
+@dataclass(slots=True)
+class _RunState:
+    done: dict
+    status: Status
+    tracker: ThresholdTracker
+    engine: Engine | None = None
+    last_row: dict | None = None
+    behind: bool = False
 
 
 def _write_exclude(path: Path, ranges) -> Path:
