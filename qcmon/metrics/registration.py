@@ -94,8 +94,10 @@ class ShiftEstimator:
     normalised cross-power spectrum ``C = G conj(F)`` (``G`` frame, ``F`` reference); the peak is refined to
     1/``upsample`` px by evaluating the inverse DFT on progressively finer grids around it with matrix
     multiplications, as in Guizar-Sicairos, Thurman & Fienup (2008), Opt. Lett. 33:156. Here the grid is
-    refined in stages of 4x (e.g. 4 → 1 → 1/4 → 1/16 → 1/20 px), each stage a 9 x 9 (or smaller) grid; all
-    stages use the same weighted spectrum, so the refined peak is the maximum of one continuous surface.
+    refined in stages of 5x over +-1 step of the previous stage (at 512 px, binned 2x: 4 → 0.8 → 0.16 →
+    0.05 original px), each stage an 11 x 11 (or smaller) grid; the DFT matrices of every stage are computed
+    once and only moved to the current peak by a phase ramp. All stages use the same weighted spectrum, so the
+    refined peak is the maximum of one continuous surface.
 
     *Low-pass band.* Only the lowest half of the (binned) frequencies along each axis is used for the peak
     search and the refinement: the coarse surface is an inverse FFT of a quarter of the spectrum and every DFT
@@ -292,7 +294,7 @@ class ShiftEstimator:
         -------
         ShiftResult
             ``(dy_px, dx_px, corr)`` in original pixels; all NaN (with a UserWarning) when the frame is constant
-            or has no finite pixel.
+            (its apodised variance below 1e-12 of its squared mean) or has no finite pixel.
         """
         arr = as_image(frame, "frame", shape=self.shape, min_size=16)
         gb = bin_image(arr, self.bin_factor)
