@@ -27,6 +27,7 @@ from qcmon.columns import NAMES
 from qcmon.errors import FrameError
 from qcmon.frames import Frame
 from qcmon.metrics.brightness import BrightnessTracker
+from qcmon.metrics._imageops import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_px
 from qcmon.metrics.noise import immerkaer_sigma
@@ -69,6 +70,9 @@ class EngineSettings:
         Binning before registration; None chooses from the frame size.
     motion_channel : int or None
         Measure motion on this channel only and apply it to the others of the same time point and plane.
+    max_shift_px : float or None
+        Largest displacement searched, px; None: a quarter of the smaller frame side (beyond that the apodised
+        frames share too little content for a trustworthy peak).
     bleach_window_s : float
         Trailing window of ``bleach_pct_per_min``.
     photon_transfer_every : int
@@ -87,6 +91,7 @@ class EngineSettings:
     upsample: int = 20
     bin_factor: int | None = None
     motion_channel: int | None = None
+    max_shift_px: float | None = None
     bleach_window_s: float = 60.0
     photon_transfer_every: int = 4
 
@@ -131,6 +136,10 @@ class _Stream:
     n_measured: int = 0
     last_z: tuple[float, float] = (NAN, NAN)
     last_focus: tuple[float, float] = (NAN, NAN)
+    raw_avg: np.ndarray | None = None
+    focus_bin: int = 1
+    reference_binned: np.ndarray | None = None
+    last_line_offset: float = NAN
     t0: float = NAN
     new_reference_requested: bool = False
 
@@ -269,8 +278,13 @@ class Engine:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
             st.reference = build_reference(stack, upsample=s.upsample)
-            st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor)
+            max_shift = s.max_shift_px or min(st.reference.shape) / 4
+            st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
+                                      max_shift_px=max_shift)
         st.running = RunningMean(s.running_mean_frames)
+        # focus correlation on binned images: shot noise averages out, cell-sized structure (≥ 8 px) stays
+        st.focus_bin = 2 if min(st.reference.shape) < 256 else 4
+        st.reference_binned = bin_image(st.reference, st.focus_bin)
         if s.zstack is not None:
             if s.zstack.shape[1:] != st.reference.shape:
                 raise FrameError(f"z-stack planes are {s.zstack.shape[1]}×{s.zstack.shape[2]} but frames are "
@@ -353,7 +367,9 @@ class Engine:
             st.running.push(img, dy, dx)
             if st.n_measured % s.z_every == 0 or st.n_measured < s.z_every:
                 mean_img = st.running.mean
-                st.last_focus = (focus_corr(mean_img, st.reference), focus_measure(mean_img))
+                if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
+                    st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin), st.reference_binned),
+                                     focus_measure(mean_img))
                 if st.zest is not None:
                     zr = st.zest.estimate(mean_img)
                     st.last_z = (zr.z_um, zr.corr)
@@ -381,7 +397,15 @@ class Engine:
                 photons = mean_f / gain
                 row["photons_per_px"] = photons
                 row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
-            row["line_offset_px"] = line_offset_px(img)
+            # Line offset is a property of the scanner, not of one frame: measure it on an exponential running
+            # average of the raw frames (no motion correction, which would move rows between the odd and even sets)
+            if st.raw_avg is None:
+                st.raw_avg = img.copy()
+            else:
+                st.raw_avg += (img - st.raw_avg) * np.float32(1.0 / s.running_mean_frames)
+            if st.n_measured % s.z_every == 0 or st.n_measured < s.z_every:
+                st.last_line_offset = line_offset_px(st.raw_avg)
+            row["line_offset_px"] = st.last_line_offset
         st.prev, st.prev_shift = img, ishift
         st.n_measured += 1
         return [row]
