@@ -148,6 +148,7 @@ class SessionSource:
         self._dead: dict[str, int] = {}  # files given up -> pages consumed
         self._frontier: tuple | None = None  # natural key of the latest file that was read from
         self._stall: dict[str, tuple[tuple[int, int], float]] = {}
+        self._sizes: dict[str, int] = {}  # size of each queued file when last read (a shrinking file is rewritten)
         self._count = 0  # pages met, in acquisition order (bad pages included: they hold a channel/plane slot)
         self._layout: tuple[int, int, bool] | None = None  # (channels, planes, plane_fastest)
         self._facts: AcquisitionFacts | None = None
@@ -196,16 +197,21 @@ class SessionSource:
                     break  # nothing new
                 self._finish()
                 continue
-            if stream.signature is not None and st.st_size < stream.signature[0]:
-                self._give_up(FrameError(f"file shrank from {stream.signature[0]} to {st.st_size} bytes "
+            seen = self._sizes.get(name, 0)
+            if st.st_size < seen:
+                self._give_up(FrameError(f"file shrank from {seen} to {st.st_size} bytes "
                                          "(rewritten?); not read further", path=path, page=stream.pages_done))
                 continue
+            self._sizes[name] = st.st_size
             stalled = self._stalled(name, signature)
             try:
                 items, stop = stream.read(min(limit - len(out), 1 << 30), give_up=final or stalled,
                                           on_open=self._opened)
             except OSError as exc:
-                items, stop = [], NotReadyError(f"cannot be opened: {exc}")
+                items, stop = [], NotReadyError(f"cannot be opened: {exc.strerror or exc}")
+                unopened = True
+            else:
+                unopened = False
             for page, data in items:
                 self._emit(stream, page, data, out)
             if stream.pages_done and (self._frontier is None or key > self._frontier):
@@ -215,6 +221,9 @@ class SessionSource:
                 continue
             if isinstance(stop, NotReadyError):
                 if final or (stalled and not is_last):
+                    if unopened:  # e.g. no read permission: not a question of completeness
+                        self._give_up(FrameError(str(stop), path=path))
+                        continue
                     what = "file is incomplete (truncated?)" if not final else "file is incomplete at the end"
                     self._give_up(FrameError(f"{what}: {stop}", path=path, page=stream.pages_done))
                     continue
@@ -304,6 +313,11 @@ class SessionSource:
                     try:
                         if entry.is_file():
                             names.append(name)
+                        elif entry.is_symlink():
+                            self._problem(FrameError("broken link (its target does not exist); not read",
+                                                     path=entry.path))
+                        elif entry.is_dir():
+                            self._problem(FrameError("a folder, not a frame file; not read", path=entry.path))
                     except OSError:
                         continue
         for name in sorted(names, key=natural_key):
@@ -342,6 +356,7 @@ class SessionSource:
         stream = self._streams.pop(name)
         into[name] = stream.pages_done + stream.skip
         self._stall.pop(name, None)
+        self._sizes.pop(name, None)
         self._frontier = key if self._frontier is None else max(self._frontier, key)
 
     def _problem(self, err: FrameError) -> None:

@@ -193,7 +193,7 @@ def page_problem(page: tifffile.TiffPage) -> str | None:
         return (f"pixel type {dtype} ({page.bitspersample} bits, sample format "
                 f"{getattr(page.sampleformat, 'name', page.sampleformat)}) is not supported; unsigned integers "
                 "of 8 to 32 bits expected")
-    if len(page.shape) != 2:
+    if len(page.shape) != 2 or 0 in page.shape:
         return f"page shape {page.shape} is not a 2-D image"
     return None
 
@@ -289,13 +289,21 @@ class TiffStream:
                     fh.seek(0)
                     try:
                         tif = tifffile.TiffFile(fh)
-                    except tifffile.TiffFileError as exc:
+                    except Exception as exc:  # noqa: BLE001 - corrupt tags raise TypeError etc., not only TiffFileError
                         raise NotReadyError(f"the file cannot be parsed yet: {exc}") from exc
                     if on_open is not None:
                         on_open(self, tif)
                 if info.fingerprint != key_fp:
                     tif.filehandle.seek(offset)
-                    frame = tifffile.TiffPage(tif, index=page)
+                    try:
+                        frame = tifffile.TiffPage(tif, index=page)
+                    except Exception as exc:  # noqa: BLE001 - tifffile raises several types on corrupt tags
+                        if not give_up:
+                            raise NotReadyError(f"page {page} cannot be parsed yet: {exc}") from exc
+                        items.append((page, FrameError(f"the page directory cannot be parsed (corrupt file): {exc}",
+                                                       path=self.path, page=page)))
+                        self._advance(info)
+                        continue
                     problem = page_problem(frame)
                     if problem is not None:
                         items.append((page, FrameError(problem, path=self.path, page=page)))
