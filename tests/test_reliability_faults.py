@@ -24,7 +24,7 @@ from qcmon.record import read_traces
 from qcmon.simulate import scenario_config, write_session
 from reliability_data import good_pages, qcmon_cmd, run_qcmon, snapshot
 
-N_FRAMES = 150
+N_FRAMES = 300  # 10 s at 30 Hz
 FLOAT_COLUMNS = ("time_s", "dx_px", "dy_px", "displacement_px", "reg_corr", "focus_corr", "focus_measure",
                  "mean_f", "baseline_f", "saturated_frac", "noise_sigma", "snr", "line_offset_px")
 
@@ -48,31 +48,31 @@ def _wait(cond, timeout: float, step: float = 0.1) -> bool:
 
 def test_kill_9_mid_watch_then_restart_measures_every_frame_once_as_summarize_does(tmp_path):
     session, out = tmp_path / "sim", tmp_path / "record"
-    sim = subprocess.Popen(qcmon_cmd("simulate", session, "--scenario", "clean", "--frames", N_FRAMES,
-                                     "--size", 64, 64, "--layout", "multipage", "--live"),
-                           stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
+    (session / "frames").mkdir(parents=True)  # the watch is started first, on the empty folder (armed acquisition)
+    watch = subprocess.Popen(qcmon_cmd("watch", session / "frames", "--plain", "--until-idle", 30, "--out", out),
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
+    sim = None
     try:
-        assert _wait(lambda: (session / "frames").is_dir(), 30)
-        watch = subprocess.Popen(qcmon_cmd("watch", session / "frames", "--plain", "--until-idle", 20, "--out", out),
-                                 stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
-        try:
-            # the engine holds back its first 30 frames for the reference: wait for some rows after them
-            assert _wait(lambda: _rows(out) >= 40, 60), watch.stderr.read1().decode() if watch.poll() else ""
-            assert sim.poll() is None, "the simulator finished before the kill: make the session longer"
-            os.kill(watch.pid, signal.SIGKILL)
-            assert watch.wait(10) == -signal.SIGKILL
-        finally:
-            if watch.poll() is None:
-                watch.kill()
-                watch.wait()
-            watch.stderr.close()
+        assert "watching" in watch.stdout.readline().decode()  # printed once the monitor is set up
+        sim = subprocess.Popen(qcmon_cmd("simulate", session, "--scenario", "clean", "--frames", N_FRAMES,
+                                         "--size", 64, 64, "--layout", "multipage", "--live"),
+                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
+        # the engine holds back its first 30 frames for the reference: wait for some rows after them
+        assert _wait(lambda: _rows(out) >= 40, 60)
+        assert sim.poll() is None, "the simulator finished before the kill: make the session longer"
+        os.kill(watch.pid, signal.SIGKILL)
+        assert watch.wait(10) == -signal.SIGKILL
         killed_rows = _rows(out)
         assert sim.wait(60) == 0, sim.stderr.read().decode()
     finally:
-        if sim.poll() is None:
-            sim.kill()
-            sim.wait()
-        sim.stderr.close()
+        for proc in (watch, sim):
+            if proc is not None:
+                if proc.poll() is None:
+                    proc.kill()
+                    proc.wait()
+                for stream in (proc.stdout, proc.stderr):
+                    if stream is not None:
+                        stream.close()
     assert killed_rows < N_FRAMES
 
     res = run_qcmon("watch", session / "frames", "--plain", "--until-idle", 1, "--out", out, timeout=90)
