@@ -99,6 +99,12 @@ def build_parser() -> argparse.ArgumentParser:
         sim_cli.add_arguments(p)
         p.set_defaults(func=sim_cli.run)
 
+    from qcmon.audit import cli as audit_cli
+
+    p = sub.add_parser("audit", help="measure many finished sessions; a table, verdicts and chronic trends")
+    audit_cli.add_arguments(p)
+    p.set_defaults(func=audit_cli.run)
+
     p = sub.add_parser("demo", help="watch a session the simulator writes live (nothing else needed)")
     p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
     p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
