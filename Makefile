@@ -16,7 +16,7 @@ setup: $(STAMP)
 
 ## Run the live dashboard on a session the simulator writes in real time.
 demo: $(STAMP)
-	$(BIN)/qcmon demo
+	$(BIN)/qcmon demo $(ARGS)
 
 ## Run the whole test suite.
 test: $(STAMP)

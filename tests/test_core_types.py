@@ -33,3 +33,13 @@ def test_traces_columns_required_by_the_issue_are_present():
     for name in ("frame", "time_s", "dx_px", "dy_px", "displacement_um", "z_um", "focus_corr", "mean_f",
                  "saturated_frac", "snr", "channel", "plane"):
         assert name in NAMES
+
+
+def test_readme_documents_every_trace_column_and_the_two_commands():
+    """The README is the user's manual: every column of traces.csv must be in it, and the quick start."""
+    from pathlib import Path
+
+    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    missing = [name for name in NAMES if f"`{name}`" not in readme]
+    assert missing == []
+    assert "make demo" in readme and "make test" in readme
