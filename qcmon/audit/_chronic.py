@@ -1,8 +1,11 @@
 """Chronic imaging: the sessions of one field of view over days, the field's shift between them and trends.
 
-Reference images are registered by phase correlation (Kuglin & Hines 1975) with matrix-multiply DFT upsampling
-(Guizar-Sicairos, Thurman & Fienup 2008, Optics Letters 33:156), as implemented by
-:func:`skimage.registration.phase_cross_correlation`; trends are least-squares lines
+Reference images are registered by cross-correlation with matrix-multiply DFT upsampling (Guizar-Sicairos,
+Thurman & Fienup 2008, Optics Letters 33:156) as implemented by :func:`skimage.registration.phase_cross_correlation`,
+after subtracting each image's mean and tapering it with a Hann window, so that the discontinuity where the
+discrete Fourier transform wraps the image edges does not pull the peak toward zero shift (apodization; common
+practice, no source). Without the taper, phase normalisation of these smooth, noisy mean images was biased by
+up to 1 px on simulated fields; trends are least-squares lines
 (:func:`scipy.stats.linregress`).
 """
 
@@ -42,6 +45,7 @@ def register_references(reference: np.ndarray, moving: np.ndarray, *, upsample: 
     dy_px, dx_px : float
         Content shift of ``moving`` relative to ``reference`` (px; + toward increasing row / column).
         :func:`skimage.registration.phase_cross_correlation` returns the opposite sign (the shift that registers).
+        Shifts beyond about a quarter of the image are not reliable (the taper leaves little common content).
     corr : float
         Pearson correlation of the two images over their overlap after alignment (1 = identical up to gain and
         offset). NaN for images of different sizes (then the shift is NaN too).
@@ -54,7 +58,21 @@ def register_references(reference: np.ndarray, moving: np.ndarray, *, upsample: 
         raise ValueError(f"upsample must be a positive integer, got {upsample!r}")
     if ref.shape != mov.shape:
         return math.nan, math.nan, math.nan
-    shift, _err, _phase = phase_cross_correlation(ref, mov, upsample_factor=upsample)
+    from skimage.filters import window
+
+    taper = window("hann", ref.shape)
+    tref = (ref - ref.mean()) * taper
+
+    def estimate(image):
+        s, _err, _phase = phase_cross_correlation(tref, (image - image.mean()) * taper,
+                                                  upsample_factor=upsample, normalization=None)
+        return s
+
+    # the fixed taper pulls a large shift toward zero; a second pass on the moved-back image measures what is
+    # left, where that pull is negligible
+    shift = estimate(mov)
+    if np.any(np.abs(shift) > 0):
+        shift = shift + estimate(ndimage.shift(mov, shift, order=3, mode="nearest"))
     aligned = ndimage.shift(mov, shift, order=1, mode="nearest")
     m = int(math.ceil(np.max(np.abs(shift)))) + 1
     if 2 * m >= min(ref.shape) - 4:

@@ -170,6 +170,9 @@ def measure_session(task: dict) -> dict:
         outcome["error"] = _error_text(err)
         outcome["traceback"] = traceback.format_exc(limit=6)
     outcome["seconds"] = time.perf_counter() - t0
+    # paths in messages relative to the archive, like every output (and valid when the archive moves)
+    outcome["error"] = outcome["error"].replace(str(task["path"]), task["rel"])
+    outcome["problems"] = [str(p).replace(str(task["path"]), task["rel"]) for p in outcome["problems"]]
     stored = {k: v for k, v in outcome.items() if k != "summary"}
     try:
         record.parent.mkdir(parents=True, exist_ok=True)

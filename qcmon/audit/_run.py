@@ -136,7 +136,7 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
     if opts.cluster:
         from distributed import Client, as_completed
 
-        with Client(opts.cluster, set_as_default=False) as client:
+        with Client(opts.cluster) as client:
             futures = client.map(measure_session, todo, pure=False, key=[f"qcmon-audit-{i}-{t['rel']}"
                                                                           for i, t in enumerate(todo)])
             where = {f.key: t for f, t in zip(futures, todo)}
@@ -190,8 +190,8 @@ def _read_reference(record: Path) -> np.ndarray | None:
 
 
 def is_flagged(row: dict) -> bool:
-    """A session that failed its profile or could not be measured."""
-    return row.get("status") == "error" or row.get("verdict") in ("fail", "error")
+    """A session that failed its profile, or could not be measured in full (an error, or frames not read)."""
+    return row.get("status") == "error" or row.get("verdict") in ("fail", "error") or bool(row.get("error"))
 
 
 def run_audit(opts: AuditOptions, *, progress_stream: TextIO | None = None, progress: bool = True) -> dict:

@@ -92,6 +92,10 @@ def session_row(outcome: Mapping, *, out_dir: Path, date: datetime | None, date_
     if traces is not None:
         row["brightness_above_dark_dn"] = _median(traces.get("baseline_f", []))
         row["photons_per_px_median"] = _median(traces.get("photons_per_px", []))
+    problems = outcome.get("problems") or []
+    if problems and not row["error"]:  # frames that could not be read (e.g. a truncated file)
+        more = f" (and {len(problems) - 2} more)" if len(problems) > 2 else ""
+        row["error"] = "; ".join(" ".join(str(p).split()) for p in problems[:2]) + more
     report = Path(outcome["record"]) / "report.html"
     if report.is_file():
         row["report"] = os.path.relpath(report, out_dir).replace(os.sep, "/")

@@ -102,14 +102,3 @@ def run(args: argparse.Namespace) -> int:
     if result["flagged"] and not getattr(args, "no_fail_exit", False):
         return EXIT_FLAGGED
     return EXIT_OK
-
-
-def main(argv=None) -> int:
-    """Stand-alone entry (``python -m qcmon.audit.cli``) until the subcommand is wired."""
-    p = argparse.ArgumentParser(prog="qcmon audit", description="Audit finished sessions in batch.")
-    add_arguments(p)
-    return run(p.parse_args(argv))
-
-
-if __name__ == "__main__":
-    sys.exit(main())
