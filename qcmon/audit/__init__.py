@@ -30,7 +30,7 @@ Chronic imaging
 ---------------
 Sessions of one field are grouped by ``--group-by REGEX`` on the relative path, or else by matching reference
 images: a session joins the field whose latest session's reference correlates with its own, after
-phase-correlation registration, at ``--same-field-corr`` (default 0.5) or more. A session's date is the last
+phase-correlation registration, at ``--same-field-corr`` (default 0.8) or more. A session's date is the last
 ISO date in its relative path (``2026-11-03``, optionally with a time ``T14-05``), else the earliest modification
 time of its frame files (UTC); ``date_origin`` says which. For each field, the shift of the reference image
 against the previous session (µm; content shift, + toward increasing column/row) and from the first session, and

@@ -15,7 +15,7 @@ from typing import TextIO
 
 import numpy as np
 
-from qcmon.audit._chronic import chronic_table, field_keys, match_fields
+from qcmon.audit._chronic import SAME_FIELD_CORR, chronic_table, field_keys, match_fields
 from qcmon.audit._discover import SessionEntry, discover_sessions, session_date
 from qcmon.audit._measure import MONITOR_KEYS, measure_session, profile_fingerprint, reusable
 from qcmon.audit._write import AUDIT_COLUMNS, CHRONIC_COLUMNS, session_row, sparkline, write_csv, write_html
@@ -67,7 +67,7 @@ class AuditOptions:
     cluster: str | None = None
     only_flagged: bool = False
     group_by: str | None = None
-    same_field_corr: float = 0.5
+    same_field_corr: float = SAME_FIELD_CORR
     shift_limit_um: float = 10.0
     fade_limit_pct_per_week: float = 10.0
     force: bool = False

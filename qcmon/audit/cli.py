@@ -6,6 +6,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from qcmon.audit._chronic import SAME_FIELD_CORR
 from qcmon.cli import _positive
 from qcmon.errors import QcmonError
 
@@ -44,7 +45,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                    help="regular expression on the relative path naming the field of view (named group 'field', "
                         "else group 1, else the match), e.g. '^(mouse\\d+/fov\\d+)/'; default: match the sessions' "
                         "reference images")
-    g.add_argument("--same-field-corr", type=_fraction, default=0.5, metavar="R",
+    g.add_argument("--same-field-corr", type=_fraction, default=SAME_FIELD_CORR, metavar="R",
                    help="correlation of registered reference images from which two sessions show the same field "
                         "(default: %(default)s)")
     g.add_argument("--shift-limit", type=_positive(float), default=10.0, metavar="UM",
