@@ -59,7 +59,7 @@ def _options(args, *, follow: bool):
         bit_depth=args.bit_depth, dark_level=args.dark_level, zstack=args.zstack, z_step_um=args.z_step,
         motion_channel=args.motion_channel, channels=args.channels, planes=args.planes,
         raw_dtype=args.raw_dtype, raw_shape=tuple(args.raw_shape) if args.raw_shape else None,
-        resume=not getattr(args, "restart", False))
+        resume=not getattr(args, "restart", False), workers=getattr(args, "workers", 1))
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -72,6 +72,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("path", type=Path, metavar="PATH")
     _add_acquisition(p)
     p.add_argument("--restart", action="store_true", help="ignore an earlier record in --out and start afresh")
+    p.add_argument("--workers", type=_positive(int), default=1, metavar="N",
+                   help="processes measuring chunks of a long session side by side, the reference carried "
+                        "across (default: %(default)s)")
     p.set_defaults(func=cmd_summarize)
 
     p = sub.add_parser("watch", help="follow a session folder while the microscope writes it")

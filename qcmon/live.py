@@ -32,6 +32,7 @@ from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record import SessionRecord, write_atomic
 from qcmon.report import write_report
 from qcmon.sources.session import SessionSource
+from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
 from qcmon.summary import exclude_ranges, summarize_traces
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
@@ -62,6 +63,7 @@ class MonitorOptions:
     resume: bool = True
     status_every_s: float = 5.0
     forecast_loss_pct: float = 20.0
+    workers: int = 1
     engine_overrides: dict = field(default_factory=dict)
 
 
@@ -151,7 +153,7 @@ class Monitor:
                     self._update_status(run, source, listeners)
                     last_status = now
                 record.maybe_flush()
-                run.behind = len(frames) == _BATCH
+                run.behind = len(frames) == _BATCH and not (run.split is not None and run.split.reading_done)
                 if run.behind:
                     continue  # more is waiting on disk: no pause, and no end yet
                 if not o.follow or self._stop.is_set():
@@ -168,14 +170,18 @@ class Monitor:
                     break
             if run.engine is not None:
                 self._deliver(run, run.engine.flush(), record, listeners)
+            if run.split is not None and run.split.launched and not self._stop.is_set():
+                self._collect_split(run, source, record, listeners)
             self._handle_commands(run, record, listeners)
             for ev in run.tracker.close(run.last_row):
                 self._emit(ev, record, listeners)
             run.status.paused_reason = "session ended"
             self._update_status(run, source, listeners)
             record.flush()
-            return self._finish(record, source, run.engine)
+            return self._finish(record, source, run.engine, run.split)
         finally:
+            if run.split is not None:
+                run.split.close()
             if watcher is not None:
                 watcher.stop()
             record.close()
@@ -186,16 +192,50 @@ class Monitor:
             return
         if run.engine is None:
             run.engine = Engine(self._settings(source.facts, frames[0]))
+            o = self.options
+            if not o.follow and o.workers > 1:  # a finished session: later chunks go to other processes
+                n_c, n_z = (source.position["layout"] or (1, 1))[:2]
+                run.split = SplitRun(
+                    workers=o.workers, path=str(self.path), frames_per_point=int(n_c) * int(n_z),
+                    window_s=run.engine.settings.bleach_window_s,
+                    source_kwargs=dict(channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
+                                       raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
+                                       pixel_size_um=o.pixel_size_um))
+        sp = run.split
         rows: list[dict] = []
         for fr in frames:
+            if sp is not None and sp.stop is not None and fr.index >= sp.stop:
+                sp.reading_done = True  # the rest is measured by the workers
+                break
             try:
-                rows.extend(run.engine.process(fr))
+                new = run.engine.process(fr)
             except FrameError as err:
                 self._problem_to(record, listeners)(err)
+                continue
+            rows.extend(new)
+            if sp is not None and not sp.decided:
+                sp.note_rows(new)
+                if sp.ready():
+                    sp.launch(run.engine, source.position)
         self._deliver(run, rows, record, listeners)
+
+    def _collect_split(self, run: "_RunState", source: SessionSource, record, listeners) -> None:
+        """The workers' rows, chunk after chunk, through the same record, thresholds and listeners."""
+        report = self._problem_to(record, listeners)
+        for res in run.split.results():
+            for msg in res["problems"]:
+                if msg not in self.problems:  # the warm-up overlaps the previous chunk: report once
+                    report(QcmonError(msg))
+            self._deliver(run, res["rows"], record, listeners)
+            self._update_status(run, source, listeners)
+            record.maybe_flush()
+            if self._stop.is_set():
+                break
 
     def _deliver(self, run: "_RunState", rows: list[dict], record, listeners) -> None:
         """Record rows not recorded before (resume), raise their events and pass them on."""
+        if run.split is not None and rows:
+            rows = run.split.continuity.apply(rows)
         if run.done:
             rows = [r for r in rows if r["frame"] > run.done.get((r["channel"], r["plane"]), -1)]
             if rows and run.status.paused_reason.startswith("resuming"):
@@ -280,8 +320,9 @@ class Monitor:
         if engine is not None:
             status.streams = engine.streams
             loss = self.options.forecast_loss_pct
+            forecast = run.split.continuity.forecast_min if run.split is not None else engine.forecast_min
             for c, p in engine.streams:
-                m = engine.forecast_min(c, p, loss)
+                m = forecast(c, p, loss)
                 key = "baseline_f" if (c, p) == engine.streams[0] else f"baseline_f[{c},{p}]"
                 if math.isfinite(m):
                     status.forecasts[key] = f"brightness −{loss:g} % in ~{m:.0f} min at this rate"
@@ -320,12 +361,17 @@ class Monitor:
                 keep.append(p)
         self._alarm_procs = keep
 
-    def _finish(self, record: SessionRecord, source: SessionSource, engine: Engine | None) -> dict:
+    def _finish(self, record: SessionRecord, source: SessionSource, engine: Engine | None,
+                split: SplitRun | None = None) -> dict:
         traces = record.read_traces()
         events = record.read_events()
         extra = {}
         if engine is not None:
             info = engine.stream_info()
+            if split is not None and split.launched:  # the main engine saw the first chunk only
+                for key, more in split.continuity.stream_info().items():
+                    info.setdefault(key, {}).update(more)
+                    info[key]["photon_transfer_frames"] = "first chunk (split over processes)"
             first = info[engine.streams[0]] if engine.streams else {}
             extra = {
                 "photon_transfer.gain": first.get("gain_dn_per_photon", math.nan),
@@ -367,6 +413,7 @@ class _RunState:
     engine: Engine | None = None
     last_row: dict | None = None
     behind: bool = False
+    split: "SplitRun | None" = None
 
 
 def _write_exclude(path: Path, ranges) -> Path:

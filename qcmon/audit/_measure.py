@@ -151,7 +151,8 @@ def measure_session(task: dict) -> dict:
         if kwargs.get("raw_shape") is not None:
             kwargs["raw_shape"] = tuple(kwargs["raw_shape"])
         opts = MonitorOptions(path=Path(task["path"]), out_dir=record, profile=task["profile"], follow=False,
-                              resume=False, zstack=Path(task["zstack"]) if task.get("zstack") else None, **kwargs)
+                              resume=False, zstack=Path(task["zstack"]) if task.get("zstack") else None,
+                              workers=int(task.get("split_workers", 1)), **kwargs)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             monitor = Monitor(opts)

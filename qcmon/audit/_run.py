@@ -38,7 +38,8 @@ class AuditOptions:
     profile : str
         Threshold profile name or TOML file.
     workers : int
-        Local processes measuring sessions in parallel (1: in this process).
+        Local processes: sessions measured in parallel, or, with fewer sessions to measure than processes,
+        one after another with each long session split into chunks of time points (:mod:`qcmon.split`).
     cluster : str or None
         Address of a dask.distributed scheduler; the sessions are measured there instead.
     only_flagged : bool
@@ -148,9 +149,11 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
                     yield {"rel": t["rel"], "status": "error", "error": f"cluster: {err}", "record": t["record"],
                            "summary": None, "frames": 0, "bytes": 0}
         return
-    if opts.workers <= 1 or len(todo) == 1:
+    if opts.workers <= 1 or len(todo) < opts.workers:
+        # fewer sessions than processes: one session after another, each long one split into chunks of time
+        # points over the processes (qcmon.split; short sessions stay in one process)
         for t in todo:
-            yield measure_session(t)
+            yield measure_session({**t, "split_workers": opts.workers})
         return
     ctx = multiprocessing.get_context("spawn")
     with cf.ProcessPoolExecutor(max_workers=min(opts.workers, len(todo)), mp_context=ctx) as pool:

@@ -127,6 +127,7 @@ class RawStream:
         self.option_shape = shape
         self.pages_done = 0
         self.skip = 0
+        self.skip_frames = 0  # frames to pass over without reading them
         self.signature: tuple[int, int] | None = None
         self.config: dict | None = None
         self._from_sidecar: set[str] = set()
@@ -178,6 +179,9 @@ class RawStream:
             available = max(0, (st.st_size - c["header_bytes"]) // frame_bytes)
             self.pages_done += self.skip
             self.skip = 0
+            passed = min(self.skip_frames, max(available - self.pages_done, 0))
+            self.pages_done += passed
+            self.skip_frames -= passed
             count = min(available - self.pages_done, limit)
             fh.seek(c["header_bytes"] + self.pages_done * frame_bytes)
             for _ in range(max(count, 0)):

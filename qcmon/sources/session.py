@@ -98,6 +98,10 @@ class SessionSource:
     grace_s : float
         Seconds an incomplete file may stay unchanged while a later file exists (or a complete page may fail to
         decode) before it is reported and passed over (s).
+    skip_frames : int
+        Frames (pages that are not thumbnails, bad pages included) to pass over without decoding them, counted
+        from ``start`` (or from the session's first frame); they still advance the numbering of time points,
+        channels and planes. Lets a worker begin reading in the middle of a finished session.
 
     Notes
     -----
@@ -109,7 +113,7 @@ class SessionSource:
     def __init__(self, path, *, channels: int | None = None, planes: int | None = None, raw_dtype=None,
                  raw_shape=None, frame_rate_hz: float | None = None, pixel_size_um: float | None = None,
                  start: dict | None = None, on_problem: Callable[[FrameError], object] | None = None,
-                 override: bool = False, grace_s: float = 30.0):
+                 override: bool = False, grace_s: float = 30.0, skip_frames: int = 0):
         path = os.fspath(path)
         if not os.path.exists(path):
             raise ValueError(f"path: {path} does not exist")
@@ -156,6 +160,9 @@ class SessionSource:
         self._frame_kind: tuple[tuple[int, ...], str] | None = None
         self._t0: float | None = None
         self._resume: dict[str, int] = {}
+        if isinstance(skip_frames, bool) or not isinstance(skip_frames, int) or skip_frames < 0:
+            raise ValueError(f"skip_frames: must be a non-negative integer, got {skip_frames!r}")
+        self._skip_left = skip_frames
         if start is not None:
             self._restore(start)
 
@@ -204,6 +211,7 @@ class SessionSource:
                 continue
             self._sizes[name] = st.st_size
             stalled = self._stalled(name, signature)
+            stream.skip_frames = self._skip_left
             try:
                 items, stop = stream.read(min(limit - len(out), 1 << 30), give_up=final or stalled,
                                           on_open=self._opened)
@@ -212,6 +220,8 @@ class SessionSource:
                 unopened = True
             else:
                 unopened = False
+            self._count += self._skip_left - stream.skip_frames  # passed over: they hold their slots
+            self._skip_left, stream.skip_frames = stream.skip_frames, 0
             for page, data in items:
                 self._emit(stream, page, data, out)
             if stream.pages_done and (self._frontier is None or key > self._frontier):

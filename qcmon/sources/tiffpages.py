@@ -213,6 +213,7 @@ class TiffStream:
         self.path = path
         self.pages_done = 0  # pages consumed, including skipped ones
         self.skip = 0  # consumed pages still to be passed over (after resuming)
+        self.skip_frames = 0  # frames (pages that are not thumbnails) to pass over without decoding them
         self.pointer: int | None = None  # file position of the offset of the next IFD
         self.seen: set[int] = set()  # IFD offsets already read (a loop in the chain is corruption)
         self.signature: tuple[int, int] | None = None  # (size, mtime_ns) when last read to the end
@@ -283,6 +284,10 @@ class TiffStream:
                     continue
                 if info.reduced:
                     items.append((page, None))
+                    self._advance(info)
+                    continue
+                if self.skip_frames:
+                    self.skip_frames -= 1
                     self._advance(info)
                     continue
                 if tif is None:

@@ -1,0 +1,265 @@
+"""Measuring one finished session on several processes: chunks of time points, the reference carried across.
+
+The monitor measures the first chunk itself. As soon as its engine has built the reference of every
+(channel, plane), the engine is copied (pickled) to worker processes, one per later chunk. Each worker opens the
+session on its own, passes over the frames before its chunk without decoding them
+(:class:`~qcmon.sources.SessionSource` ``skip_frames``), measures a warm-up of ``warm_up`` time points whose rows it
+drops, then its chunk. Rows come back in acquisition order and go through the same record, thresholds and
+summary as a single-process run.
+
+What is the same as in one process, and what is not:
+
+- Displacement, registration quality, photometry, saturation, noise, SNR and photons per pixel depend on the
+  frame and on the reference only: identical.
+- Focus correlation and z come from the running mean of the last ``running_mean_frames`` frames, recomputed every
+  ``z_every`` frames: the warm-up fills the running mean and keeps the same frames as recomputation points, so they
+  agree to float32 rounding of the running sum.
+- Baseline, brightness % and bleach slope have long trailing windows: they are recomputed here, in order, over all
+  rows (:class:`RowContinuity`), so they are identical.
+- The line offset is measured on an exponential running average of the raw frames: after the warm-up the earlier
+  history weighs ``(1 - 1/running_mean_frames) ** warm_up`` (4e-5 for 30 and 300), so the offset differs by a
+  negligible amount from a one-process run.
+- The photon-transfer fit of ``summary.json`` (``photon_transfer.*``) uses the frame pairs of the first chunk only.
+"""
+
+from __future__ import annotations
+
+import math
+import multiprocessing
+import pickle
+import time
+import warnings
+from concurrent.futures import Future, ProcessPoolExecutor
+from dataclasses import dataclass, field
+
+from qcmon.errors import FrameError
+from qcmon.metrics.brightness import BrightnessTracker
+
+__all__ = ["WARM_UP", "MIN_CHUNK", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
+           "RowContinuity", "SplitRun"]
+
+#: Time points measured before a chunk, rows dropped (fills the running means; see the module notes).
+WARM_UP = 300
+#: Fewest time points per process for a split to be worth starting a process (one to a few seconds of work).
+MIN_CHUNK = 1500
+
+
+def plan_chunks(n_points: int, workers: int, *, warm_up: int = WARM_UP, min_chunk: int = MIN_CHUNK
+                ) -> list[tuple[int, int]]:
+    """Chunks ``[(0, b1), (b1, b2), ..., (bk, n_points)]`` of time points, one per process.
+
+    Every chunk but the first also measures ``warm_up`` points before it, so the first chunk is longer by that
+    much and every process has about the same work. Fewer chunks than ``workers`` when the session is short:
+    a chunk holds at least ``min_chunk`` points; one chunk means no split.
+    """
+    if n_points < 0 or workers < 1:
+        raise ValueError(f"n_points must be >= 0 and workers >= 1, got {n_points!r}, {workers!r}")
+    k = max(1, min(workers, n_points // max(min_chunk, 1)))
+    if k == 1:
+        return [(0, n_points)]
+    first = int(math.ceil((n_points + (k - 1) * warm_up) / k))
+    rest = (n_points - first) / (k - 1)
+    bounds = [0, first] + [first + round(rest * i) for i in range(1, k)]
+    bounds[-1] = n_points
+    return list(zip(bounds[:-1], bounds[1:]))
+
+
+def warm_start(first: int, *, measured: int, z_every: int, warm_up: int = WARM_UP) -> int:
+    """Time point from which a worker feeds frames to its engine copy for a chunk beginning at ``first``.
+
+    The copy has measured ``measured`` frames of each stream (the reference frames); the engine recomputes focus
+    and z when its count of measured frames is a multiple of ``z_every``. Starting at ``s`` with
+    ``s ≡ measured (mod z_every)`` keeps the recomputation at the same time points as in one process.
+    """
+    s = first - warm_up
+    s -= (s - measured) % z_every
+    if s < measured:
+        raise ValueError(f"chunk at {first} is too close to the start for a warm-up of {warm_up} points")
+    return s
+
+
+def count_frames(path: str, source_kwargs: dict) -> int:
+    """Frames (pages that are not thumbnails, bad ones included) of a finished session, without decoding."""
+    from qcmon.sources import SessionSource
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        src = SessionSource(path, **source_kwargs, skip_frames=1 << 62)
+        src.poll(final=True)
+    return int(src.position["pages"])
+
+
+@dataclass
+class ChunkJob:
+    """What a worker needs to measure one chunk (picklable)."""
+
+    path: str
+    source_kwargs: dict
+    token: dict                # position token of the monitor's source: layout, frame type and time origin
+    frames_per_point: int      # channels × planes
+    warm_from: int             # first time point fed to the engine
+    first: int                 # first time point whose rows are kept
+    stop: int | None           # first time point not measured (None: to the end of the session)
+    engine: bytes              # the monitor's engine, pickled once the reference of every stream was built
+
+
+def measure_chunk(job: ChunkJob) -> dict:
+    """Measure one chunk in this process. Returns ``rows``, ``problems`` (messages) and ``seconds``."""
+    from threadpoolctl import threadpool_limits
+
+    from qcmon.sources import SessionSource
+
+    t0 = time.perf_counter()
+    problems: list[str] = []
+    engine = pickle.loads(job.engine)
+    token = {**job.token, "pages": 0, "files": {}, "given_up": []}
+    src = SessionSource(job.path, **job.source_kwargs, start=token,
+                        skip_frames=job.warm_from * job.frames_per_point,
+                        on_problem=lambda err: problems.append(str(err)))
+    rows: list[dict] = []
+    with threadpool_limits(limits=1, user_api="blas"):
+        done = False
+        while not done:
+            frames = src.poll(final=True, max_frames=64)
+            if not frames:
+                break
+            for fr in frames:
+                if job.stop is not None and fr.index >= job.stop:
+                    done = True
+                    break
+                try:
+                    rows.extend(engine.process(fr))
+                except FrameError as err:
+                    problems.append(str(err))
+        if job.stop is None:
+            rows.extend(engine.flush())
+    keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
+    return {"rows": keep, "problems": problems, "seconds": time.perf_counter() - t0}
+
+
+class RowContinuity:
+    """Baseline, brightness % and bleach slope recomputed in order over rows from several processes.
+
+    The brightness tracker is a function of the sequence ``(time_s, mean_f)`` of its stream alone, so feeding it
+    every row in acquisition order gives exactly what one engine would have given.
+    """
+
+    def __init__(self, window_s: float):
+        self.window_s = float(window_s)
+        self._trackers: dict[tuple[int, int], BrightnessTracker] = {}
+        self._rows: dict[tuple[int, int], int] = {}
+
+    def apply(self, rows: list[dict]) -> list[dict]:
+        for r in rows:
+            key = (int(r["channel"]), int(r["plane"]))
+            tr = self._trackers.get(key)
+            if tr is None:
+                tr = self._trackers[key] = BrightnessTracker(window_s=self.window_s)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)
+                b = tr.update(float(r["time_s"]), float(r["mean_f"]))
+            r.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
+                     bleach_pct_per_min=b.bleach_pct_per_min)
+            self._rows[key] = self._rows.get(key, 0) + 1
+        return rows
+
+    def stream_info(self) -> dict[tuple[int, int], dict]:
+        """Per stream, the facts of :meth:`qcmon.engine.Engine.stream_info` that depend on every row: frames
+        measured and the whole-session bleach fit."""
+        out = {}
+        for key, tr in self._trackers.items():
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)
+                fit = tr.session_fit()
+            out[key] = {"frames": self._rows.get(key, 0), "bleach_slope_pct_per_min": fit.slope_pct_per_min,
+                        "bleach_tau_min": fit.tau_min, "bleach_r2": fit.r2}
+        return out
+
+    def forecast_min(self, channel: int, plane: int, loss_pct: float) -> float:
+        """Minutes until the baseline has fallen by ``loss_pct`` at the current rate (NaN when unknown)."""
+        tr = self._trackers.get((channel, plane))
+        if tr is None:
+            return math.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # no bleach rate yet: NaN
+            return tr.forecast_min(loss_pct)
+
+
+@dataclass
+class SplitRun:
+    """The monitor's side of a split: when to copy the engine, which chunk it measures itself, the workers."""
+
+    workers: int
+    path: str
+    source_kwargs: dict
+    frames_per_point: int
+    warm_up: int | None = None                       # default: WARM_UP
+    min_chunk: int | None = None                     # default: MIN_CHUNK
+    started: set = field(default_factory=set)       # streams whose reference is built
+    stop: int | None = None                          # first time point the monitor does not measure itself
+    reading_done: bool = False
+    window_s: float = 60.0                           # trailing window of the bleach slope (engine settings)
+    _pool: ProcessPoolExecutor | None = None
+    _futures: list[Future] = field(default_factory=list)
+    _jobs: list[ChunkJob] = field(default_factory=list)
+    decided: bool = False
+
+    @property
+    def launched(self) -> bool:
+        return bool(self._jobs)
+
+    def __post_init__(self) -> None:
+        self.warm_up = WARM_UP if self.warm_up is None else self.warm_up
+        self.min_chunk = MIN_CHUNK if self.min_chunk is None else self.min_chunk
+        self.continuity = RowContinuity(self.window_s)
+
+    def note_rows(self, rows: list[dict]) -> None:
+        for r in rows:
+            self.started.add((int(r["channel"]), int(r["plane"])))
+
+    def ready(self) -> bool:
+        """The engine has built every stream's reference: time to decide on the split."""
+        return not self.decided and len(self.started) >= self.frames_per_point
+
+    def launch(self, engine, token: dict) -> int:
+        """Plan the chunks and start the workers; returns how many processes measure (1: no split)."""
+        self.decided = True
+        s = engine.settings
+        n_points = count_frames(self.path, self.source_kwargs) // self.frames_per_point
+        chunks = plan_chunks(n_points, self.workers, warm_up=self.warm_up, min_chunk=self.min_chunk)
+        if len(chunks) < 2 or chunks[1][0] - self.warm_up < 2 * s.reference_frames:
+            return 1
+        blob = pickle.dumps(engine, protocol=pickle.HIGHEST_PROTOCOL)
+        jobs = []
+        for i, (a, b) in enumerate(chunks[1:], start=1):
+            jobs.append(ChunkJob(path=self.path, source_kwargs=self.source_kwargs, token=token,
+                                 frames_per_point=self.frames_per_point,
+                                 warm_from=warm_start(a, measured=s.reference_frames, z_every=s.z_every,
+                                                      warm_up=self.warm_up),
+                                 first=a, stop=None if i == len(chunks) - 1 else b, engine=blob))
+        self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=multiprocessing.get_context("spawn"))
+        self._jobs = jobs
+        self._futures = [self._pool.submit(measure_chunk, j) for j in jobs]
+        self.stop = chunks[0][1]
+        return len(chunks)
+
+    def results(self):
+        """Each chunk's result, in chunk order (blocks). A chunk whose worker failed (e.g. the process was
+        killed) is measured again in this process, with a problem message saying so: no row is lost."""
+        try:
+            for job, fut in zip(self._jobs, self._futures):
+                try:
+                    res = fut.result()
+                except Exception as err:  # noqa: BLE001 - a broken pool raises several types
+                    res = measure_chunk(job)
+                    res["problems"].insert(0, f"worker for time points {job.first}-"
+                                              f"{'end' if job.stop is None else job.stop - 1} failed ({err!r}); "
+                                              "measured again in the main process")
+                yield res
+        finally:
+            self.close()
+
+    def close(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None

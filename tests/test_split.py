@@ -1,0 +1,186 @@
+"""One finished session measured by several processes: chunks of time points, the reference carried across.
+
+The reference here is the same session measured by one process: the engine's own numbers, which
+tests/test_pipeline.py holds against the simulator's ground truth and scikit-image. Per-frame values must be
+identical, so the split inherits that accuracy.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+import qcmon.split
+from qcmon.live import Monitor, MonitorOptions
+from qcmon.sources import SessionSource
+from qcmon.split import plan_chunks, warm_start
+
+# ------------------------------------------------------------------------------------------- planning
+
+
+@pytest.mark.parametrize("n,workers", [(100, 4), (3000, 1), (3000, 2), (10_000, 3), (4499, 3), (1_000_000, 8)])
+def test_chunks_cover_the_session_once_and_balance_the_work(n, workers):
+    chunks = plan_chunks(n, workers, warm_up=300, min_chunk=1500)
+    assert chunks[0][0] == 0 and chunks[-1][1] == n
+    assert all(a[1] == b[0] for a, b in zip(chunks, chunks[1:]))       # contiguous, no overlap, no gap
+    assert len(chunks) == max(1, min(workers, n // 1500))
+    if len(chunks) > 1:
+        work = [chunks[0][1]] + [b - a + 300 for a, b in chunks[1:]]     # later chunks measure a warm-up too
+        assert max(work) - min(work) <= 2
+        assert all(b - a >= 1500 - 300 for a, b in chunks)
+
+
+@pytest.mark.parametrize("first", [400, 401, 409, 1234, 5000])
+def test_warm_start_keeps_the_recomputation_points(first):
+    # the engine recomputes focus and z when its count of measured frames is a multiple of z_every; a copy that
+    # has measured 30 reference frames and starts at s counts 30 + (t - s) at time point t
+    s = warm_start(first, measured=30, z_every=10, warm_up=300)
+    assert first - 310 < s <= first - 300
+    assert all((30 + (t - s)) % 10 == t % 10 for t in range(s, first + 20))
+    with pytest.raises(ValueError):
+        warm_start(320, measured=30, z_every=10, warm_up=300)
+
+
+# -------------------------------------------------------------------------- reading from the middle
+
+
+def _sim(folder: Path, n: int, **kw):
+    from qcmon.simulate import SimConfig
+    from qcmon.simulate._write import write_session
+
+    layout = kw.pop("layout", "chunks")
+    write_session(SimConfig(n_frames=n, height=48, width=48, frame_rate_hz=30.0, **kw), folder, layout=layout,
+                  chunk_frames=37)
+    return folder / "frames"
+
+
+@pytest.mark.parametrize("layout,kw", [("chunks", {}), ("per_frame", {}), ("multipage", {}), ("raw", {}),
+                                       ("chunks", {"channels": 2, "planes": 2})])
+def test_skipped_frames_are_the_ones_a_full_read_gives_first(tmp_path, layout, kw):
+    frames = _sim(tmp_path / "s", 90, layout=layout, seed=2, **kw)
+    full = list(SessionSource(frames))
+    for k in (0, 1, 36, 37, 38, 89, 90, 500):
+        part = list(SessionSource(frames, skip_frames=k))
+        assert len(part) == max(len(full) - k, 0)
+        for a, b in zip(full[k:], part):
+            assert (a.index, a.channel, a.plane, a.source, a.page) == (b.index, b.channel, b.plane, b.source, b.page)
+            assert np.array_equal(a.data, b.data)
+    with pytest.raises(ValueError, match="skip_frames"):
+        SessionSource(frames, skip_frames=-1)
+
+
+# ----------------------------------------------------------------------------------- whole sessions
+
+
+def _traces(out: Path):
+    with open(out / "traces.csv", newline="") as f:
+        return list(csv.DictReader(f))
+
+
+def _num(v: str) -> float:
+    return float(v) if v not in ("", None) else math.nan
+
+
+@pytest.fixture(scope="module")
+def split_pair(tmp_path_factory):
+    """One drifting, bleaching session with a line offset, measured by 1 and by 3 processes."""
+    root = tmp_path_factory.mktemp("split")
+    frames = _sim(root / "s", 1400, seed=4, line_offset_px=0.4, bleach_tau_min=(3.0,),
+                  z_drift_um_per_min=3.0)
+    mp = pytest.MonkeyPatch()
+    mp.setattr(qcmon.split, "MIN_CHUNK", 350)        # three chunks of this short session
+    try:
+        outs = {}
+        for w in (1, 3):
+            outs[w] = root / f"out{w}"
+            Monitor(MonitorOptions(path=frames, out_dir=outs[w], follow=False, workers=w,
+                                   zstack=root / "s" / "zstack.tif")).run()
+    finally:
+        mp.undo()
+    return root, outs
+
+
+def test_split_gives_the_numbers_of_one_process(split_pair):
+    _root, outs = split_pair
+    one, three = _traces(outs[1]), _traces(outs[3])
+    assert [r["frame"] for r in three] == [str(i) for i in range(1400)]        # every frame once, in order
+    exact = [k for k in one[0] if k not in ("line_offset_px", "focus_corr", "focus_measure", "z_um", "z_corr")]
+    for a, b in zip(one, three):
+        assert {k: a[k] for k in exact} == {k: b[k] for k in exact}, a["frame"]
+    for k in ("focus_corr", "focus_measure", "z_um", "z_corr"):          # float32 rounding of the running sum
+        assert_allclose([_num(b[k]) for b in three], [_num(a[k]) for a in one], rtol=1e-5, atol=1e-6)
+    # exponential running average: earlier history weighs (29/30)**300 ≈ 4e-5 after the warm-up
+    assert_allclose([_num(b["line_offset_px"]) for b in three], [_num(a["line_offset_px"]) for a in one],
+                    atol=1e-3)
+
+
+def test_split_summary_and_events_match_one_process(split_pair):
+    _root, outs = split_pair
+    s1 = json.loads((outs[1] / "summary.json").read_text())
+    s3 = json.loads((outs[3] / "summary.json").read_text())
+    for key in ("frames", "duration_s", "motion", "z", "bleach", "saturation", "snr", "brightness"):
+        assert s3[key] == s1[key], key
+    def events(out):
+        evs = [json.loads(ln) for ln in (out / "events.jsonl").read_text().splitlines() if ln.strip()]
+        return [{k: v for k, v in e.items() if k != "wall_time"} for e in evs]  # the clock differs, rightly
+
+    assert events(outs[3]) == events(outs[1]) and events(outs[1])              # the planted bleaching alarms
+    info1, info3 = s1["engine"]["streams"]["0,0"], s3["engine"]["streams"]["0,0"]
+    assert info3["frames"] == info1["frames"] == 1400
+    assert info3["bleach_slope_pct_per_min"] == info1["bleach_slope_pct_per_min"]
+    # photon transfer from the first chunk's pairs only: the same gain within the EMVA 1288 tolerance we test
+    assert_allclose(s3["photon_transfer"]["gain"], s1["photon_transfer"]["gain"], rtol=0.05)
+
+
+def test_a_failed_worker_is_measured_again_and_nothing_is_lost(tmp_path, monkeypatch):
+    frames = _sim(tmp_path / "s", 800, seed=6)
+    monkeypatch.setattr(qcmon.split, "MIN_CHUNK", 350)
+
+    class Broken:
+        def __init__(self, *a, **k):
+            pass
+
+        def submit(self, fn, job):
+            from concurrent.futures import Future
+
+            fut = Future()
+            fut.set_exception(RuntimeError("worker killed"))
+            return fut
+
+        def shutdown(self, **k):
+            pass
+
+    monkeypatch.setattr(qcmon.split, "ProcessPoolExecutor", Broken)
+    mon = Monitor(MonitorOptions(path=frames, out_dir=tmp_path / "o", follow=False, workers=2))
+    mon.run()
+    rows = _traces(tmp_path / "o")
+    assert [r["frame"] for r in rows] == [str(i) for i in range(800)]
+    assert any("worker for time points" in p and "measured again" in p for p in mon.problems)
+
+
+def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, monkeypatch):
+    from qcmon.audit import AuditOptions, run_audit
+
+    _sim(tmp_path / "lab" / "m1" / "2026-11-03", 800, seed=8)
+    monkeypatch.setattr(qcmon.split, "MIN_CHUNK", 350)
+    calls = []
+    real = qcmon.split.SplitRun.launch
+    monkeypatch.setattr(qcmon.split.SplitRun, "launch",
+                        lambda self, *a: calls.append(real(self, *a)) or calls[-1])
+    one = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a1", workers=1), progress=False)
+    two = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a2", workers=2), progress=False)
+    assert calls == [2]                                   # only the two-process audit split the session
+    # photon-transfer figures (gain, its dark level, photons) come from the first chunk's pairs in a split run
+    drop = ("seconds", "frames_per_s", "reused", "status", "record", "dark_level_dn")
+
+    def kept(row):
+        return {k: v for k, v in row.items() if k not in drop and "photon" not in k and "gain" not in k}
+
+    r1, r2 = kept(one["rows"][0]), kept(two["rows"][0])
+    assert r1 == r2 and r1["frames"] == 800
