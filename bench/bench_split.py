@@ -1,0 +1,77 @@
+"""``qcmon summarize`` as a whole process, on one and on two processes, against the engine alone, in one run.
+
+Writes a multi-page TIFF session (cells on neuropil at 1.5 photons/px with planted shifts, the frames of
+``bench_engine.make_frames`` cycled), then prints frames per second of:
+- the engine alone over the same frames held in memory (one core),
+- ``qcmon summarize PATH`` (reading, measuring, the record, summary and report) with ``--workers 1`` and ``2``,
+and the ratios: summarize / engine (target ≥ 0.8) and two / one process (target ≥ 1.8 on two idle cores).
+
+No assertions: speed is read, never asserted. Run: ``python bench/bench_split.py [--size PX] [--frames N]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import tifffile
+from threadpoolctl import threadpool_limits
+
+sys.path.insert(0, os.path.dirname(__file__))
+from bench_engine import make_frames  # noqa: E402
+
+
+def engine_fps(frames: np.ndarray, n: int) -> float:
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+
+    eng = Engine(EngineSettings(frame_rate_hz=30.0, bit_depth=12))
+    with threadpool_limits(1):
+        t0 = time.perf_counter()
+        for i in range(n):
+            eng.process(Frame(frames[i % len(frames)], i))
+        eng.flush()
+        return n / (time.perf_counter() - t0)
+
+
+def summarize_fps(path: Path, out: Path, workers: int, n: int) -> float:
+    exe = Path(sys.executable).with_name("qcmon")
+    t0 = time.perf_counter()
+    subprocess.run([str(exe), "summarize", str(path), "--out", str(out), "--frame-rate", "30", "--bit-depth", "12",
+                    "--workers", str(workers), "--restart"], check=True, stdout=subprocess.DEVNULL)
+    return n / (time.perf_counter() - t0)
+
+
+def main() -> None:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--size", type=int, default=512)
+    p.add_argument("--frames", type=int, default=4000)
+    args = p.parse_args()
+    distinct, _ = make_frames(args.size, 200)
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "session" / "run.tif"
+        path.parent.mkdir()
+        with tifffile.TiffWriter(path, bigtiff=True) as tw:
+            for i in range(args.frames):
+                tw.write(distinct[i % len(distinct)], contiguous=True)
+        # page cache warm for every reader alike
+        with open(path, "rb") as f:
+            while f.read(1 << 24):
+                pass
+        eng = engine_fps(distinct, args.frames)
+        one = summarize_fps(path, Path(tmp) / "out1", 1, args.frames)
+        two = summarize_fps(path, Path(tmp) / "out2", 2, args.frames)
+    print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores")
+    print(f"  engine alone (frames in memory, one core)   {eng:8.1f} frames/s")
+    print(f"  qcmon summarize --workers 1                 {one:8.1f} frames/s   {one / eng:5.2f}× the engine")
+    print(f"  qcmon summarize --workers 2                 {two:8.1f} frames/s   {two / one:5.2f}× one process")
+
+
+if __name__ == "__main__":
+    main()
