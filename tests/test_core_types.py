@@ -43,3 +43,15 @@ def test_readme_documents_every_trace_column_and_the_two_commands():
     missing = [name for name in NAMES if f"`{name}`" not in readme]
     assert missing == []
     assert "make demo" in readme and "make test" in readme
+
+
+def test_readme_column_table_matches_columns_py():
+    """Each README table row carries the unit and meaning of qcmon/columns.py (the single source of truth), so a
+    change of meaning (e.g. a value now sampled) cannot reach traces.csv without reaching the manual."""
+    from pathlib import Path
+
+    from qcmon.columns import COLUMNS
+
+    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    stale = [c.name for c in COLUMNS if f"| `{c.name}` | {c.unit or '–'} | {c.description} |" not in readme]
+    assert stale == []

@@ -223,3 +223,25 @@ def test_z_offset_on_simulated_session():
             if abs(z_true) <= 4:
                 # Registration against the start reference holds within a few axial resolutions only.
                 assert abs(zest.estimate(measured.mean).z_um - z_true) <= 0.5
+
+
+def test_running_mean_of_uint16_frames_is_exact_over_many_cycles():
+    # Integer frames are kept as they are and summed in float32, which is exact for these sums: after many
+    # cycles of the ring buffer the mean equals numpy's float64 mean of the last K aligned frames (reference:
+    # scipy.ndimage.shift with whole pixels and nearest edges, numpy's mean) to float32 rounding of the result.
+    rng = np.random.default_rng(8)
+    rm = RunningMean(5)
+    frames, shifts = [], []
+    for _ in range(37):
+        frames.append(rng.integers(0, 65535, (24, 30), endpoint=True).astype(np.uint16))
+        shifts.append((int(rng.integers(-3, 4)), int(rng.integers(-3, 4))))
+        rm.push(frames[-1], *shifts[-1])
+    assert rm._buf.dtype == np.uint16 and rm._buf.shape == (5, 24, 30)
+    aligned = [ndimage.shift(f.astype(np.float64), (-s[0], -s[1]), order=0, mode="nearest")
+               for f, s in zip(frames[-5:], shifts[-5:])]
+    expected = np.mean(aligned, axis=0)
+    assert_allclose(rm.mean, expected, rtol=1e-7, atol=0)
+    # a float frame after integer ones: the buffer turns to float32 and the mean stays right
+    rm.push(frames[0].astype(np.float32) + 0.5)
+    aligned = aligned[1:] + [frames[0].astype(np.float64) + 0.5]
+    assert_allclose(rm.mean, np.mean(aligned, axis=0), rtol=1e-6)

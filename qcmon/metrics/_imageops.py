@@ -93,8 +93,8 @@ def shift_integer(src: np.ndarray, dy: int, dx: int, out: np.ndarray) -> np.ndar
     reference grid.
     """
     m, n = src.shape
-    dy = int(np.clip(dy, -(m - 1), m - 1))
-    dx = int(np.clip(dx, -(n - 1), n - 1))
+    dy = min(max(int(dy), -(m - 1)), m - 1)
+    dx = min(max(int(dx), -(n - 1)), n - 1)
     r0, r1 = max(0, -dy), min(m, m - dy)  # destination rows with a source row
     c0, c1 = max(0, -dx), min(n, n - dx)
     out[r0:r1, c0:c1] = src[r0 + dy:r1 + dy, c0 + dx:c1 + dx]

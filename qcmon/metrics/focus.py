@@ -8,7 +8,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import ndimage
 
 from qcmon.metrics._imageops import as_image, finite_float32
 
@@ -79,6 +78,24 @@ def focus_measure(image) -> float:
     img = finite_float32(as_image(image, "image", min_size=3), "image", stacklevel=3)
     if img is None:
         return math.nan
-    img = img.astype(np.float64)
-    lap = ndimage.laplace(img, mode="reflect")
-    return float(lap.var() / img.var())
+    # Mean removed, then float32 throughout with pairwise sums (relative error ~1e-6).
+    x = img - img.mean(dtype=np.float32)
+    # 5-point Laplacian with the edge pixels repeated beyond the border, which for a 3-point stencil is the
+    # same as ``scipy.ndimage.laplace(mode="reflect")`` (the pixel beyond the edge mirrors the edge pixel).
+    lap = np.empty_like(x)
+    np.add(x[:-2], x[2:], out=lap[1:-1])
+    np.add(x[0], x[1], out=lap[0])
+    np.add(x[-2], x[-1], out=lap[-1])
+    lap[:, 1:-1] += x[:, :-2]
+    lap[:, 1:-1] += x[:, 2:]
+    lap[:, 0] += x[:, 0] + x[:, 1]
+    lap[:, -1] += x[:, -2] + x[:, -1]
+    lap -= np.float32(4.0) * x
+    n = x.size
+    lap_mean = float(lap.sum()) / n
+    np.square(lap, out=lap)
+    lap_var = float(lap.sum()) / n - lap_mean * lap_mean
+    x_mean = float(x.sum()) / n  # zero up to rounding
+    np.square(x, out=x)
+    img_var = float(x.sum()) / n - x_mean * x_mean
+    return lap_var / img_var

@@ -31,9 +31,10 @@ def immerkaer_sigma(image, *, row_step: int = 1) -> float:
         One frame (any integer or float dtype), rows by columns, M, N >= 3.
     row_step : int, optional
         Use every ``row_step``-th output row only (the three input rows each output row needs are always
-        consecutive). The estimate stays unbiased; its relative standard error grows as
-        ``sqrt(row_step / ((M - 2) (N - 2)))`` times about 1.1 (Gaussian noise), i.e. about 0.4 % for a 512 x 512
-        frame with ``row_step=4``. Default 1 (every row, as in the paper).
+        consecutive; they are read through strided views, so the cost falls about as ``1 / row_step``). The
+        estimate stays unbiased; its relative standard error grows as ``sqrt(row_step / ((M - 2) (N - 2)))`` times
+        about 1.1 (Gaussian noise), i.e. about 0.4 % for a 512 x 512 frame with ``row_step=4``. Default 1 (every
+        row, as in the paper).
 
     Returns
     -------
@@ -57,22 +58,19 @@ def immerkaer_sigma(image, *, row_step: int = 1) -> float:
     """
     a = as_image(image, "image", min_shape=(3, 3))
     row_step = positive_int(row_step, "row_step")
-    m, n = a.shape
-    centre_rows = np.arange(1, m - 1, row_step)
-    if row_step == 1:
-        f = a.astype(np.float32, copy=False)
-        up, mid, down = f[:-2], f[1:-1], f[2:]
-    else:
-        # Gather the three rows around every chosen output row in one fancy-indexing pass.
-        k = centre_rows.size
-        f = a[np.concatenate((centre_rows - 1, centre_rows, centre_rows + 1))].astype(np.float32, copy=False)
-        up, mid, down = f[:k], f[k : 2 * k], f[2 * k :]
-    d = up + down  # second difference down the columns
-    d -= mid
-    d -= mid
+    m = a.shape[0]
+    k = (m - 3) // row_step + 1  # output rows 1, 1 + row_step, ... <= m - 2
+    stop = 1 + (k - 1) * row_step + 1
+    # Strided views of the rows above, at and below every chosen output row (no gather, no float copy of the
+    # frame); the first operation converts to float32.
+    if row_step <= 2:
+        a = a.astype(np.float32, copy=False)  # most rows are needed: one conversion is cheaper than three
+    up, mid, down = a[0:stop - 1:row_step], a[1:stop:row_step], a[2:stop + 1:row_step]
+    two = np.float32(2.0)
+    d = np.add(up, down, dtype=np.float32)  # second difference down the columns
+    d -= np.multiply(mid, two, dtype=np.float32)
     e = d[:, :-2] + d[:, 2:]  # second difference along the rows
-    e -= d[:, 1:-1]
-    e -= d[:, 1:-1]
+    e -= np.multiply(d[:, 1:-1], two)
     np.abs(e, out=e)
     total = float(e.sum())  # float32 pairwise summation: relative error ~1e-6
     return _SCALE * total / e.size

@@ -229,7 +229,7 @@ class PhotonTransfer:
         # biases the fit): var(mean of y) ~ 2 E[y]**2 / n for a Gaussian variance sample; two reweightings.
         w = n / np.maximum(y, 1e-12) ** 2
         for _ in range(3):
-            slope, intercept = np.polynomial.polynomial.polyfit(x, y, 1, w=np.sqrt(w))[::-1]
+            slope, intercept = _weighted_line(x, y, w)
             pred = np.maximum(slope * x + intercept, 1e-3 * max(float(np.max(y)), 1e-12))
             w = n / pred**2
         resid = y - (slope * x + intercept)
@@ -250,6 +250,20 @@ class PhotonTransfer:
         read_var = 0.0 if self.read_noise_dn is None else self.read_noise_dn**2
         dark = (read_var - intercept) / slope
         return PhotonTransferResult(slope, float(dark), read, n_points, r2)
+
+
+def _weighted_line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float]:
+    """Weighted least-squares line ``y = slope x + intercept`` minimising ``sum(w (y - slope x - intercept)**2)``.
+
+    The closed form of the normal equations, centred on the weighted means (the same fit as
+    ``numpy.polynomial.polynomial.polyfit(x, y, 1, w=sqrt(w))`` at a fraction of its cost).
+    """
+    sw = float(np.sum(w))
+    xm = float(np.dot(w, x)) / sw
+    ym = float(np.dot(w, y)) / sw
+    dx = x - xm
+    slope = float(np.dot(w * dx, y - ym)) / float(np.dot(w * dx, dx))
+    return slope, ym - slope * xm
 
 
 def photons_per_px(mean_above_dark, gain):

@@ -174,9 +174,10 @@ class RunningMean:
     """Motion-corrected mean of the last ``K`` frames, in constant memory.
 
     Each frame is moved back onto the reference grid by its measured shift rounded to whole pixels (edge pixels
-    repeated) and kept in a ring buffer of ``K`` float32 images; the sum is updated by adding the new frame and
-    subtracting the one that leaves, and recomputed from the buffer once per cycle so rounding cannot
-    accumulate. Whole-pixel shifts cost one copy; the residual (at most 0.5 px, 0.29 px RMS for uniformly
+    repeated) and kept in a ring buffer of ``K`` images (as they are for integer pixels of up to 16 bits, else
+    float32); the sum is updated by adding the new frame and subtracting the one that leaves. For such integer
+    frames the float32 sum is exact (``K`` up to 256); otherwise it is recomputed from the buffer once per cycle
+    so rounding cannot accumulate. Whole-pixel shifts cost one copy; the residual (at most 0.5 px, 0.29 px RMS for uniformly
     spread shifts) blurs the mean far less than the optical point-spread function (several px), which is what
     limits the z and focus measures made from it, whereas interpolating every frame would cost more than the
     registration itself.
@@ -193,8 +194,17 @@ class RunningMean:
         self.K = int(K)
         self._buf: np.ndarray | None = None
         self._sum: np.ndarray | None = None
+        self._exact = False
         self._next = 0
         self.count = 0
+
+    def _allocate(self, arr: np.ndarray) -> None:
+        # Integer frames of at most 16 bits are kept as they are (half the memory traffic of float32) and summed
+        # in float32, which holds every sum of up to 256 such values exactly: no rounding can accumulate.
+        dt = arr.dtype
+        self._exact = dt.kind in "ui" and dt.itemsize <= 2 and self.K * 2 ** (8 * dt.itemsize) <= 2 ** 24
+        self._buf = np.zeros((self.K, *arr.shape), dtype=dt if self._exact else np.float32)
+        self._sum = np.zeros(arr.shape, dtype=np.float32)
 
     def push(self, frame, dy_px: float = 0.0, dx_px: float = 0.0) -> None:
         """Add a frame whose content is shifted by (``dy_px``, ``dx_px``) px against the reference.
@@ -204,10 +214,13 @@ class RunningMean:
         """
         arr = as_image(frame, "frame", min_size=1)
         if self._buf is None:
-            self._buf = np.zeros((self.K, *arr.shape), dtype=np.float32)
-            self._sum = np.zeros(arr.shape, dtype=np.float32)
+            self._allocate(arr)
         elif arr.shape != self._buf.shape[1:]:
             raise ValueError(f"frame has shape {arr.shape}, expected {self._buf.shape[1:]} like the earlier frames")
+        if self._exact and arr.dtype != self._buf.dtype:
+            # another pixel type than the first frame's: keep floats from now on
+            self._buf = self._buf.astype(np.float32)
+            self._exact = False
         if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(arr).all():
             finite = np.isfinite(arr)
             if not finite.any():
@@ -219,12 +232,12 @@ class RunningMean:
         dx = int(round(dx_px)) if math.isfinite(dx_px) else 0
         slot = self._buf[self._next]
         if self.count >= self.K:
-            self._sum -= slot
+            np.subtract(self._sum, slot, out=self._sum)
         shift_integer(arr, dy, dx, slot)
-        self._sum += slot
+        np.add(self._sum, slot, out=self._sum)
         self._next = (self._next + 1) % self.K
         self.count += 1
-        if self._next == 0:
+        if self._next == 0 and not self._exact:
             np.sum(self._buf, axis=0, dtype=np.float32, out=self._sum)
 
     @property
