@@ -215,8 +215,8 @@ class Monitor:
             rows.extend(new)
             if sp is not None and not sp.decided:
                 sp.note_rows(new)
-                if sp.ready():
-                    sp.launch(run.engine, source.position)
+                if sp.ready() and sp.launch(run.engine, source.position) == 1:
+                    run.split = sp = None  # too short to split: one process, the engine's own values
         self._deliver(run, rows, record, listeners)
 
     def _collect_split(self, run: "_RunState", source: SessionSource, record, listeners) -> None:

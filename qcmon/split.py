@@ -27,7 +27,6 @@ from __future__ import annotations
 import math
 import multiprocessing
 import pickle
-import time
 import warnings
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, field
@@ -104,12 +103,11 @@ class ChunkJob:
 
 
 def measure_chunk(job: ChunkJob) -> dict:
-    """Measure one chunk in this process. Returns ``rows``, ``problems`` (messages) and ``seconds``."""
+    """Measure one chunk in this process. Returns ``rows`` and ``problems`` (messages)."""
     from threadpoolctl import threadpool_limits
 
     from qcmon.sources import SessionSource
 
-    t0 = time.perf_counter()
     problems: list[str] = []
     engine = pickle.loads(job.engine)
     token = {**job.token, "pages": 0, "files": {}, "given_up": []}
@@ -134,7 +132,7 @@ def measure_chunk(job: ChunkJob) -> dict:
         if job.stop is None:
             rows.extend(engine.flush())
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
-    return {"rows": keep, "problems": problems, "seconds": time.perf_counter() - t0}
+    return {"rows": keep, "problems": problems}
 
 
 class RowContinuity:
@@ -193,12 +191,12 @@ class SplitRun:
     path: str
     source_kwargs: dict
     frames_per_point: int
+    window_s: float                                  # trailing window of the bleach slope (engine settings)
     warm_up: int | None = None                       # default: WARM_UP
     min_chunk: int | None = None                     # default: MIN_CHUNK
     started: set = field(default_factory=set)       # streams whose reference is built
     stop: int | None = None                          # first time point the monitor does not measure itself
     reading_done: bool = False
-    window_s: float = 60.0                           # trailing window of the bleach slope (engine settings)
     _pool: ProcessPoolExecutor | None = None
     _futures: list[Future] = field(default_factory=list)
     _jobs: list[ChunkJob] = field(default_factory=list)

@@ -184,3 +184,14 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
 
     r1, r2 = kept(one["rows"][0]), kept(two["rows"][0])
     assert r1 == r2 and r1["frames"] == 800
+
+
+def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch):
+    frames = _sim(tmp_path / "s", 200, seed=9)                 # 200 < MIN_CHUNK time points per process
+    launched = []
+    real = qcmon.split.SplitRun.launch
+    monkeypatch.setattr(qcmon.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
+    for w in (1, 2):
+        Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
+    assert launched == [1]
+    assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
