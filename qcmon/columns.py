@@ -33,12 +33,12 @@ COLUMNS: tuple[Column, ...] = (
     Column("bleach_pct_per_min", "%/min", "slope of the baseline over the trailing window, % of initial per min"),
     Column("saturated_frac", "", "fraction of pixels at the detector maximum (0..1)"),
     Column("clipped_frac", "", "fraction of pixels clipped at the floor (0 or below)"),
-    Column("noise_sigma", "DN", "Immerkær noise standard deviation, from every 4th row of the frame"),
+    Column("noise_sigma", "DN", "Immerkær noise standard deviation, from about 32 000 pixels of the frame (every k-th row)"),
     Column("snr", "", "mean_f / noise_sigma: mean signal above dark over per-pixel noise"),
     Column("photons_per_px", "photons", "mean detected photons per pixel: mean_f / conversion gain"),
     Column("shot_snr", "", "photon-limited SNR per pixel: sqrt(photons_per_px)"),
     Column("line_offset_px", "px", "shift of odd lines against even lines (bidirectional scan), + toward increasing "
-           "column; measured every z_every frames on a running average of the raw frames, carried in between"),
+           "column; measured every z_every frames on the motion-corrected running mean, carried in between"),
     Column("source", "", "file the frame came from", "str"),
     Column("page", "", "page within that file, from 0", "int"),
 )

@@ -37,12 +37,13 @@ from qcmon.metrics.saturation import detector_max, saturation_fractions
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
 
 NAN = math.nan
-#: ``noise_sigma`` uses every 4th output row of the Immerkær filter: about 0.4 % relative standard error at 512²
-#: (see :func:`~qcmon.metrics.noise.immerkaer_sigma`) for a quarter of the cost.
-_NOISE_ROW_STEP = 4
-#: ``line_offset_px`` uses every other odd row of the averaged raw frame (half the row FFTs; the average of about
-#: 30 frames leaves its precision far below what the threshold profiles resolve).
-_LINE_ROW_STEP = 2
+#: ``noise_sigma`` uses every k-th output row of the Immerkær filter, k chosen so that about this many pixels
+#: enter: a relative standard error of about 0.6 % (see :func:`~qcmon.metrics.noise.immerkaer_sigma`) at a cost
+#: that does not grow with the frame (k = 8 at 512², 1 at 256² and below).
+_NOISE_PIXELS = 32768
+#: ``line_offset_px`` uses every 4th odd row of the running mean (a quarter of the row FFTs; the mean of 30 frames
+#: leaves its precision far below what the threshold profiles resolve).
+_LINE_ROW_STEP = 4
 
 
 @dataclass(slots=True)
@@ -69,7 +70,7 @@ class EngineSettings:
     running_mean_frames : int
         Frames in the motion-corrected running mean used for focus and z.
     z_every : int
-        Frames between two z / focus estimates (the value is carried between estimates).
+        Frames between two z / focus / line-offset estimates (the value is carried between estimates).
     upsample : int
         Subpixel upsampling factor of the registration (1/upsample px resolution).
     bin_factor : int or None
@@ -83,7 +84,8 @@ class EngineSettings:
         Trailing window of ``bleach_pct_per_min``.
     photon_transfer_every : int
         Frames between two photon-transfer updates after the start-up (each update uses a frame pair; every
-        pair of the start-up frames is used). Default 8: about 4 pairs per second at 30 Hz.
+        pair of the start-up frames is used). Default 16: about 2 pairs per second at 30 Hz, each of 1/8 of the
+        frame's pixels (32 k samples at 512²), so the fit still rests on about 10⁵ samples a second.
     """
 
     frame_rate_hz: float | None = None
@@ -100,7 +102,7 @@ class EngineSettings:
     motion_channel: int | None = None
     max_shift_px: float | None = None
     bleach_window_s: float = 60.0
-    photon_transfer_every: int = 8
+    photon_transfer_every: int = 16
 
     def __post_init__(self) -> None:
         for name in ("frame_rate_hz", "pixel_size_um", "z_step_um"):
@@ -143,10 +145,8 @@ class _Stream:
     n_measured: int = 0
     last_z: tuple[float, float] = (NAN, NAN)
     last_focus: tuple[float, float] = (NAN, NAN)
-    raw_avg: np.ndarray | None = None
-    raw_sum: np.ndarray | None = None
-    raw_k: int = 0
     focus_bin: int = 1
+    noise_row_step: int = 1
     reference_binned: np.ndarray | None = None
     last_line_offset: float = NAN
     t0: float = NAN
@@ -290,9 +290,14 @@ class Engine:
             max_shift = s.max_shift_px or min(st.reference.shape) / 4
             st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                       max_shift_px=max_shift)
-        st.running = RunningMean(s.running_mean_frames)
+        # Block sums of gcd(running_mean_frames, z_every) frames: at every estimate the mean is over exactly the
+        # last running_mean_frames frames. Even row shifts keep the scan lines' parity for the line offset.
+        st.running = RunningMean(s.running_mean_frames, block=math.gcd(s.running_mean_frames, s.z_every),
+                                 even_rows=True)
         # focus correlation on binned images: shot noise averages out, cell-sized structure (≥ 8 px) stays
         st.focus_bin = 2 if min(st.reference.shape) < 256 else 4
+        h, w = st.reference.shape
+        st.noise_row_step = max(1, round((h - 2) * (w - 2) / _NOISE_PIXELS))
         st.reference_binned = bin_image(st.reference, st.focus_bin)
         if s.zstack is not None:
             if s.zstack.shape[1:] != st.reference.shape:
@@ -359,10 +364,25 @@ class Engine:
             st.t0 = t
         row["time_s"] = t
 
+        # Integer frames whose sides the registration's binning divides: the binned frame (float32, exact sums of
+        # integers below 2**24) serves the registration and gives the exact frame mean in one pass over the pixels.
+        binned = None
+        if img.dtype.kind in "ui" and motion is None:
+            factor = st.shift.bin_factor
+            if (img.shape[0] % factor == 0 and img.shape[1] % factor == 0
+                    and factor * factor * int(np.iinfo(img.dtype).max) < 2 ** 24):
+                binned = bin_image(img, factor)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
+            if binned is not None:
+                total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
+                mean_raw = total / img.size
+                res = st.shift.estimate_binned(binned, mean=total / binned.size)
+            else:
+                mean_raw = float(np.add.reduce(img, axis=None, dtype=np.float64)) / img.size
+                if motion is None:
+                    res = st.shift.estimate(img)
             if motion is None:
-                res = st.shift.estimate(img)
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if s.motion_channel is not None:
                     self._remember_motion(frame.index, frame.plane, (dy, dx, corr))
@@ -374,10 +394,11 @@ class Engine:
             if s.pixel_size_um:
                 row["displacement_um"] = disp * s.pixel_size_um
 
-            # focus / z from a motion-corrected running mean, every z_every frames
+            # focus, z and line offset from a motion-corrected running mean, when a block of z_every frames is
+            # complete (and at each of the first z_every frames)
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
             st.running.push(img, dy, dx)
-            if st.n_measured % s.z_every == 0 or st.n_measured < s.z_every:
+            if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
                 mean_img = st.running.mean
                 if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
                     st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin), st.reference_binned),
@@ -385,14 +406,14 @@ class Engine:
                 if st.zest is not None:
                     zr = st.zest.estimate(mean_img)
                     st.last_z = (zr.z_um, zr.corr)
+                # Line offset is a property of the scanner, not of one frame: it is measured on the running mean,
+                # whose frames were moved by whole, even numbers of rows (the two scan directions' rows stay apart).
+                st.last_line_offset = line_offset_px(mean_img, row_step=_LINE_ROW_STEP)
             row["focus_corr"], row["focus_measure"] = st.last_focus
             row["z_um"], row["z_corr"] = st.last_z
+            row["line_offset_px"] = st.last_line_offset
 
             # photometry
-            if img.dtype.kind in "ui":
-                mean_raw = int(np.add.reduce(img, axis=None, dtype=np.int64)) / img.size  # exact
-            else:
-                mean_raw = float(img.mean(dtype=np.float64))
             mean_f = mean_raw - st.dark_level
             row["mean_f"] = mean_f
             b = st.brightness.update(t, mean_f)
@@ -400,7 +421,7 @@ class Engine:
                        bleach_pct_per_min=b.bleach_pct_per_min)
             sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
             row.update(saturated_frac=sat, clipped_frac=clip)
-            sigma = immerkaer_sigma(img, row_step=_NOISE_ROW_STEP)
+            sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
             if st.prev is not None:
@@ -412,28 +433,6 @@ class Engine:
                 photons = mean_f / gain
                 row["photons_per_px"] = photons
                 row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
-            # Line offset is a property of the scanner, not of one frame: measure it on an exponential running
-            # average of the raw frames (no motion correction, which would move rows between the odd and even sets)
-            # (time constant running_mean_frames frames). To save a pass over every frame, the frames are summed
-            # and folded into the average only when it is measured: the k frames since the last fold enter with
-            # equal weights, their total weight 1 - (1 - 1/running_mean_frames)**k as in a frame-by-frame average
-            # (identical to it when k = 1, i.e. during the first z_every frames).
-            if st.raw_avg is None:
-                st.raw_avg = img.astype(np.float32)
-                st.raw_sum = np.zeros(img.shape, np.float32)
-            else:
-                np.add(st.raw_sum, img, out=st.raw_sum)
-                st.raw_k += 1
-            if st.n_measured % s.z_every == 0 or st.n_measured < s.z_every:
-                if st.raw_k:
-                    keep = (1.0 - 1.0 / s.running_mean_frames) ** st.raw_k
-                    st.raw_avg *= np.float32(keep)
-                    st.raw_sum *= np.float32((1.0 - keep) / st.raw_k)
-                    st.raw_avg += st.raw_sum
-                    st.raw_sum[...] = 0.0
-                    st.raw_k = 0
-                st.last_line_offset = line_offset_px(st.raw_avg, row_step=_LINE_ROW_STEP)
-            row["line_offset_px"] = st.last_line_offset
         st.prev, st.prev_shift = img, ishift
         st.n_measured += 1
         return [row]

@@ -11,14 +11,11 @@ What is the same as in one process, and what is not:
 
 - Displacement, registration quality, photometry, saturation, noise, SNR and photons per pixel depend on the
   frame and on the reference only: identical.
-- Focus correlation and z come from the running mean of the last ``running_mean_frames`` frames, recomputed every
-  ``z_every`` frames: the warm-up fills the running mean and keeps the same frames as recomputation points, so they
-  agree to float32 rounding of the running sum.
+- Focus correlation, z and the line offset come from the running mean of the last ``running_mean_frames`` frames,
+  recomputed every ``z_every`` frames: the warm-up fills the running mean with the same frames, summed in the same
+  blocks, and keeps the same frames as recomputation points, so they are identical.
 - Baseline, brightness % and bleach slope have long trailing windows: they are recomputed here, in order, over all
   rows (:class:`RowContinuity`), so they are identical.
-- The line offset is measured on an exponential running average of the raw frames: after the warm-up the earlier
-  history weighs ``(1 - 1/running_mean_frames) ** warm_up`` (4e-5 for 30 and 300), so the offset differs by a
-  negligible amount from a one-process run.
 - The photon-transfer fit of ``summary.json`` (``photon_transfer.*``) uses the frame pairs of the first chunk only.
 """
 
@@ -67,7 +64,8 @@ def warm_start(first: int, *, measured: int, z_every: int, warm_up: int = WARM_U
     """Time point from which a worker feeds frames to its engine copy for a chunk beginning at ``first``.
 
     The copy has measured ``measured`` frames of each stream (the reference frames); the engine recomputes focus
-    and z when its count of measured frames is a multiple of ``z_every``. Starting at ``s`` with
+    and z when its count of measured frames reaches a multiple of ``z_every`` (and sums the running mean in blocks
+    that end there). Starting at ``s`` with
     ``s ≡ measured (mod z_every)`` keeps the recomputation at the same time points as in one process.
     """
     s = first - warm_up

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import csv
 import json
-import math
 from pathlib import Path
 
 import numpy as np
@@ -83,10 +82,6 @@ def _traces(out: Path):
         return list(csv.DictReader(f))
 
 
-def _num(v: str) -> float:
-    return float(v) if v not in ("", None) else math.nan
-
-
 @pytest.fixture(scope="module")
 def split_pair(tmp_path_factory):
     """One drifting, bleaching session with a line offset, measured by 1 and by 3 processes."""
@@ -110,14 +105,10 @@ def test_split_gives_the_numbers_of_one_process(split_pair):
     _root, outs = split_pair
     one, three = _traces(outs[1]), _traces(outs[3])
     assert [r["frame"] for r in three] == [str(i) for i in range(1400)]        # every frame once, in order
-    exact = [k for k in one[0] if k not in ("line_offset_px", "focus_corr", "focus_measure", "z_um", "z_corr")]
+    # every column, the running mean's (focus, z, line offset) included: the warm-up refills its block sums with
+    # the same frames in the same blocks
     for a, b in zip(one, three):
-        assert {k: a[k] for k in exact} == {k: b[k] for k in exact}, a["frame"]
-    for k in ("focus_corr", "focus_measure", "z_um", "z_corr"):          # float32 rounding of the running sum
-        assert_allclose([_num(b[k]) for b in three], [_num(a[k]) for a in one], rtol=1e-5, atol=1e-6)
-    # exponential running average: earlier history weighs (29/30)**300 ≈ 4e-5 after the warm-up
-    assert_allclose([_num(b["line_offset_px"]) for b in three], [_num(a["line_offset_px"]) for a in one],
-                    atol=1e-3)
+        assert a == b, a["frame"]
 
 
 def test_split_summary_and_events_match_one_process(split_pair):

@@ -132,7 +132,7 @@ def test_running_mean_matches_numpy():
         frames.append(frame)
         shifts.append((dy + rng.uniform(-0.4, 0.4), dx + rng.uniform(-0.4, 0.4)))  # rounded back to (dy, dx)
         rm.push(frame, *shifts[-1])
-    assert rm.n_frames == 4 and rm._buf.shape == (4, 40, 50)  # constant memory: K frames
+    assert rm.n_frames == 4 and rm._ring.shape == (4, 40, 50)  # constant memory: K block sums of one frame
     aligned = [ndimage.shift(f, (-round(s[0]), -round(s[1])), order=0, mode="nearest")
                for f, s in zip(frames[-4:], shifts[-4:])]
     # reference: scipy.ndimage.shift (whole pixels, nearest edge) and numpy's mean
@@ -236,12 +236,73 @@ def test_running_mean_of_uint16_frames_is_exact_over_many_cycles():
         frames.append(rng.integers(0, 65535, (24, 30), endpoint=True).astype(np.uint16))
         shifts.append((int(rng.integers(-3, 4)), int(rng.integers(-3, 4))))
         rm.push(frames[-1], *shifts[-1])
-    assert rm._buf.dtype == np.uint16 and rm._buf.shape == (5, 24, 30)
+    assert rm._ring.shape == (5, 24, 30)
     aligned = [ndimage.shift(f.astype(np.float64), (-s[0], -s[1]), order=0, mode="nearest")
                for f, s in zip(frames[-5:], shifts[-5:])]
     expected = np.mean(aligned, axis=0)
     assert_allclose(rm.mean, expected, rtol=1e-7, atol=0)
-    # a float frame after integer ones: the buffer turns to float32 and the mean stays right
+    # a float frame after integer ones: the mean stays right
     rm.push(frames[0].astype(np.float32) + 0.5)
     aligned = aligned[1:] + [frames[0].astype(np.float64) + 0.5]
     assert_allclose(rm.mean, np.mean(aligned, axis=0), rtol=1e-6)
+
+
+def test_add_shifted_equals_scipy_shift_plus_add():
+    # Reference: scipy.ndimage.shift with whole pixels and nearest edges (what RunningMean adds per frame).
+    from qcmon.metrics._imageops import add_shifted
+
+    rng = np.random.default_rng(11)
+    for _ in range(200):
+        m, n = (int(v) for v in rng.integers(1, 24, 2))
+        src = rng.integers(0, 4096, (m, n)).astype(np.uint16)
+        dy, dx = (int(v) for v in rng.integers(-30, 31, 2))
+        base = rng.integers(0, 1000, (m, n)).astype(np.float32)
+        got = add_shifted(src, dy, dx, base.copy())
+        want = base + ndimage.shift(src.astype(np.float32), (-dy, -dx), order=0, mode="nearest")
+        assert_allclose(got, want, rtol=0, atol=0, err_msg=f"{(m, n, dy, dx)}")
+
+
+def test_running_mean_blocks_hold_exactly_the_last_frames():
+    # With blocks of 3 frames and K = 6, the mean is over the last 6 frames whenever a block has just been completed
+    # and over the last 3 + j frames with j frames of the current block (reference: numpy's mean of the frames
+    # moved back by scipy.ndimage.shift, whole pixels, rows rounded to an even number).
+    rng = np.random.default_rng(12)
+    rm = RunningMean(6, block=3, even_rows=True)
+    frames, moves = [], []
+    for t in range(20):
+        frames.append(rng.integers(0, 4096, (20, 26)).astype(np.uint16))
+        dy, dx = rng.uniform(-4, 4, 2)
+        rm.push(frames[-1], dy, dx)
+        moves.append((2 * round(dy / 2), round(dx)))
+        j = (t + 1) % 3
+        last = 6 if j == 0 or t < 3 else 3 + j
+        last = min(last, t + 1)
+        assert rm.n_frames == last
+        aligned = [ndimage.shift(f.astype(np.float64), (-my, -mx), order=0, mode="nearest")
+                   for f, (my, mx) in zip(frames[-last:], moves[-last:])]
+        assert_allclose(rm.mean, np.mean(aligned, axis=0), rtol=1e-7, atol=0)
+    assert rm._ring.shape == (2, 20, 26)  # constant memory: K / block sums
+    with pytest.raises(ValueError, match="block"):
+        RunningMean(6, block=4)
+
+
+def test_running_mean_with_even_rows_keeps_the_line_offset():
+    # A bidirectional scan (ground truth made here): the content moves by odd numbers of rows between frames, and
+    # the scanner shifts the odd *acquired* rows by 1.3 px. Moved back by even row shifts, the frames keep their
+    # rows' parity and the mean keeps the offset; rounded to the nearest row, the two scan directions mix.
+    from photometry_data import expose, field_of_view, fourier_shift_rows
+
+    from qcmon.metrics.line_offset import line_offset_px
+
+    rng = np.random.default_rng(13)
+    content, _ = field_of_view((160 + 16, 256 + 16), mean_photons=4.0, rng=rng, n_cells=40)
+    kept, mixed = RunningMean(10, block=5, even_rows=True), RunningMean(10, block=5)
+    for t in range(10):
+        dy = (-1, 1, 3, -3, 1)[t % 5]
+        lam = np.roll(content, dy, axis=0)
+        lam[1::2] = fourier_shift_rows(lam[1::2], 1.3)  # the scanner's offset, on the acquired rows
+        frame = expose(np.clip(lam[8:-8, 8:-8], 0, None), gain=10.0, dark=100.0, read_noise=2.0, rng=rng)
+        kept.push(frame, dy, 0.0)
+        mixed.push(frame, dy, 0.0)
+    assert abs(line_offset_px(kept.mean) - 1.3) < 0.1
+    assert abs(line_offset_px(mixed.mean) - 1.3) > 0.3

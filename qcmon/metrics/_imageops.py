@@ -107,3 +107,36 @@ def shift_integer(src: np.ndarray, dy: int, dx: int, out: np.ndarray) -> np.ndar
     if c1 < n:
         out[:, c1:] = out[:, c1 - 1:c1]
     return out
+
+
+def add_shifted(src: np.ndarray, dy: int, dx: int, out: np.ndarray) -> np.ndarray:
+    """Add ``src`` moved as in :func:`shift_integer` to ``out`` in place, without an intermediate copy.
+
+    ``out[r, c] += src[r + dy, c + dx]``, the edge pixels of ``src`` repeated outside it. ``src`` and ``out`` are
+    C-contiguous arrays of the same shape.
+
+    The rows that have a source row are added in one pass over the flattened arrays, offset by ``dy * N + dx``
+    (a contiguous addition; a 2-D slice with a column offset is several times slower). That pass adds, in the
+    ``|dx|`` columns at one side, pixels of the neighbouring source row; those columns are kept aside before it and
+    given their edge pixel after it.
+    """
+    m, n = src.shape
+    dy = min(max(int(dy), -(m - 1)), m - 1)
+    dx = min(max(int(dx), -(n - 1)), n - 1)
+    r0, r1 = max(0, -dy), min(m, m - dy)  # destination rows with a source row
+    cols = slice(n - dx, n) if dx > 0 else slice(0, -dx)  # columns whose source lies beyond the row's end
+    kept = out[r0:r1, cols].copy() if dx else None
+    off = dy * n + dx
+    a, b = max(r0 * n, -off), min(r1 * n, m * n - off)
+    flat = out.reshape(-1)
+    np.add(flat[a:b], src.reshape(-1)[a + off:b + off], out=flat[a:b])
+    if dx:
+        edge = n - 1 if dx > 0 else 0
+        np.add(kept, src[r0 + dy:r1 + dy, edge:edge + 1], out=out[r0:r1, cols])
+    if r0 > 0 or r1 < m:  # rows without a source row repeat the edge row, moved by dx
+        moved = np.clip(np.arange(n) + dx, 0, n - 1)
+        if r0 > 0:
+            out[:r0] += src[0, moved]
+        if r1 < m:
+            out[r1:] += src[m - 1, moved]
+    return out

@@ -86,10 +86,16 @@ def focus_measure(image) -> float:
     np.add(x[:-2], x[2:], out=lap[1:-1])
     np.add(x[0], x[1], out=lap[0])
     np.add(x[-2], x[-1], out=lap[-1])
-    lap[:, 1:-1] += x[:, :-2]
-    lap[:, 1:-1] += x[:, 2:]
-    lap[:, 0] += x[:, 0] + x[:, 1]
-    lap[:, -1] += x[:, -2] + x[:, -1]
+    # Horizontal neighbours as the pixels before and after in memory (two contiguous passes, much cheaper than
+    # column-offset slices); the first and last columns took a pixel of the neighbouring row there, which is
+    # replaced by the edge pixel itself.
+    xf, lf = x.reshape(-1), lap.reshape(-1)
+    lf[1:] += xf[:-1]
+    lf[:-1] += xf[1:]
+    lap[1:, 0] -= x[:-1, -1]
+    lap[:-1, -1] -= x[1:, 0]
+    lap[:, 0] += x[:, 0]
+    lap[:, -1] += x[:, -1]
     lap -= np.float32(4.0) * x
     n = x.size
     lap_mean = float(lap.sum()) / n

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 
@@ -61,16 +62,20 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     upsample = positive_int(upsample, "upsample")
     m, n = a.shape
     n_odd = (m - 1) // 2  # odd rows 1, 3, ... that have an even row on both sides
-    odd_rows = np.arange(1, 2 * n_odd, 2)[::row_step]
-    f = a.astype(np.float32, copy=False)
-    odd = f[odd_rows]
-    even = 0.5 * (f[odd_rows - 1] + f[odd_rows + 1])
+    stop = 2 * n_odd  # one past the last such odd row
+    step = 2 * row_step
+    # strided views of the chosen odd rows and of the even rows above and below them (no gather)
+    odd = a[1:stop:step].astype(np.float32)
+    even = np.add(a[0:stop - 1:step], a[2:stop + 1:step], dtype=np.float32)
+    even *= np.float32(0.5)
     taper = _edge_taper(n)
-    odd = (odd - odd.mean(axis=1, keepdims=True)) * taper
-    even = (even - even.mean(axis=1, keepdims=True)) * taper
-    spec_odd = sfft.rfft(odd, axis=1)
-    spec_even = sfft.rfft(even, axis=1)
-    cross = np.einsum("ij,ij->j", spec_odd, spec_even.conj()).astype(np.complex128)
+    odd -= odd.mean(axis=1, keepdims=True)
+    odd *= taper
+    even -= even.mean(axis=1, keepdims=True)
+    even *= taper
+    spec = sfft.rfft(np.concatenate((odd, even)), axis=1)
+    k = odd.shape[0]
+    cross = np.einsum("ij,ij->j", spec[:k], spec[k:].conj()).astype(np.complex128)
     if n % 2 == 0:
         cross[-1] = 0.0  # the Nyquist term has no well-defined phase for a fractional shift
     if not np.any(np.abs(cross) > 0):
@@ -86,9 +91,12 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     return float(best)
 
 
+@functools.lru_cache(maxsize=8)
 def _edge_taper(n: int) -> np.ndarray:
     """Tukey window (25 % cosine edges) so the jump between a row's two ends does not pull the peak to 0."""
-    return signal.windows.tukey(n, alpha=0.25).astype(np.float32)
+    taper = signal.windows.tukey(n, alpha=0.25).astype(np.float32)
+    taper.setflags(write=False)  # shared between calls
+    return taper
 
 
 def _refine_peak(cross: np.ndarray, n: int, centre: float, *, half_width: float, step: float) -> float:
@@ -96,12 +104,17 @@ def _refine_peak(cross: np.ndarray, n: int, centre: float, *, half_width: float,
 
     ``c(s) = Re[C_0 + 2 * sum_{k>=1} C_k exp(2 pi i k s / n)]`` from the half spectrum ``C`` of a real signal.
     """
-    shifts = centre + step * np.arange(-round(half_width / step), round(half_width / step) + 1)
-    k = np.arange(cross.size)
-    weights = np.full(cross.size, 2.0)
-    weights[0] = 1.0
-    kernel = np.exp(2j * np.pi * np.outer(shifts, k) / n)
-    values = (kernel @ (weights * cross)).real
+    h = round(half_width / step)
+    shifts = centre + step * np.arange(-h, h + 1)
+    weighted = 2.0 * cross
+    weighted[0] = cross[0]
+    # exp(2 pi i k s / n) on the grid: the first point's phases, then rotated by one step at a time
+    k = (2j * np.pi / n) * np.arange(cross.size)
+    kernel = np.empty((shifts.size, cross.size), dtype=np.complex128)
+    kernel[0] = np.exp(k * shifts[0])
+    kernel[1:] = np.exp(k * step)
+    np.cumprod(kernel, axis=0, out=kernel)
+    values = (kernel @ weighted).real
     i = int(np.argmax(values))
     if 0 < i < values.size - 1:  # parabolic interpolation between the finest grid points
         y0, y1, y2 = values[i - 1], values[i], values[i + 1]

@@ -12,7 +12,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import ndimage
 
-from qcmon.metrics._imageops import as_image, as_stack, auto_bin, bin_image, finite_float32, shift_integer
+from qcmon.metrics._imageops import add_shifted, as_image, as_stack, auto_bin, bin_image, finite_float32, shift_integer
 from qcmon.metrics.registration import ShiftEstimator
 
 __all__ = ["RunningMean", "ZEstimator", "ZResult"]
@@ -174,37 +174,45 @@ class RunningMean:
     """Motion-corrected mean of the last ``K`` frames, in constant memory.
 
     Each frame is moved back onto the reference grid by its measured shift rounded to whole pixels (edge pixels
-    repeated) and kept in a ring buffer of ``K`` images (as they are for integer pixels of up to 16 bits, else
-    float32); the sum is updated by adding the new frame and subtracting the one that leaves. For such integer
-    frames the float32 sum is exact (``K`` up to 256); otherwise it is recomputed from the buffer once per cycle
-    so rounding cannot accumulate. Whole-pixel shifts cost one copy; the residual (at most 0.5 px, 0.29 px RMS for uniformly
-    spread shifts) blurs the mean far less than the optical point-spread function (several px), which is what
-    limits the z and focus measures made from it, whereas interpolating every frame would cost more than the
+    repeated) and added into the float32 sum of the current *block* of ``block`` frames. A ring of ``K / block``
+    block sums holds the window: when a block begins, it takes the place of the oldest. The mean is therefore
+    over exactly the last ``K`` frames whenever a block has just been completed (the number of frames pushed is a
+    multiple of ``block``; always, with ``block=1``), and over the last ``K - block + j`` frames when ``j`` frames
+    of the current block are in. For integer frames of up to 16 bits every float32 sum is exact (``K`` up to
+    256), so no rounding can accumulate.
+
+    A frame costs one shifted addition into its block's sum: there is no copy of the frame and no subtraction
+    of a frame leaving the window, and the few block sums stay in the processor's caches. Whole-pixel shifts
+    leave a residual of at most 0.5 px (0.29 px RMS for uniformly spread shifts; with ``even_rows``, 1 px and
+    0.58 px along the columns), which blurs the mean far less than the optical point-spread function (several px)
+    that limits the z and focus measures made from it; interpolating every frame would cost more than the
     registration itself.
 
     Parameters
     ----------
     K : int
         Number of frames averaged (>= 1).
+    block : int, optional
+        Frames per block; must divide ``K``. Default 1.
+    even_rows : bool, optional
+        Round the row shift to an even number of rows, so that every row keeps its parity: the lines of the two
+        scan directions of a bidirectionally scanned frame stay apart, and the line offset can be measured on the
+        mean (:func:`qcmon.metrics.line_offset.line_offset_px`). Default False.
     """
 
-    def __init__(self, K: int):
+    def __init__(self, K: int, *, block: int = 1, even_rows: bool = False):
         if isinstance(K, bool) or not isinstance(K, (int, np.integer)) or K < 1:
             raise ValueError(f"K must be a positive integer, got {K!r}")
+        if isinstance(block, bool) or not isinstance(block, (int, np.integer)) or block < 1 or K % block:
+            raise ValueError(f"block must be a positive integer that divides K={K}, got {block!r}")
         self.K = int(K)
-        self._buf: np.ndarray | None = None
-        self._sum: np.ndarray | None = None
-        self._exact = False
-        self._next = 0
+        self.block = int(block)
+        self.even_rows = bool(even_rows)
+        self._ring: np.ndarray | None = None  # (K / block, M, N) float32 block sums
+        self._frames = np.zeros(self.K // self.block, dtype=np.int64)  # frames in each block sum
+        self._slot = 0  # the block being filled
+        self._in_block = 0  # frames in it so far
         self.count = 0
-
-    def _allocate(self, arr: np.ndarray) -> None:
-        # Integer frames of at most 16 bits are kept as they are (half the memory traffic of float32) and summed
-        # in float32, which holds every sum of up to 256 such values exactly: no rounding can accumulate.
-        dt = arr.dtype
-        self._exact = dt.kind in "ui" and dt.itemsize <= 2 and self.K * 2 ** (8 * dt.itemsize) <= 2 ** 24
-        self._buf = np.zeros((self.K, *arr.shape), dtype=dt if self._exact else np.float32)
-        self._sum = np.zeros(arr.shape, dtype=np.float32)
 
     def push(self, frame, dy_px: float = 0.0, dx_px: float = 0.0) -> None:
         """Add a frame whose content is shifted by (``dy_px``, ``dx_px``) px against the reference.
@@ -213,14 +221,10 @@ class RunningMean:
         replaced by the frame's finite mean; a frame with no finite pixel is skipped (with a UserWarning).
         """
         arr = as_image(frame, "frame", min_size=1)
-        if self._buf is None:
-            self._allocate(arr)
-        elif arr.shape != self._buf.shape[1:]:
-            raise ValueError(f"frame has shape {arr.shape}, expected {self._buf.shape[1:]} like the earlier frames")
-        if self._exact and arr.dtype != self._buf.dtype:
-            # another pixel type than the first frame's: keep floats from now on
-            self._buf = self._buf.astype(np.float32)
-            self._exact = False
+        if self._ring is None:
+            self._ring = np.zeros((len(self._frames), *arr.shape), dtype=np.float32)
+        elif arr.shape != self._ring.shape[1:]:
+            raise ValueError(f"frame has shape {arr.shape}, expected {self._ring.shape[1:]} like the earlier frames")
         if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(arr).all():
             finite = np.isfinite(arr)
             if not finite.any():
@@ -228,26 +232,38 @@ class RunningMean:
                               stacklevel=2)
                 return
             arr = np.where(finite, arr, arr[finite].mean())
-        dy = int(round(dy_px)) if math.isfinite(dy_px) else 0
+        if self.even_rows:
+            dy = 2 * int(round(dy_px / 2)) if math.isfinite(dy_px) else 0
+        else:
+            dy = int(round(dy_px)) if math.isfinite(dy_px) else 0
         dx = int(round(dx_px)) if math.isfinite(dx_px) else 0
-        slot = self._buf[self._next]
-        if self.count >= self.K:
-            np.subtract(self._sum, slot, out=self._sum)
-        shift_integer(arr, dy, dx, slot)
-        np.add(self._sum, slot, out=self._sum)
-        self._next = (self._next + 1) % self.K
+        k = self._slot
+        if self._in_block == 0:  # a new block: it takes the place of the oldest
+            shift_integer(arr, dy, dx, self._ring[k])
+            self._frames[k] = 1
+        else:
+            add_shifted(arr, dy, dx, self._ring[k])
+            self._frames[k] += 1
+        self._in_block += 1
         self.count += 1
-        if self._next == 0 and not self._exact:
-            np.sum(self._buf, axis=0, dtype=np.float32, out=self._sum)
+        if self._in_block == self.block:
+            self._slot = (k + 1) % len(self._frames)
+            self._in_block = 0
 
     @property
     def n_frames(self) -> int:
-        """Frames currently averaged (min(count, K))."""
-        return min(self.count, self.K)
+        """Frames in the current mean."""
+        return int(self._frames.sum())
 
     @property
     def mean(self) -> np.ndarray:
         """The current mean, (M, N) float32 (a new array). Raises ValueError before the first frame."""
-        if self._sum is None:
+        n = self.n_frames
+        if self._ring is None or n == 0:
             raise ValueError("RunningMean has no frame yet: push a frame first")
-        return self._sum / np.float32(self.n_frames)
+        used = np.flatnonzero(self._frames)
+        total = self._ring[used[0]].copy()
+        for k in used[1:]:
+            total += self._ring[k]
+        total /= np.float32(n)
+        return total
