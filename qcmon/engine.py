@@ -41,9 +41,10 @@ NAN = math.nan
 #: enter: a relative standard error of about 0.6 % (see :func:`~qcmon.metrics.noise.immerkaer_sigma`) at a cost
 #: that does not grow with the frame (k = 8 at 512², 1 at 256² and below).
 _NOISE_PIXELS = 32768
-#: ``line_offset_px`` uses every 4th odd row of the running mean (a quarter of the row FFTs; the mean of 30 frames
-#: leaves its precision far below what the threshold profiles resolve).
-_LINE_ROW_STEP = 4
+#: ``line_offset_px`` uses every k-th odd row of the running mean, k chosen so that about this many odd rows enter
+#: (k = 7 at 512 rows, 1 up to 128): on the mean of 30 frames its precision stays far below what the threshold
+#: profiles resolve, at a cost that does not grow with the frame.
+_LINE_ROWS = 36
 
 
 @dataclass(slots=True)
@@ -147,6 +148,7 @@ class _Stream:
     last_focus: tuple[float, float] = (NAN, NAN)
     focus_bin: int = 1
     noise_row_step: int = 1
+    line_row_step: int = 1
     reference_binned: np.ndarray | None = None
     last_line_offset: float = NAN
     t0: float = NAN
@@ -298,6 +300,7 @@ class Engine:
         st.focus_bin = 2 if min(st.reference.shape) < 256 else 4
         h, w = st.reference.shape
         st.noise_row_step = max(1, round((h - 2) * (w - 2) / _NOISE_PIXELS))
+        st.line_row_step = max(1, ((h - 1) // 2) // _LINE_ROWS)
         st.reference_binned = bin_image(st.reference, st.focus_bin)
         if s.zstack is not None:
             if s.zstack.shape[1:] != st.reference.shape:
@@ -364,14 +367,17 @@ class Engine:
             st.t0 = t
         row["time_s"] = t
 
-        # Integer frames whose sides the registration's binning divides: the binned frame (float32, exact sums of
-        # integers below 2**24) serves the registration and gives the exact frame mean in one pass over the pixels.
+        # The metrics that read the frame's pixels come first, one after the other, while the pixels are in the
+        # processor's caches. Integer frames whose sides the registration's binning divides: the binned frame
+        # (float32, exact sums of integers below 2**24) serves the registration and gives the exact frame mean.
         binned = None
         if img.dtype.kind in "ui" and motion is None:
             factor = st.shift.bin_factor
             if (img.shape[0] % factor == 0 and img.shape[1] % factor == 0
                     and factor * factor * int(np.iinfo(img.dtype).max) < 2 ** 24):
                 binned = bin_image(img, factor)
+        sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
+        sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
             if binned is not None:
@@ -408,7 +414,7 @@ class Engine:
                     st.last_z = (zr.z_um, zr.corr)
                 # Line offset is a property of the scanner, not of one frame: it is measured on the running mean,
                 # whose frames were moved by whole, even numbers of rows (the two scan directions' rows stay apart).
-                st.last_line_offset = line_offset_px(mean_img, row_step=_LINE_ROW_STEP)
+                st.last_line_offset = line_offset_px(mean_img, row_step=st.line_row_step)
             row["focus_corr"], row["focus_measure"] = st.last_focus
             row["z_um"], row["z_corr"] = st.last_z
             row["line_offset_px"] = st.last_line_offset
@@ -419,9 +425,7 @@ class Engine:
             b = st.brightness.update(t, mean_f)
             row.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
                        bleach_pct_per_min=b.bleach_pct_per_min)
-            sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
             row.update(saturated_frac=sat, clipped_frac=clip)
-            sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
             if st.prev is not None:

@@ -12,8 +12,6 @@ from pathlib import Path
 from typing import Mapping, Sequence
 
 import numpy as np
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
 from qcmon.events import SYMBOLS, Event
 from qcmon.summary import GROUPS, _periods, _streams
@@ -21,8 +19,9 @@ from qcmon.thresholds import Profile
 
 __all__ = ["envelope", "write_report", "report_html"]
 
-#: Points per trace above which a plot shows a min/max envelope instead of every frame.
-MAX_POINTS = 2000
+#: Points per trace above which a plot shows a min/max envelope instead of every frame (the plots are 855 px wide:
+#: more points than pixel columns only cost drawing time).
+MAX_POINTS = 800
 
 #: (title, columns, scale for display, display unit). Fractions are shown as % (files keep 0..1).
 _PANELS: tuple[tuple[str, tuple[str, ...], float, str], ...] = (
@@ -89,7 +88,9 @@ def envelope(x: np.ndarray, y: np.ndarray, *, max_points: int = MAX_POINTS
     return x[starts], lo, hi, mean
 
 
-def _png(fig: Figure) -> str:
+def _png(fig) -> str:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
     FigureCanvasAgg(fig)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90)
@@ -103,7 +104,10 @@ def _panel(traces, streams, events, profile: Profile, title, columns, scale, uni
     lim = profile.limits.get(col)
     unit = unit or (lim.unit if lim is not None else "") or ("px" if col.endswith("_px") else
                                                              "µm" if col.endswith("_um") else "")
-    fig = Figure(figsize=(9.5, 2.3), layout="constrained")
+    from matplotlib.figure import Figure  # matplotlib takes a while to load: only when a report is drawn
+
+    fig = Figure(figsize=(9.5, 2.3))
+    fig.subplots_adjust(left=0.075, right=0.99, bottom=0.21, top=0.95)  # fixed margins: no layout solver per plot
     ax = fig.add_subplot()
     t_all = np.asarray(traces["time_s"], float)
     values = np.asarray(traces[col], float) * scale

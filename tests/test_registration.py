@@ -275,3 +275,15 @@ def test_accuracy_on_simulated_session(photons, target):
     built = ShiftEstimator(build_reference(frames[:20], iterations=2))
     rel = np.array([built.estimate(f)[:2] for f in frames]) - truth
     assert rms(rel - np.median(rel, axis=0)) <= 1.5 * target
+
+
+@pytest.mark.parametrize("sym", [True, False])
+@pytest.mark.parametrize("n", [1, 2, 3, 8, 64, 255, 256, 512])
+@pytest.mark.parametrize("alpha", [0.1, 0.25, 0.5, 0.9])
+def test_tukey_window_equals_scipy(n, alpha, sym):
+    # Reference library: scipy.signal.windows.tukey (qcmon keeps its own to avoid loading scipy.signal at start).
+    from scipy.signal import windows
+
+    from qcmon.metrics._imageops import tukey_window
+
+    assert_allclose(tukey_window(n, alpha, sym=sym), windows.tukey(n, alpha, sym=sym), rtol=0, atol=1e-15)

@@ -70,6 +70,24 @@ def auto_bin(shape: tuple[int, int], target: int = 256) -> int:
     return max(1, int(max(shape)) // int(target))
 
 
+def tukey_window(n: int, alpha: float, *, sym: bool = True) -> np.ndarray:
+    """Tukey (tapered cosine) window of ``n`` points, float64: flat, with cosine tapers over ``alpha`` of it.
+
+    The same values as ``scipy.signal.windows.tukey(n, alpha, sym)`` for 0 < ``alpha`` < 1 (``sym=False``: the
+    periodic window, for spectral analysis), without importing :mod:`scipy.signal`, which takes seconds to load
+    and would delay every qcmon command's start.
+    """
+    if n <= 1:
+        return np.ones(max(n, 0))
+    m = n if sym else n + 1
+    k = np.arange(m, dtype=np.float64)
+    width = int(np.floor(alpha * (m - 1) / 2.0))
+    w = np.ones(m)
+    w[:width + 1] = 0.5 * (1 + np.cos(np.pi * (-1 + 2.0 * k[:width + 1] / alpha / (m - 1))))
+    w[m - width - 1:] = 0.5 * (1 + np.cos(np.pi * (-2.0 / alpha + 1 + 2.0 * k[m - width - 1:] / alpha / (m - 1))))
+    return w if sym else w[:-1]
+
+
 def bin_image(image: np.ndarray, factor: int) -> np.ndarray:
     """Sum ``factor`` x ``factor`` blocks into float32 (trailing rows/columns that do not fill a block are dropped)."""
     if factor == 1:

@@ -167,7 +167,8 @@ class BrightnessTracker:
         slope = math.nan
         if len(self._window) >= max(3, self._window.maxlen // 2) and self.initial_f > 0:
             tw, bw = np.array(self._window).T
-            slope_per_s = np.polynomial.polynomial.polyfit(tw - tw.mean(), bw, 1)[1]
+            tw = tw - tw.mean()
+            slope_per_s = np.dot(tw, bw - bw.mean()) / np.dot(tw, tw)  # least-squares slope, closed form
             slope = 100.0 * 60.0 * slope_per_s / self.initial_f
         self._state = BrightnessState(baseline, pct, float(slope))
 

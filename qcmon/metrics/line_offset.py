@@ -8,8 +8,8 @@ import warnings
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import signal
 
+from qcmon.metrics._imageops import tukey_window
 from qcmon.metrics._validate import as_image, positive_int
 
 __all__ = ["line_offset_px"]
@@ -94,7 +94,7 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
 @functools.lru_cache(maxsize=8)
 def _edge_taper(n: int) -> np.ndarray:
     """Tukey window (25 % cosine edges) so the jump between a row's two ends does not pull the peak to 0."""
-    taper = signal.windows.tukey(n, alpha=0.25).astype(np.float32)
+    taper = tukey_window(n, 0.25).astype(np.float32)
     taper.setflags(write=False)  # shared between calls
     return taper
 

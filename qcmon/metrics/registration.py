@@ -12,10 +12,8 @@ from typing import NamedTuple
 import numpy as np
 import scipy.fft as sfft
 from scipy import ndimage
-from scipy.signal import windows
-from scipy.stats import trim_mean
 
-from qcmon.metrics._imageops import as_image, auto_bin, bin_image, finite_float32
+from qcmon.metrics._imageops import as_image, auto_bin, bin_image, finite_float32, tukey_window
 
 __all__ = ["ShiftEstimator", "ShiftResult", "build_reference"]
 
@@ -45,8 +43,8 @@ _NAN_RESULT = ShiftResult(math.nan, math.nan, math.nan)
 
 
 def _tukey2d(shape: tuple[int, int], alpha: float) -> np.ndarray:
-    wr = windows.tukey(shape[0], alpha, sym=False).astype(np.float32)
-    wc = windows.tukey(shape[1], alpha, sym=False).astype(np.float32)
+    wr = tukey_window(shape[0], alpha, sym=False).astype(np.float32)
+    wc = tukey_window(shape[1], alpha, sym=False).astype(np.float32)
     return np.outer(wr, wc)
 
 
@@ -457,6 +455,8 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
             # content moved by +d: the aligned image is frame(x + d)
             ndimage.shift(data[t], (-shifts[t, 0], -shifts[t, 1]), output=aligned[t], order=order, mode="nearest")
         if trim > 0 and order == 3:
+            from scipy.stats import trim_mean  # scipy.stats takes a while to load: only when a reference is built
+
             ref = trim_mean(aligned, trim, axis=0).astype(np.float32)
         else:  # an intermediate reference: the plain mean is enough to measure shifts against
             ref = aligned.mean(axis=0)

@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import lfilter
 
 from qcmon.simulate._config import SimConfig
 
@@ -45,6 +44,8 @@ def _ou(n: int, dt: float, tau: float, sigma: float, rng: np.random.Generator) -
     noise = rng.standard_normal(n) * sigma * np.sqrt(1.0 - a * a)
     noise[0] = 0.0
     # x[k] = a x[k-1] + e[k]  — a first-order IIR filter
+    from scipy.signal import lfilter  # scipy.signal takes seconds to load: only when a session is simulated
+
     return lfilter([1.0], [1.0, -a], noise)
 
 
