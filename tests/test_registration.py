@@ -287,3 +287,15 @@ def test_tukey_window_equals_scipy(n, alpha, sym):
     from qcmon.metrics._imageops import tukey_window
 
     assert_allclose(tukey_window(n, alpha, sym=sym), windows.tukey(n, alpha, sym=sym), rtol=0, atol=1e-15)
+
+
+def test_reference_trimmed_mean_equals_scipy():
+    # Reference library: scipy.stats.trim_mean over the aligned frames. Frames that do not move (all shifts 0 after
+    # re-centring) are aligned as they are, so build_reference's last pass must equal trim_mean of the frames.
+    from scipy.stats import trim_mean
+
+    rng = np.random.default_rng(21)
+    field = make_field((96, 96), rng)
+    frames = np.stack([expose(field, 20.0, rng).astype(np.float32) for _ in range(30)])
+    frames[5] += 4000.0  # an outlier frame: the trimmed mean leaves it out
+    assert_allclose(build_reference(frames, iterations=1, trim=0.1), trim_mean(frames, 0.1, axis=0), rtol=1e-6)

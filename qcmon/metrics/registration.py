@@ -11,9 +11,8 @@ from typing import NamedTuple
 
 import numpy as np
 import scipy.fft as sfft
-from scipy import ndimage
 
-from qcmon.metrics._imageops import as_image, auto_bin, bin_image, finite_float32, tukey_window
+from qcmon.metrics._imageops import as_image, auto_bin, bin_image, finite_float32, shift_integer, tukey_window
 
 __all__ = ["ShiftEstimator", "ShiftResult", "build_reference"]
 
@@ -398,10 +397,12 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
     """Motion-corrected reference image from the first frames of a session.
 
     Starts from the plain mean of ``frames``; then, ``iterations`` times, measures each frame's shift against
-    the current reference (:class:`ShiftEstimator`), moves every frame back by its subpixel shift (cubic spline
-    in the last pass, linear interpolation in the earlier ones; edges repeated) and takes a trimmed mean over the
-    frames (the plain mean in the earlier passes). The shifts are re-centred on their median, so the
-    reference sits at the median position of the frames, not at whichever frame came first.
+    the current reference (:class:`ShiftEstimator`), moves every frame back and averages. The earlier passes
+    only give the next one a better reference to measure shifts against: they move frames by whole pixels and take
+    the plain mean. The last pass moves every frame by its subpixel shift with the Fourier shift theorem (on the
+    frame mirrored at its edges, so that content does not wrap around) and takes a trimmed mean. The shifts are
+    re-centred on their median, so the reference sits at the median position of the frames, not at whichever
+    frame came first.
 
     Parameters
     ----------
@@ -443,21 +444,45 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
     aligned = np.empty_like(data)
     for it in range(int(iterations)):
         est = ShiftEstimator(ref, upsample=upsample, bin_factor=bin_factor)
-        # Earlier passes only give the next pass a better reference to measure shifts against: linear
-        # interpolation (several times cheaper) is enough there; the returned reference uses the cubic spline.
-        order = 3 if it == int(iterations) - 1 else 1
+        last = it == int(iterations) - 1
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # a constant frame just stays where it is
             shifts = np.array([est.estimate(f)[:2] for f in data], dtype=np.float64)
         shifts = np.where(np.isfinite(shifts), shifts, np.nanmedian(shifts, axis=0))
         shifts -= np.median(shifts, axis=0)
-        for t in range(data.shape[0]):
-            # content moved by +d: the aligned image is frame(x + d)
-            ndimage.shift(data[t], (-shifts[t, 0], -shifts[t, 1]), output=aligned[t], order=order, mode="nearest")
-        if trim > 0 and order == 3:
-            from scipy.stats import trim_mean  # scipy.stats takes a while to load: only when a reference is built
-
-            ref = trim_mean(aligned, trim, axis=0).astype(np.float32)
-        else:  # an intermediate reference: the plain mean is enough to measure shifts against
+        if last:
+            _fourier_unshift(data, shifts, aligned)
+        else:
+            for t in range(data.shape[0]):
+                shift_integer(data[t], int(round(shifts[t, 0])), int(round(shifts[t, 1])), aligned[t])
+        if trim > 0 and last:
+            # trimmed mean, cutting int(trim * T) frames at each end as scipy.stats.trim_mean does (tested against
+            # it); a sort along the frames is faster here, and spares loading scipy.stats at start-up
+            cut = int(trim * aligned.shape[0])
+            ref = np.sort(aligned, axis=0)[cut:aligned.shape[0] - cut].mean(axis=0)
+        else:
             ref = aligned.mean(axis=0)
     return np.ascontiguousarray(ref, dtype=np.float32)
+
+
+def _fourier_unshift(data: np.ndarray, shifts: np.ndarray, out: np.ndarray) -> None:
+    """``out[t]`` = ``data[t]`` with its content moved back by ``shifts[t]`` (rows, columns; subpixel).
+
+    Fourier shift theorem (band-limited interpolation) on each frame mirrored at its edges (``numpy.pad``,
+    ``symmetric``) by a margin larger than the largest shift, so that no content wraps around; a few times
+    faster than a cubic spline (``scipy.ndimage.shift``) at 512 x 512 px.
+    """
+    _, m, n = data.shape
+    margin = max(16, math.ceil(float(np.max(np.abs(shifts)))) + 8)
+    pm = sfft.next_fast_len(m + 2 * margin, real=True)
+    pn = sfft.next_fast_len(n + 2 * margin, real=True)
+    top, left = (pm - m) // 2, (pn - n) // 2
+    pad = ((top, pm - m - top), (left, pn - n - left))
+    ky = sfft.fftfreq(pm)
+    kx = sfft.rfftfreq(pn)
+    for t in range(data.shape[0]):
+        spec = sfft.rfft2(np.pad(data[t], pad, mode="symmetric"))
+        # content moved by +d is moved back by -d: multiply by exp(+2 pi i k d)
+        spec *= np.exp((2j * np.pi * shifts[t, 0]) * ky).astype(np.complex64)[:, None]
+        spec *= np.exp((2j * np.pi * shifts[t, 1]) * kx).astype(np.complex64)[None, :]
+        out[t] = sfft.irfft2(spec, s=(pm, pn))[top:top + m, left:left + n]
