@@ -92,8 +92,9 @@ class ShiftEstimator:
     normalised cross-power spectrum ``C = G conj(F)`` (``G`` frame, ``F`` reference); the peak is refined to
     1/``upsample`` px by evaluating the inverse DFT on progressively finer grids around it with matrix
     multiplications, as in Guizar-Sicairos, Thurman & Fienup (2008), Opt. Lett. 33:156. Here the grid is
-    refined in stages of 5x over +-1 step of the previous stage (at 512 px, binned 2x: 8 → 1.6 → 0.32 → 0.064 →
-    0.05 original px), each stage an 11 x 11 (or smaller) grid; the DFT matrices of every stage are computed
+    refined in stages of 5x over +-1 step of the previous stage, the last stage straight to the final step (at
+    512 px, binned 2x: 8 → 1.6 → 0.32 → 0.05 original px), each stage a grid of at most 17 x 17 points (11 x 11,
+    11 x 11 and 15 x 15 here); the DFT matrices of every stage are computed
     once and only moved to the current peak by a phase ramp (looked up for the coarse peak, then the chosen row
     of the previous stage's matrix). All stages use the same weighted spectrum, so the refined peak is the
     maximum of one continuous surface.
@@ -259,7 +260,7 @@ class ShiftEstimator:
         def schedule(step: float) -> list[tuple[int, float]]:
             out = []
             while step > fin * (1 + 1e-9):
-                if step / 5 > fin:
+                if step / fin > 8:  # else one last stage straight to the final step (up to 17 points)
                     out.append((5, step / 5))
                     step /= 5
                 else:
