@@ -40,7 +40,16 @@ def engine_fps(frames: np.ndarray, n: int) -> float:
         return n / (time.perf_counter() - t0)
 
 
+def warm(path: Path) -> None:
+    """Read the file once, so that it is in the page cache (some virtual machines page out idle file pages within
+    seconds: warmed right before each timed run, the reads measure qcmon, not the disk)."""
+    with open(path, "rb") as f:
+        while f.read(1 << 24):
+            pass
+
+
 def summarize_fps(path: Path, out: Path, workers: int, n: int) -> float:
+    warm(path)
     exe = Path(sys.executable).with_name("qcmon")
     t0 = time.perf_counter()
     subprocess.run([str(exe), "summarize", str(path), "--out", str(out), "--frame-rate", "30", "--bit-depth", "12",
@@ -60,15 +69,15 @@ def main() -> None:
         with tifffile.TiffWriter(path, bigtiff=True) as tw:
             for i in range(args.frames):
                 tw.write(distinct[i % len(distinct)], contiguous=True)
-        # page cache warm for every reader alike
-        with open(path, "rb") as f:
-            while f.read(1 << 24):
-                pass
-        eng = engine_fps(distinct, args.frames)
+        # written to disk before anything is timed (the kernel's write-back would otherwise slow the first
+        # measurement); summarize_fps warms the page cache before each run
+        os.sync()
+        before = engine_fps(distinct, args.frames)
         one = summarize_fps(path, Path(tmp) / "out1", 1, args.frames)
         two = summarize_fps(path, Path(tmp) / "out2", 2, args.frames)
+        eng = max(before, engine_fps(distinct, args.frames))  # the faster of two runs: a conservative ratio
     print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores")
-    print(f"  engine alone (frames in memory, one core)   {eng:8.1f} frames/s")
+    print(f"  engine alone (frames in memory, one core)   {eng:8.1f} frames/s   (faster of a run before and after)")
     print(f"  qcmon summarize --workers 1                 {one:8.1f} frames/s   {one / eng:5.2f}× the engine")
     print(f"  qcmon summarize --workers 2                 {two:8.1f} frames/s   {two / one:5.2f}× one process")
 
