@@ -94,10 +94,9 @@ class ShiftEstimator:
     multiplications, as in Guizar-Sicairos, Thurman & Fienup (2008), Opt. Lett. 33:156. Here the grid is
     refined in stages of 5x over +-1 step of the previous stage, the last stage straight to the final step (at
     512 px, binned 2x: 8 → 1.6 → 0.32 → 0.05 original px), each stage a grid of at most 17 x 17 points (11 x 11,
-    11 x 11 and 15 x 15 here); the DFT matrices of every stage are computed
-    once and only moved to the current peak by a phase ramp (looked up for the coarse peak, then the chosen row
-    of the previous stage's matrix). All stages use the same weighted spectrum, so the refined peak is the
-    maximum of one continuous surface.
+    11 x 11 and 15 x 15 here). The DFT matrices of every stage are computed once and only moved to the current
+    peak by a phase ramp (looked up for the coarse peak, then the chosen row of the previous stage's matrix).
+    All stages use the same weighted spectrum, so the refined peak is the maximum of one continuous surface.
 
     *Low-pass band.* Only the lowest half of the (binned) frequencies along each axis is used for the
     refinement: every DFT stage sums over that band only. At the photon counts of calcium imaging the discarded
