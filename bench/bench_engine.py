@@ -121,7 +121,6 @@ def main() -> int:
         for size in (256, 512, 1024):
             frames, truth = make_frames(size, n if size < 1024 else n // 2)
             run_engine(frames[:40])  # warm caches and imports
-            frames_all = frames
             dt_q, rows, startup = run_engine(frames)
             dy = np.array([r["dy_px"] for r in rows])
             dx = np.array([r["dx_px"] for r in rows])

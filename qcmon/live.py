@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import queue
 import shlex
 import subprocess
@@ -24,7 +23,6 @@ from pathlib import Path
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from qcmon import __version__
 from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError
 from qcmon.events import Event

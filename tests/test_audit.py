@@ -22,7 +22,7 @@ from qcmon.audit import (
     register_references, reusable, run_audit, session_date,
 )
 from qcmon.audit._chronic import chronic_table
-from qcmon.audit._measure import build_manifest, manifest_path, measure_session, profile_fingerprint
+from qcmon.audit._measure import build_manifest, manifest_path, profile_fingerprint
 from qcmon.audit._write import CHRONIC_COLUMNS, sparkline, write_csv, write_html
 
 

@@ -19,7 +19,6 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-import pytest
 import tifffile
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st

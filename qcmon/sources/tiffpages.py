@@ -21,7 +21,6 @@ import os
 import struct
 from dataclasses import dataclass
 
-import numpy as np
 import tifffile
 
 from qcmon.errors import FrameError, NotReadyError
@@ -246,7 +245,6 @@ class TiffStream:
         with open(self.path, "rb") as fh:  # read-only, closed on return
             st = os.fstat(fh.fileno())  # taken before reading: a change after this is seen next time
             size = st.st_size
-            tif = None
             at_end = False
             try:
                 if self.header is None:
