@@ -37,7 +37,7 @@ def test_chunks_cover_the_session_once_and_balance_the_work(n, workers):
 
 @pytest.mark.parametrize("first", [400, 401, 409, 1234, 5000])
 def test_warm_start_keeps_the_recomputation_points(first):
-    # the engine recomputes focus and z when its count of measured frames is a multiple of z_every; a copy that
+    # the engine recomputes focus and z at a fixed phase of its count of measured frames modulo z_every; a copy that
     # has measured 30 reference frames and starts at s counts 30 + (t - s) at time point t
     s = warm_start(first, measured=30, z_every=10, warm_up=300)
     assert first - 310 < s <= first - 300

@@ -306,3 +306,10 @@ def test_running_mean_with_even_rows_keeps_the_line_offset():
         mixed.push(frame, dy, 0.0)
     assert abs(line_offset_px(kept.mean) - 1.3) < 0.1
     assert abs(line_offset_px(mixed.mean) - 1.3) > 0.3
+
+
+def test_add_shifted_refuses_an_output_it_cannot_write_through_a_flat_view():
+    from qcmon.metrics._imageops import add_shifted
+
+    with pytest.raises(ValueError, match="C-contiguous"):
+        add_shifted(np.ones((4, 6), np.uint16), 1, 1, np.zeros((6, 4), np.float32).T)

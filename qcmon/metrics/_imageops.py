@@ -130,14 +130,16 @@ def shift_integer(src: np.ndarray, dy: int, dx: int, out: np.ndarray) -> np.ndar
 def add_shifted(src: np.ndarray, dy: int, dx: int, out: np.ndarray) -> np.ndarray:
     """Add ``src`` moved as in :func:`shift_integer` to ``out`` in place, without an intermediate copy.
 
-    ``out[r, c] += src[r + dy, c + dx]``, the edge pixels of ``src`` repeated outside it. ``src`` and ``out`` are
-    C-contiguous arrays of the same shape.
+    ``out[r, c] += src[r + dy, c + dx]``, the edge pixels of ``src`` repeated outside it. ``out`` must be
+    C-contiguous (it is written through a flat view), of ``src``'s shape.
 
     The rows that have a source row are added in one pass over the flattened arrays, offset by ``dy * N + dx``
     (a contiguous addition; a 2-D slice with a column offset is several times slower). That pass adds, in the
     ``|dx|`` columns at one side, pixels of the neighbouring source row; those columns are kept aside before it and
     given their edge pixel after it.
     """
+    if out.shape != src.shape or not out.flags.c_contiguous:
+        raise ValueError(f"out must be a C-contiguous array of the source's shape {src.shape}")  # flat view below
     m, n = src.shape
     dy = min(max(int(dy), -(m - 1)), m - 1)
     dx = min(max(int(dx), -(n - 1)), n - 1)
