@@ -26,7 +26,8 @@ COLUMNS: tuple[Column, ...] = (
     Column("z_um", "µm", "focal-plane offset from its position at the start, + deeper; blank without a z-stack"),
     Column("z_corr", "", "correlation of the running mean with the best-matching stack plane"),
     Column("focus_corr", "", "correlation of the motion-corrected running mean with the reference (1 = unchanged)"),
-    Column("focus_measure", "", "normalised variance of the Laplacian of the running mean (sharpness)"),
+    Column("focus_measure", "", "normalised variance of the Laplacian of the running mean (sharpness), at the "
+           "registration's binning (2×2 px at 512², 4×4 at 1024²)"),
     Column("mean_f", "DN", "mean pixel value above the dark level"),
     Column("baseline_f", "DN", "slow robust baseline of mean_f that neural activity does not move"),
     Column("brightness_pct", "%", "baseline_f as percent of the initial baseline"),

@@ -1,7 +1,8 @@
 """The measurement engine: frames in, one row of QC numbers per frame out.
 
 The engine keeps a small, explicit state per (channel, plane) *stream* — a reference image, the motion estimator,
-a motion-corrected running mean, optional reference z-stack, brightness history and photon-transfer accumulators —
+motion-corrected running means (of the binned frames, for focus and z; of the rows the line offset reads),
+optional reference z-stack, brightness history and photon-transfer accumulators —
 and turns each :class:`~qcmon.frames.Frame` into a row (a ``dict`` keyed by :data:`qcmon.columns.NAMES`).
 Memory does not grow with the session: every accumulator is bounded.
 
@@ -29,7 +30,7 @@ from qcmon.frames import Frame
 from qcmon.metrics.brightness import BrightnessTracker
 from qcmon.metrics._imageops import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
-from qcmon.metrics.line_offset import line_offset_px
+from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
 from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level
 from qcmon.metrics.registration import ShiftEstimator, build_reference
@@ -69,7 +70,7 @@ class EngineSettings:
     reference_frames : int
         Frames used to build the reference.
     running_mean_frames : int
-        Frames in the motion-corrected running mean used for focus and z.
+        Frames in the motion-corrected running means used for focus, z and the line offset.
     z_every : int
         Frames between two z / focus / line-offset estimates (the value is carried between estimates).
     upsample : int
@@ -134,6 +135,7 @@ class _Stream:
     shift: ShiftEstimator | None = None
     reference: np.ndarray | None = None
     running: RunningMean | None = None
+    line_mean: RunningMean | None = None
     zest: ZEstimator | None = None
     brightness: BrightnessTracker | None = None
     ptc: PhotonTransfer | None = None
@@ -292,21 +294,28 @@ class Engine:
             max_shift = s.max_shift_px or min(st.reference.shape) / 4
             st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                       max_shift_px=max_shift)
-        # Block sums of gcd(running_mean_frames, z_every) frames: at every estimate the mean is over exactly the
-        # last running_mean_frames frames. Even row shifts keep the scan lines' parity for the line offset.
-        st.running = RunningMean(s.running_mean_frames, block=math.gcd(s.running_mean_frames, s.z_every),
-                                 even_rows=True)
-        # focus correlation on binned images: shot noise averages out, cell-sized structure (≥ 8 px) stays
-        st.focus_bin = 2 if min(st.reference.shape) < 256 else 4
+        # Two running means in block sums of gcd(running_mean_frames, z_every) frames (at every estimate each is
+        # over exactly the last running_mean_frames frames): the frame binned as for the registration, for focus
+        # and z, which need no finer sampling (their correlations bin further; the sharpness is of cell-sized
+        # detail), and the rows the line offset reads, at full resolution and moved by even numbers of rows so
+        # that the two scan directions' lines stay apart.
+        b = st.shift.bin_factor
+        block = math.gcd(s.running_mean_frames, s.z_every)
         h, w = st.reference.shape
         st.noise_row_step = max(1, round((h - 2) * (w - 2) / _NOISE_PIXELS))
         st.line_row_step = max(1, ((h - 1) // 2) // _LINE_ROWS)
+        st.running = RunningMean(s.running_mean_frames, block=block)
+        st.line_mean = RunningMean(s.running_mean_frames, block=block, even_rows=True,
+                                   rows=np.concatenate(line_rows(h, row_step=st.line_row_step)))
+        # focus correlation on binned images: shot noise averages out, cell-sized structure (≥ 8 px) stays
+        st.focus_bin = b * max(1, (2 if min(h, w) < 256 else 4) // b)
         st.reference_binned = bin_image(st.reference, st.focus_bin)
         if s.zstack is not None:
             if s.zstack.shape[1:] != st.reference.shape:
                 raise FrameError(f"z-stack planes are {s.zstack.shape[1]}×{s.zstack.shape[2]} but frames are "
                                  f"{st.reference.shape[0]}×{st.reference.shape[1]}")
-            st.zest = ZEstimator(s.zstack, z_step_um=s.z_step_um, reference=st.reference)
+            st.zest = ZEstimator(np.stack([bin_image(p, b) for p in s.zstack]), z_step_um=s.z_step_um,
+                                 reference=bin_image(st.reference, b))
         st.new_reference_requested = False
         st.prev = None
         rows: list[dict] = []
@@ -368,22 +377,22 @@ class Engine:
         row["time_s"] = t
 
         # The metrics that read the frame's pixels come first, one after the other, while the pixels are in the
-        # processor's caches. Integer frames whose sides the registration's binning divides: the binned frame
-        # (float32, exact sums of integers below 2**24) serves the registration and gives the exact frame mean.
-        binned = None
-        if img.dtype.kind in "ui" and motion is None:
-            factor = st.shift.bin_factor
-            if (img.shape[0] % factor == 0 and img.shape[1] % factor == 0
-                    and factor * factor * int(np.iinfo(img.dtype).max) < 2 ** 24):
-                binned = bin_image(img, factor)
+        # processor's caches. The frame binned as for the registration serves the running mean of focus and z;
+        # for integer frames whose sides the binning divides (float32, exact sums of integers below 2**24) it
+        # also serves the registration and gives the exact frame mean.
+        factor = st.shift.bin_factor
+        binned = bin_image(img, factor)
+        exact = (img.dtype.kind in "ui" and img.shape[0] % factor == 0 and img.shape[1] % factor == 0
+                 and factor * factor * int(np.iinfo(img.dtype).max) < 2 ** 24)
         sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
         sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
-            if binned is not None:
+            if exact:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw = total / img.size
-                res = st.shift.estimate_binned(binned, mean=total / binned.size)
+                if motion is None:
+                    res = st.shift.estimate_binned(binned, mean=total / binned.size)
             else:
                 mean_raw = float(np.add.reduce(img, axis=None, dtype=np.float64)) / img.size
                 if motion is None:
@@ -400,21 +409,25 @@ class Engine:
             if s.pixel_size_um:
                 row["displacement_um"] = disp * s.pixel_size_um
 
-            # focus, z and line offset from a motion-corrected running mean, when a block of z_every frames is
+            # focus, z and line offset from the motion-corrected running means, when a block of z_every frames is
             # complete (and at each of the first z_every frames)
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
-            st.running.push(img, dy, dx)
+            st.running.push(binned, dy / factor, dx / factor)
+            st.line_mean.push(img, dy, dx)
             if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
                 mean_img = st.running.mean
                 if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
-                    st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin), st.reference_binned),
+                    st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin // factor), st.reference_binned),
                                      focus_measure(mean_img))
                 if st.zest is not None:
                     zr = st.zest.estimate(mean_img)
                     st.last_z = (zr.z_um, zr.corr)
-                # Line offset is a property of the scanner, not of one frame: it is measured on the running mean,
-                # whose frames were moved by whole, even numbers of rows (the two scan directions' rows stay apart).
-                st.last_line_offset = line_offset_px(mean_img, row_step=st.line_row_step)
+                # Line offset is a property of the scanner, not of one frame: it is measured on the running mean
+                # of the rows it reads, whose frames were moved by whole, even numbers of rows (the two scan
+                # directions' rows stay apart).
+                rows = st.line_mean.mean
+                k = rows.shape[0] // 3
+                st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
             row["focus_corr"], row["focus_measure"] = st.last_focus
             row["z_um"], row["z_corr"] = st.last_z
             row["line_offset_px"] = st.last_line_offset

@@ -69,3 +69,24 @@ def test_on_simulated_session():
     result = simulate(SimConfig(n_frames=12, line_offset_px=-1.7))
     estimates = [line_offset_px(page) for page in result.pages]
     assert abs(np.median(estimates) - result.truth["line_offset_px"][0]) < 0.1
+
+
+@pytest.mark.parametrize("shape, row_step", [((512, 300), 7), ((33, 64), 1), ((34, 64), 2), ((3, 16), 1)])
+def test_offset_from_its_rows_only_equals_the_whole_frame(shape, row_step):
+    # line_offset_rows is line_offset_px on the rows line_rows names: the same value, to the last bit (the
+    # reference is line_offset_px itself, whose accuracy the tests above check against planted offsets).
+    from qcmon.metrics.line_offset import line_offset_rows, line_rows
+
+    rng = np.random.default_rng(shape[0])
+    lam = bidirectional_field(shape, 1.3, mean_photons=3.0, rng=rng)
+    frame = expose(lam, gain=12.0, dark=200.0, read_noise=3.0, rng=rng)
+    above, odd, below = line_rows(shape[0], row_step=row_step)
+    assert np.array_equal(odd - above, np.ones_like(odd)) and np.all(odd % 2 == 1)
+    whole = line_offset_px(frame, row_step=row_step)
+    assert line_offset_rows(frame[above], frame[odd], frame[below]) == whole
+    if shape[0] >= 256:  # enough rows for the planted offset to show (target of the tests above: 0.1 px)
+        assert abs(whole - 1.3) < 0.1
+    with pytest.raises(ValueError, match="one shape"):
+        line_offset_rows(frame[above], frame[odd][:, 1:], frame[below])
+    with pytest.raises(ValueError, match="3 rows"):
+        line_rows(2)

@@ -299,3 +299,26 @@ def test_reference_trimmed_mean_equals_scipy():
     frames = np.stack([expose(field, 20.0, rng).astype(np.float32) for _ in range(30)])
     frames[5] += 4000.0  # an outlier frame: the trimmed mean leaves it out
     assert_allclose(build_reference(frames, iterations=1, trim=0.1), trim_mean(frames, 0.1, axis=0), rtol=1e-6)
+
+
+@pytest.mark.parametrize("shape", [(256, 256), (64, 64), (48, 90), (7, 9)])
+def test_per_frame_ffts_equal_scipy_fft(shape):
+    # Reference library: scipy.fft.rfft2 / irfft2. qcmon's per-frame FFTs call the compiled routines behind them
+    # directly when it can (qcmon.metrics._fft.DIRECT) and the public functions otherwise: either way, the same.
+    import scipy.fft as sfft
+
+    from qcmon.metrics import _fft
+
+    rng = np.random.default_rng(shape[0])
+    x = rng.standard_normal(shape).astype(np.float32)
+    spec = _fft.rfft2(x)
+    assert spec.dtype == np.complex64
+    assert_allclose(spec, sfft.rfft2(x), rtol=1e-6, atol=1e-4)
+    back = _fft.irfft2(spec, shape)
+    assert back.dtype == np.float32
+    assert_allclose(back, sfft.irfft2(spec, s=shape), rtol=1e-6, atol=1e-5)
+    assert_allclose(back, x, atol=1e-5)
+    assert_allclose(_fft.rfft2(x.astype(np.float64)), sfft.rfft2(x.astype(np.float64)), rtol=1e-12, atol=1e-9)
+    if _fft.DIRECT:
+        with pytest.raises(ValueError, match="half spectrum"):
+            _fft.irfft2(spec[:, :-1], shape)

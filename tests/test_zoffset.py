@@ -286,6 +286,31 @@ def test_running_mean_blocks_hold_exactly_the_last_frames():
         RunningMean(6, block=4)
 
 
+def test_running_mean_of_chosen_rows_equals_those_rows_of_the_whole_mean():
+    # With rows=..., the mean holds the chosen rows (repeats allowed) of the whole motion-corrected mean: the
+    # reference is numpy's mean of the frames moved back by scipy.ndimage.shift (whole pixels, nearest edges,
+    # rows rounded to even numbers), indexed by those rows. Shifts reach past the edges, where rows repeat.
+    rng = np.random.default_rng(13)
+    rows = np.array([0, 1, 2, 9, 10, 11, 10, 20, 21])
+    part = RunningMean(4, block=2, even_rows=True, rows=rows)
+    frames, moves = [], []
+    for t in range(11):
+        frames.append(rng.integers(0, 4096, (22, 17)).astype(np.uint16))
+        dy, dx = rng.uniform(-25, 25), rng.uniform(-6, 6)
+        part.push(frames[-1], dy, dx)
+        moves.append((2 * round(dy / 2), round(dx)))
+    last = 4 if len(frames) % 2 == 0 else 3
+    aligned = [ndimage.shift(f.astype(np.float64), (-my, -mx), order=0, mode="nearest")
+               for f, (my, mx) in zip(frames[-last:], moves[-last:])]
+    assert part.n_frames == last
+    assert_allclose(part.mean, np.mean(aligned, axis=0)[rows], rtol=1e-7, atol=0)
+    assert part._ring.shape == (2, rows.size, 17)  # only the chosen rows are kept
+    with pytest.raises(ValueError, match="rows"):
+        RunningMean(4, rows=[])
+    with pytest.raises(ValueError, match="rows"):
+        RunningMean(4, rows=[30]).push(frames[0])
+
+
 def test_running_mean_with_even_rows_keeps_the_line_offset():
     # A bidirectional scan (ground truth made here): the content moves by odd numbers of rows between frames, and
     # the scanner shifts the odd *acquired* rows by 1.3 px. Moved back by even row shifts, the frames keep their

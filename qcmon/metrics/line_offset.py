@@ -12,7 +12,7 @@ from scipy import fft as sfft
 from qcmon.metrics._imageops import tukey_window
 from qcmon.metrics._validate import as_image, positive_int
 
-__all__ = ["line_offset_px"]
+__all__ = ["line_offset_px", "line_offset_rows", "line_rows"]
 
 
 def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
@@ -59,14 +59,37 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     """
     a = as_image(frame, "frame", min_shape=(3, 8))
     row_step = positive_int(row_step, "row_step")
-    upsample = positive_int(upsample, "upsample")
-    m, n = a.shape
-    n_odd = (m - 1) // 2  # odd rows 1, 3, ... that have an even row on both sides
-    stop = 2 * n_odd  # one past the last such odd row
+    m = a.shape[0]
+    stop = 2 * ((m - 1) // 2)  # one past the last odd row that has an even row on both sides
     step = 2 * row_step
     # strided views of the chosen odd rows and of the even rows above and below them (no gather)
-    odd = a[1:stop:step].astype(np.float32)
-    even = np.add(a[0:stop - 1:step], a[2:stop + 1:step], dtype=np.float32)
+    return _offset(a[0:stop - 1:step], a[1:stop:step], a[2:stop + 1:step], upsample, stacklevel=3)
+
+
+def line_rows(n_rows: int, *, row_step: int = 1) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The rows :func:`line_offset_px` reads from an ``n_rows``-row frame: (even rows above, odd rows, even rows
+    below), each an index array, for callers that keep only those rows (:func:`line_offset_rows`)."""
+    if n_rows < 3:
+        raise ValueError(f"a frame needs at least 3 rows for the line offset, got {n_rows}")
+    step = 2 * positive_int(row_step, "row_step")
+    odd = np.arange(1, 2 * ((n_rows - 1) // 2), step)
+    return odd - 1, odd, odd + 1
+
+
+def line_offset_rows(above, odd, below, *, upsample: int = 100) -> float:
+    """:func:`line_offset_px` from the rows it reads only: ``odd`` rows and the even rows ``above`` and ``below``
+    them, each (K, N), as chosen by :func:`line_rows`. The same computation, so the same value."""
+    rows = [as_image(r, name, min_shape=(1, 8)) for r, name in ((above, "above"), (odd, "odd"), (below, "below"))]
+    if not rows[0].shape == rows[1].shape == rows[2].shape:
+        raise ValueError(f"above, odd and below must have one shape, got {[r.shape for r in rows]}")
+    return _offset(*rows, upsample, stacklevel=3)
+
+
+def _offset(above: np.ndarray, odd: np.ndarray, below: np.ndarray, upsample: int, *, stacklevel: int) -> float:
+    upsample = positive_int(upsample, "upsample")
+    n = odd.shape[1]
+    odd = odd.astype(np.float32)
+    even = np.add(above, below, dtype=np.float32)
     even *= np.float32(0.5)
     taper = _edge_taper(n)
     odd -= odd.mean(axis=1, keepdims=True)
@@ -80,7 +103,7 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
         cross[-1] = 0.0  # the Nyquist term has no well-defined phase for a fractional shift
     if not np.any(np.abs(cross) > 0):
         warnings.warn("line_offset_px: the frame has no structure along its rows; offset undefined",
-                      UserWarning, stacklevel=2)
+                      UserWarning, stacklevel=stacklevel)
         return math.nan
     corr = sfft.irfft(cross, n=n)
     peak = int(np.argmax(corr))

@@ -12,6 +12,7 @@ from typing import NamedTuple
 import numpy as np
 import scipy.fft as sfft
 
+from qcmon.metrics import _fft
 from qcmon.metrics._imageops import as_image, auto_bin, bin_image, finite_float32, shift_integer, tukey_window
 
 __all__ = ["ShiftEstimator", "ShiftResult", "build_reference"]
@@ -318,8 +319,6 @@ class ShiftEstimator:
         """
         arr = as_image(frame, "frame", shape=self.shape, min_size=16)
         gb = bin_image(arr, self.bin_factor)
-        if gb is arr or np.may_share_memory(gb, arr):
-            gb = gb.copy()  # worked on in place below; never touch the caller's frame
         if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(gb).all():
             gb = finite_float32(gb, "frame", stacklevel=3)
             if gb is None:
@@ -333,7 +332,7 @@ class ShiftEstimator:
         Parameters
         ----------
         binned : (M // bin_factor, N // bin_factor) float32 ndarray
-            ``bin_image(frame, bin_factor)`` of a finite frame. It is overwritten (apodised in place).
+            ``bin_image(frame, bin_factor)`` of a finite frame (not modified).
         mean : float, optional
             Mean of ``binned``, if the caller has computed it already.
         """
@@ -345,11 +344,11 @@ class ShiftEstimator:
     def _estimate_binned(self, gb: np.ndarray, *, stacklevel: int, mean: float | None = None) -> ShiftResult:
         if mean is None:
             mean = float(np.add.reduce(gb, axis=None)) / gb.size  # float32 pairwise summation: rel. error ~1e-7
-        gb -= np.float32(mean)
+        gb = np.subtract(gb, np.float32(mean))  # a new array: the caller's binned frame is not modified
         if self._win is not None:
             gb *= self._win
         gw = gb.ravel()
-        g_full = sfft.rfft2(gb, workers=self.workers)
+        g_full = _fft.rfft2(gb, self.workers)
         gsum = float(g_full[0, 0].real)  # the sum of the apodised frame
         gnorm2 = float(np.dot(gw, gw)) - gsum * gsum / gw.size
         if not gnorm2 > gw.size * (1e-6 * abs(mean)) ** 2 or not math.isfinite(gnorm2):
@@ -358,13 +357,13 @@ class ShiftEstimator:
         g_band = _crop(g_full, self._band[0], self._kcb)
         r = self._weighted(g_band, g_full)
         if self._coarse_taper is None:
-            surf = sfft.irfft2(r, s=self._band, workers=self.workers)
+            surf = _fft.irfft2(r, self._band, self.workers)
         else:
             rc = _crop(r, self._coarse[0], self._kcc) * self._coarse_taper
-            surf = sfft.irfft2(rc, s=self._coarse, workers=self.workers)
+            surf = _fft.irfft2(rc, self._coarse, self.workers)
         if self._coarse_mask is not None:
             surf += self._coarse_mask
-        i, j = np.unravel_index(int(np.argmax(surf)), surf.shape)
+        i, j = divmod(int(surf.argmax()), surf.shape[1])
         cy, cx = float(self._coarse_r[i]), float(self._coarse_c[j])
         ramp_r, ramp_c = self._ramp_r[i], self._ramp_c[j]
         for offs_y, offs_x, er0, ec0 in self._stages:
@@ -372,7 +371,7 @@ class ShiftEstimator:
             er = er0 * ramp_r
             ec = ec0 * ramp_c[:, None]
             vals = er @ (r @ ec)  # (r @ ec) first: the cheaper order for these shapes
-            a, b = divmod(int(np.argmax(vals.real)), vals.shape[1])
+            a, b = divmod(int(vals.real.argmax()), vals.shape[1])
             cy += float(offs_y[a])
             cx += float(offs_x[b])
             ramp_r, ramp_c = er[a], ec[:, b]

@@ -197,10 +197,14 @@ class RunningMean:
     even_rows : bool, optional
         Round the row shift to an even number of rows, so that every row keeps its parity: the lines of the two
         scan directions of a bidirectionally scanned frame stay apart, and the line offset can be measured on the
-        mean (:func:`qcmon.metrics.line_offset.line_offset_px`). Default False.
+        mean (:func:`qcmon.metrics.line_offset.line_offset_rows`). Default False.
+    rows : sequence of int, optional
+        Keep only these rows of the motion-corrected mean (indices on the reference grid, repeats allowed): the
+        mean is then ``(len(rows), N)``, its row ``i`` the row ``rows[i]`` of the whole mean. A frame then costs a
+        gather of those rows and an addition of their size. Default: every row.
     """
 
-    def __init__(self, K: int, *, block: int = 1, even_rows: bool = False):
+    def __init__(self, K: int, *, block: int = 1, even_rows: bool = False, rows=None):
         if isinstance(K, bool) or not isinstance(K, (int, np.integer)) or K < 1:
             raise ValueError(f"K must be a positive integer, got {K!r}")
         if isinstance(block, bool) or not isinstance(block, (int, np.integer)) or block < 1 or K % block:
@@ -208,7 +212,14 @@ class RunningMean:
         self.K = int(K)
         self.block = int(block)
         self.even_rows = bool(even_rows)
-        self._ring: np.ndarray | None = None  # (K / block, M, N) float32 block sums
+        self.rows = None
+        if rows is not None:
+            self.rows = np.asarray(rows)
+            if self.rows.ndim != 1 or self.rows.size == 0 or self.rows.dtype.kind not in "iu":
+                raise ValueError("rows must be a non-empty sequence of row indices")
+            self.rows = self.rows.astype(np.intp)
+        self._ring: np.ndarray | None = None  # (K / block, M, N) float32 block sums (M = len(rows) with rows)
+        self._shape: tuple[int, int] | None = None  # shape of the frames
         self._frames = np.zeros(self.K // self.block, dtype=np.int64)  # frames in each block sum
         self._slot = 0  # the block being filled
         self._in_block = 0  # frames in it so far
@@ -221,10 +232,14 @@ class RunningMean:
         replaced by the frame's finite mean; a frame with no finite pixel is skipped (with a UserWarning).
         """
         arr = as_image(frame, "frame", min_size=1)
-        if self._ring is None:
-            self._ring = np.zeros((len(self._frames), *arr.shape), dtype=np.float32)
-        elif arr.shape != self._ring.shape[1:]:
-            raise ValueError(f"frame has shape {arr.shape}, expected {self._ring.shape[1:]} like the earlier frames")
+        if self._shape is None:
+            if self.rows is not None and not (0 <= self.rows.min() and self.rows.max() < arr.shape[0]):
+                raise ValueError(f"rows must lie within the frame's {arr.shape[0]} rows")
+            self._shape = arr.shape
+            kept = arr.shape if self.rows is None else (self.rows.size, arr.shape[1])
+            self._ring = np.zeros((len(self._frames), *kept), dtype=np.float32)
+        elif arr.shape != self._shape:
+            raise ValueError(f"frame has shape {arr.shape}, expected {self._shape} like the earlier frames")
         if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(arr).all():
             finite = np.isfinite(arr)
             if not finite.any():
@@ -237,6 +252,12 @@ class RunningMean:
         else:
             dy = int(round(dy_px)) if math.isfinite(dy_px) else 0
         dx = int(round(dx_px)) if math.isfinite(dx_px) else 0
+        if self.rows is not None:  # the kept rows of the moved frame: their source rows, moved along the columns
+            src = self.rows + dy
+            np.maximum(src, 0, out=src)
+            np.minimum(src, arr.shape[0] - 1, out=src)
+            arr = arr[src]
+            dy = 0
         k = self._slot
         if self._in_block == 0:  # a new block: it takes the place of the oldest
             shift_integer(arr, dy, dx, self._ring[k])
@@ -257,7 +278,8 @@ class RunningMean:
 
     @property
     def mean(self) -> np.ndarray:
-        """The current mean, (M, N) float32 (a new array). Raises ValueError before the first frame."""
+        """The current mean, (M, N) float32 (``(len(rows), N)`` with ``rows``), a new array. Raises ValueError
+        before the first frame."""
         n = self.n_frames
         if self._ring is None or n == 0:
             raise ValueError("RunningMean has no frame yet: push a frame first")
