@@ -59,7 +59,9 @@ def _options(args, *, follow: bool):
         bit_depth=args.bit_depth, dark_level=args.dark_level, zstack=args.zstack, z_step_um=args.z_step,
         motion_channel=args.motion_channel, channels=args.channels, planes=args.planes,
         raw_dtype=args.raw_dtype, raw_shape=tuple(args.raw_shape) if args.raw_shape else None,
-        resume=not getattr(args, "restart", False), workers=getattr(args, "workers", 1))
+        resume=not getattr(args, "restart", False), workers=getattr(args, "workers", 1),
+        # a finished session: the report's plots are drawn by two processes that load matplotlib meanwhile
+        plot_processes=0 if follow else 2)
 
 
 def build_parser() -> argparse.ArgumentParser:

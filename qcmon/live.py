@@ -23,12 +23,13 @@ from pathlib import Path
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from qcmon._memory import keep_freed_memory
 from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record import SessionRecord, write_atomic
-from qcmon.report import write_report
+from qcmon.report import PlotWorkers, write_report
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
@@ -62,6 +63,7 @@ class MonitorOptions:
     status_every_s: float = 5.0
     forecast_loss_pct: float = 20.0
     workers: int = 1
+    plot_processes: int = 0  # >0: draw the report's plots in that many processes started at once (PlotWorkers)
     engine_overrides: dict = field(default_factory=dict)
 
 
@@ -95,6 +97,7 @@ class Monitor:
         self._alarm_procs: list[subprocess.Popen] = []
         self.problems: list[str] = []
         self.facts = AcquisitionFacts()
+        self._plots: PlotWorkers | None = None
 
     # ---------------------------------------------------------------- controls
     def stop(self) -> None:
@@ -112,6 +115,8 @@ class Monitor:
 
         Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``.
         """
+        # Frames are read in batches of new arrays: keep their memory for the next batch (see qcmon._memory).
+        keep_freed_memory()
         # The engine's matrix products are small: one BLAS thread is fastest, and it leaves the other core to
         # the acquisition computer's own work (and to a second qcmon in an audit).
         with threadpool_limits(limits=1, user_api="blas"):
@@ -138,6 +143,12 @@ class Monitor:
             watcher.__enter__()
         last_status = -math.inf
         idle_since = time.monotonic()
+        self._plots = None
+        if o.plot_processes > 0:
+            try:
+                self._plots = PlotWorkers(o.plot_processes)
+            except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
+                self._plots = None
         try:
             while True:
                 frames = source.poll(final=not o.follow, max_frames=_BATCH)
@@ -178,6 +189,8 @@ class Monitor:
             record.flush()
             return self._finish(record, source, run.engine, run.split)
         finally:
+            if self._plots is not None:
+                self._plots.close()
             if run.split is not None:
                 run.split.close()
             if watcher is not None:
@@ -395,7 +408,8 @@ class Monitor:
             ref = engine.reference_image(*engine.streams[0])
             if ref is not None:
                 paths["reference"] = str(_write_tiff_atomic(self.out_dir / "reference.tif", ref))
-        paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts))
+        paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts,
+                                           plots=self._plots))
         return paths
 
 

@@ -17,7 +17,7 @@ from qcmon.events import SYMBOLS, Event
 from qcmon.summary import GROUPS, _periods, _streams
 from qcmon.thresholds import Profile
 
-__all__ = ["envelope", "write_report", "report_html"]
+__all__ = ["envelope", "write_report", "report_html", "PlotWorkers"]
 
 #: Points per trace above which a plot shows a min/max envelope instead of every frame (the plots are 855 px wide:
 #: more points than pixel columns only cost drawing time).
@@ -139,6 +139,65 @@ def _panel(traces, streams, events, profile: Profile, title, columns, scale, uni
     return col, _png(fig)
 
 
+def _panel_job(job: tuple) -> tuple[str, str] | None:
+    return _panel(*job)
+
+
+def _load_matplotlib() -> None:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401 - loaded ahead of the plots
+    from matplotlib.figure import Figure  # noqa: F401
+
+
+def _nothing() -> None:
+    return None
+
+
+class PlotWorkers:
+    """Processes that draw the report's plots side by side, started while the session is still being measured.
+
+    Loading matplotlib takes about 0.7 s here and each plot about 0.1 s; a summary of a finished session otherwise
+    spends both after its last frame. Started early, the processes load matplotlib on the other core while the
+    frames are measured, and at the end draw the plots in parallel. Anything that goes wrong with them (a process
+    that cannot start or dies) only means the plots are drawn in this process, as without them.
+
+    Parameters
+    ----------
+    processes : int
+        Number of drawing processes (they start at once, each loading matplotlib).
+    """
+
+    def __init__(self, processes: int = 2):
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        self._pool = ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"),
+                                         initializer=_load_matplotlib)
+        # processes start on demand: one empty job per process starts them all now
+        for _ in range(processes):
+            self._pool.submit(_nothing)
+
+    def map(self, jobs: list[tuple]) -> list[tuple[str, str] | None]:
+        """``_panel(*job)`` of every job, in order."""
+        return list(self._pool.map(_panel_job, jobs))
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=False, cancel_futures=True)
+
+
+def _draw_panels(traces, streams, events, profile, plots: PlotWorkers | None) -> list[tuple[str, str] | None]:
+    """The plots of :data:`_PANELS`, drawn by ``plots`` when given (falling back to this process)."""
+    jobs = []
+    for title, columns, scale, unit in _PANELS:
+        needed = {k: np.asarray(traces[k]) for k in ("time_s", "frame", *columns)}  # what a plot reads
+        jobs.append((needed, streams, events, profile, title, columns, scale, unit))
+    if plots is not None:
+        try:
+            return plots.map(jobs)
+        except Exception:  # noqa: BLE001 - a drawing process failed: the plots are drawn here instead
+            pass
+    return [_panel(*job) for job in jobs]
+
+
 def _fmt(v) -> str:
     if v is None:
         return "—"
@@ -155,7 +214,7 @@ def _verdict(v: str) -> str:
 
 
 def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile,
-                facts: Mapping | None = None) -> str:
+                facts: Mapping | None = None, *, plots: PlotWorkers | None = None) -> str:
     """The text of ``report.html`` (see :func:`write_report`)."""
     e = html.escape
     events = list(events)
@@ -196,8 +255,7 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
                  "single-frame spikes stay visible.</p>")
     streams = _streams(traces)
     if streams:
-        for title, columns, scale, unit in _PANELS:
-            got = _panel(traces, streams, events, profile, title, columns, scale, unit)
+        for (title, *_), got in zip(_PANELS, _draw_panels(traces, streams, events, profile, plots)):
             if got is None:
                 parts.append(f"<h3>{e(title)}</h3><p class='small'>not measured in this session</p>")
                 continue
@@ -248,7 +306,7 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
 
 
 def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequence[Event],
-                 profile: Profile, facts: Mapping | None = None) -> Path:
+                 profile: Profile, facts: Mapping | None = None, *, plots: PlotWorkers | None = None) -> Path:
     """Write ``report.html`` into ``out_dir`` atomically.
 
     Parameters
@@ -262,6 +320,8 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     profile : Profile
     facts : mapping, optional
         ``{key: {"value", "origin"}}``; default ``summary["facts"]``.
+    plots : PlotWorkers, optional
+        Processes that draw the plots (default: drawn in this process). The report is the same either way.
 
     Returns
     -------
@@ -270,4 +330,5 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     """
     from qcmon.record import write_atomic
 
-    return write_atomic(Path(out_dir) / "report.html", report_html(summary, traces, events, profile, facts))
+    return write_atomic(Path(out_dir) / "report.html",
+                        report_html(summary, traces, events, profile, facts, plots=plots))

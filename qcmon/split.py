@@ -104,8 +104,10 @@ def measure_chunk(job: ChunkJob) -> dict:
     """Measure one chunk in this process. Returns ``rows`` and ``problems`` (messages)."""
     from threadpoolctl import threadpool_limits
 
+    from qcmon._memory import keep_freed_memory
     from qcmon.sources import SessionSource
 
+    keep_freed_memory()  # frames are read in batches of new arrays: reuse their memory (see qcmon._memory)
     problems: list[str] = []
     engine = pickle.loads(job.engine)
     token = {**job.token, "pages": 0, "files": {}, "given_up": []}

@@ -100,3 +100,22 @@ def test_multi_plane_report_has_a_row_per_plane(tmp_path, session):
     assert [s["verdict"] for s in summary["streams"]] == ["fail", "pass"]
     text = report_html(summary, traces, events, prof, {})
     assert text.count("<tr><td>0</td><td>1</td>") == 1
+
+
+def test_plots_drawn_by_other_processes_give_the_same_report(session):
+    # PlotWorkers draws the plots in two processes started ahead (qcmon summarize uses it): the page must be the
+    # same, byte for byte, as the one drawn in this process (the Agg renderer is deterministic).
+    from qcmon.report import PlotWorkers
+
+    prof, traces, events, facts, summary = session
+    here = report_html(summary, traces, events, prof, facts)
+    workers = PlotWorkers(2)
+    try:
+        there = report_html(summary, traces, events, prof, facts, plots=workers)
+    finally:
+        workers.close()
+    assert there == here
+    # a pool that cannot draw any more only means the plots are drawn here
+    broken = PlotWorkers(1)
+    broken.close()
+    assert report_html(summary, traces, events, prof, facts, plots=broken) == here

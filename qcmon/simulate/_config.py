@@ -6,6 +6,9 @@ import dataclasses
 import math
 from dataclasses import dataclass, field
 
+#: How ``write_session`` lays the frames out on disk.
+LAYOUTS = ("multipage", "chunks", "per_frame", "raw")
+
 __all__ = ["SimConfig", "config_from_dict", "config_to_dict"]
 
 

@@ -12,14 +12,13 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from qcmon.simulate._config import SimConfig, config_to_dict
+from qcmon.simulate._config import LAYOUTS, SimConfig, config_to_dict
 from qcmon.simulate._core import TRUTH_COLUMNS, Simulator
 from qcmon.simulate._motion import planted_events
 from qcmon.simulate._tiff_append import AppendingTiffWriter
 
 __all__ = ["write_session", "LAYOUTS", "RAW_SIDECAR_KEYS"]
 
-LAYOUTS = ("multipage", "chunks", "per_frame", "raw")
 
 #: Keys of ``frames/frames.toml`` beside a raw stream ``frames/frames.raw``.
 RAW_SIDECAR_KEYS = {

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from qcmon.simulate._write import LAYOUTS, write_session
+from qcmon.simulate._config import LAYOUTS
 from qcmon.simulate.scenarios import SCENARIOS, scenario_config
 
 __all__ = ["add_arguments", "run", "main_simulate"]
@@ -39,6 +39,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Write the session described by parsed ``args``; return the exit code (130 on Ctrl-C)."""
+    from qcmon.simulate._write import write_session  # the simulator itself loads only when it is run
+
     overrides = {"n_frames": args.frames, "height": args.size[0], "width": args.size[1],
                  "frame_rate_hz": args.rate, "seed": args.seed, "channels": args.channels,
                  "planes": args.planes, "bits": args.bits, "pixel_size_um": args.pixel_size,
