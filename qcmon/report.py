@@ -144,8 +144,11 @@ def _panel_job(job: tuple) -> tuple[str, str] | None:
 
 
 def _load_matplotlib() -> None:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401 - loaded ahead of the plots
-    from matplotlib.figure import Figure  # noqa: F401
+    """Load the modules a plot needs, ahead of the plots."""
+    import importlib
+
+    for name in ("matplotlib.figure", "matplotlib.backends.backend_agg"):
+        importlib.import_module(name)
 
 
 def _nothing() -> None:
