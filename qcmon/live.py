@@ -144,11 +144,7 @@ class Monitor:
         last_status = -math.inf
         idle_since = time.monotonic()
         self._plots = None
-        if o.plot_processes > 0:
-            try:
-                self._plots = PlotWorkers(o.plot_processes)
-            except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
-                self._plots = None
+        self._start_plots()
         try:
             while True:
                 frames = source.poll(final=not o.follow, max_frames=_BATCH)
@@ -197,6 +193,14 @@ class Monitor:
                 watcher.stop()
             record.close()
             self._reap_alarm_commands(wait=True)
+
+    def _start_plots(self) -> None:
+        """Start the report's plot processes (``plot_processes``), so that they load matplotlib meanwhile."""
+        if self.options.plot_processes > 0 and self._plots is None:
+            try:
+                self._plots = PlotWorkers(self.options.plot_processes)
+            except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
+                self._plots = None
 
     def _ingest(self, run: "_RunState", source: SessionSource, frames: list[Frame], record, listeners) -> None:
         if not frames:
