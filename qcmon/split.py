@@ -11,8 +11,8 @@ What is the same as in one process, and what is not:
 
 - Displacement, registration quality, photometry, saturation, noise, SNR and photons per pixel depend on the
   frame and on the reference only: identical.
-- Focus correlation, z and the line offset come from the running mean of the last ``running_mean_frames`` frames,
-  recomputed every ``z_every`` frames: the warm-up fills the running mean with the same frames, summed in the same
+- Focus correlation, z and the line offset come from the running means of the last ``running_mean_frames`` frames,
+  recomputed every ``z_every`` frames: the warm-up fills the running means with the same frames, summed in the same
   blocks, and keeps the same frames as recomputation points, so they are identical.
 - Baseline, brightness % and bleach slope have long trailing windows: they are recomputed here, in order, over all
   rows (:class:`RowContinuity`), so they are identical.
@@ -64,7 +64,7 @@ def warm_start(first: int, *, measured: int, z_every: int, warm_up: int = WARM_U
     """Time point from which a worker feeds frames to its engine copy for a chunk beginning at ``first``.
 
     The copy has measured ``measured`` frames of each stream (the reference frames); the engine recomputes focus
-    and z when its count of measured frames reaches a multiple of ``z_every`` (and sums the running mean in blocks
+    and z when its count of measured frames reaches a multiple of ``z_every`` (and sums the running means in blocks
     that end there). Starting at ``s`` with
     ``s ≡ measured (mod z_every)`` keeps the recomputation at the same time points as in one process.
     """
