@@ -388,14 +388,16 @@ class Engine:
         sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
+            mean_binned = None
             if exact:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
-                mean_raw = total / img.size
-                if motion is None:
-                    res = st.shift.estimate_binned(binned, mean=total / binned.size)
+                mean_raw, mean_binned = total / img.size, total / binned.size
             else:
                 mean_raw = float(np.add.reduce(img, axis=None, dtype=np.float64)) / img.size
-                if motion is None:
+            if motion is None:
+                if img.dtype.kind in "ui" or np.isfinite(binned).all():
+                    res = st.shift.estimate_binned(binned, mean=mean_binned)
+                else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img)
             if motion is None:
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
@@ -425,7 +427,7 @@ class Engine:
                 # Line offset is a property of the scanner, not of one frame: it is measured on the running mean
                 # of the rows it reads, whose frames were moved by whole, even numbers of rows (the two scan
                 # directions' rows stay apart).
-                rows = st.line_mean.mean
+                rows = st.line_mean.mean  # rows above, odd rows, rows below (line_rows), stacked
                 k = rows.shape[0] // 3
                 st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
             row["focus_corr"], row["focus_measure"] = st.last_focus
