@@ -149,6 +149,7 @@ class _Stream:
     last_z: tuple[float, float] = (NAN, NAN)
     last_focus: tuple[float, float] = (NAN, NAN)
     focus_bin: int = 1
+    exact_binning: bool = False  # integer frames whose binned sums are exact in float32 and cover every pixel
     noise_row_step: int = 1
     line_row_step: int = 1
     reference_binned: np.ndarray | None = None
@@ -309,6 +310,8 @@ class Engine:
                                    rows=np.concatenate(line_rows(h, row_step=st.line_row_step)))
         # focus correlation on binned images: shot noise averages out, cell-sized structure (≥ 8 px) stays
         st.focus_bin = b * max(1, (2 if min(h, w) < 256 else 4) // b)
+        st.exact_binning = (st.dtype.kind in "ui" and h % b == 0 and w % b == 0
+                            and b * b * int(np.iinfo(st.dtype).max) < 2 ** 24)
         st.reference_binned = bin_image(st.reference, st.focus_bin)
         if s.zstack is not None:
             if s.zstack.shape[1:] != st.reference.shape:
@@ -382,14 +385,12 @@ class Engine:
         # also serves the registration and gives the exact frame mean.
         factor = st.shift.bin_factor
         binned = bin_image(img, factor)
-        exact = (img.dtype.kind in "ui" and img.shape[0] % factor == 0 and img.shape[1] % factor == 0
-                 and factor * factor * int(np.iinfo(img.dtype).max) < 2 ** 24)
         sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
         sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
             mean_binned = None
-            if exact:
+            if st.exact_binning:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw, mean_binned = total / img.size, total / binned.size
             else:
