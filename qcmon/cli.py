@@ -73,7 +73,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("summarize", help="measure a finished session (folder or TIFF) and write its record")
     p.add_argument("path", type=Path, metavar="PATH")
     _add_acquisition(p)
-    p.add_argument("--restart", action="store_true", help="ignore an earlier record in --out and start afresh")
+    p.add_argument("--restart", action="store_true", help="start a new record; an earlier one in --out is moved into "
+                        "--out/earlier-YYYYMMDD-HHMMSS")
     p.add_argument("--workers", type=_positive(int), default=1, metavar="N",
                    help="processes measuring chunks of a long session side by side, the reference carried "
                         "across (default: %(default)s)")
@@ -89,7 +90,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
     p.add_argument("--on-alarm", metavar="COMMAND",
                    help="run COMMAND when an alarm begins, with the event as JSON on its standard input")
-    p.add_argument("--restart", action="store_true", help="ignore an earlier record in --out and start afresh")
+    p.add_argument("--restart", action="store_true", help="start a new record; an earlier one in --out is moved into "
+                        "--out/earlier-YYYYMMDD-HHMMSS")
     p.set_defaults(func=cmd_watch)
 
     p = sub.add_parser("profiles", help="list the threshold profiles")
@@ -150,6 +152,8 @@ def cmd_summarize(args) -> int:
                 print(format_event(ev), file=sys.stderr)
 
     paths = mon.run(_Problems())
+    if "earlier" in paths:
+        print(f"earlier record moved to {paths['earlier']}")
     print(f"summary: {paths['summary']}\nreport:  {paths['report']}\ntraces:  {Path(paths['out_dir']) / 'traces.csv'}")
     return EXIT_OK
 
@@ -203,6 +207,8 @@ def run_watch(monitor, *, plain: bool) -> int:
         print("commands: r = new reference, n TEXT = add a note, q = end the watch", flush=True)
         threading.Thread(target=_read_commands, args=(monitor, sys.stdin), daemon=True).start()
     paths = monitor.run(console)
+    if "earlier" in paths:
+        print(f"earlier record moved to {paths['earlier']}", flush=True)
     print(f"summary: {paths['summary']}\nreport:  {paths['report']}", flush=True)
     return EXIT_OK
 

@@ -98,6 +98,7 @@ class Monitor:
         self.problems: list[str] = []
         self.facts = AcquisitionFacts()
         self._plots: PlotWorkers | None = None
+        self.earlier_record: Path | None = None
 
     # ---------------------------------------------------------------- controls
     def stop(self) -> None:
@@ -113,7 +114,8 @@ class Monitor:
     def run(self, listener: Listener | None = None) -> dict:
         """Measure until stopped (or idle, or, with ``follow=False``, until everything on disk is measured).
 
-        Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``.
+        Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``, and ``"earlier"``: where
+        an earlier record in ``out_dir`` was moved (``resume=False``).
         """
         # Frames are read in batches of new arrays: keep their memory for the next batch (see qcmon._memory).
         keep_freed_memory()
@@ -125,7 +127,8 @@ class Monitor:
     def _run(self, listener: Listener | None) -> dict:
         o = self.options
         listeners = [listener] if listener is not None else []
-        record = SessionRecord(self.out_dir, resume=o.resume)
+        record = SessionRecord(self.out_dir, resume=o.resume, set_aside=not o.resume)
+        self.earlier_record = record.set_aside_to  # --restart over an earlier record: where it went
         run = _RunState(done=record.last_frames() if o.resume else {},
                         status=Status(folder=str(self.path), out_dir=str(self.out_dir)),
                         tracker=ThresholdTracker(self.profile))
@@ -404,6 +407,8 @@ class Monitor:
         summary["problems"] = list(self.problems)
         summary["session"] = str(self.path)
         paths = {"out_dir": str(self.out_dir)}
+        if self.earlier_record is not None:
+            paths["earlier"] = str(self.earlier_record)
         paths["summary"] = str(write_atomic(self.out_dir / "summary.json",
                                             json.dumps(_jsonable(summary), indent=2, ensure_ascii=False)))
         ranges = exclude_ranges(traces, events, self.profile)

@@ -39,6 +39,7 @@ from qcmon.events import Event
 __all__ = [
     "EVENTS_FILE",
     "INFO_FILE",
+    "RECORD_FILES",
     "TRACES_FILE",
     "SessionRecord",
     "read_events",
@@ -51,6 +52,8 @@ __all__ = [
 TRACES_FILE = "traces.csv"
 EVENTS_FILE = "events.jsonl"
 INFO_FILE = "session.json"
+#: Every file qcmon writes into an output folder (``--restart`` sets these aside, nothing else).
+RECORD_FILES = (TRACES_FILE, EVENTS_FILE, INFO_FILE, "summary.json", "exclude.csv", "reference.tif", "report.html")
 
 #: Seconds between forced writes to the disk (os.fsync).
 SYNC_INTERVAL_S = 1.0
@@ -176,6 +179,24 @@ def _format_value(name: str, value: object) -> str:
     return repr(v)
 
 
+def set_aside_record(out_dir: Path) -> Path:
+    """Move the record files in ``out_dir`` into a new subfolder ``earlier-YYYYMMDD-HHMMSS`` and return it."""
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    dest = out_dir / f"earlier-{stamp}"
+    n = 1
+    while dest.exists():
+        n += 1
+        dest = out_dir / f"earlier-{stamp}-{n}"
+    try:
+        dest.mkdir()
+        for name in RECORD_FILES:
+            if (out_dir / name).exists():
+                os.replace(out_dir / name, dest / name)
+    except OSError as exc:
+        raise _folder_error(out_dir, exc, "set the earlier record aside") from None
+    return dest
+
+
 class SessionRecord:
     """Appends a session's traces and events to an output folder.
 
@@ -186,9 +207,10 @@ class SessionRecord:
     resume : bool, default True
         Continue an existing record: a partial last line (crash while writing) is cut off and new rows are
         appended; :meth:`last_frames` tells where each (channel, plane) stopped. With ``resume=False`` an
-        existing record raises :class:`QcmonError` unless ``overwrite=True``.
-    overwrite : bool, default False
-        With ``resume=False``: start a new record over an existing one.
+        existing record raises :class:`QcmonError` unless ``set_aside=True``.
+    set_aside : bool, default False
+        With ``resume=False``: move an existing record's files (:data:`RECORD_FILES`) into a new subfolder
+        ``earlier-YYYYMMDD-HHMMSS`` and start a new record; nothing measured before is deleted.
 
     Raises
     ------
@@ -196,7 +218,7 @@ class SessionRecord:
         The folder cannot be written (read-only, full), or an existing ``traces.csv`` has other columns.
     """
 
-    def __init__(self, out_dir: str | os.PathLike, *, resume: bool = True, overwrite: bool = False):
+    def __init__(self, out_dir: str | os.PathLike, *, resume: bool = True, set_aside: bool = False):
         self.out_dir = Path(out_dir)
         self.traces_path = self.out_dir / TRACES_FILE
         self.events_path = self.out_dir / EVENTS_FILE
@@ -209,9 +231,12 @@ class SessionRecord:
             raise _folder_error(self.out_dir, exc, "create the output folder") from None
         exists = self.traces_path.exists() and self.traces_path.stat().st_size > 0
         exists_ev = self.events_path.exists() and self.events_path.stat().st_size > 0
-        if (exists or exists_ev) and not resume and not overwrite:
-            raise QcmonError(f"{self.out_dir}: already holds a session record ({TRACES_FILE}, {EVENTS_FILE}); "
-                             "resume it, or choose another output folder")
+        self.set_aside_to: Path | None = None
+        if (exists or exists_ev) and not resume:
+            if not set_aside:
+                raise QcmonError(f"{self.out_dir}: already holds a session record ({TRACES_FILE}, {EVENTS_FILE}); "
+                                 "resume it, or choose another output folder")
+            self.set_aside_to = set_aside_record(self.out_dir)
         mode = "ab" if resume else "wb"
         try:
             if resume and exists:

@@ -108,6 +108,23 @@ def test_record_under_a_file_gives_exit_2_and_names_the_folder(tmp_path, small_s
     assert blocker.read_text(encoding="utf-8") == "x"
 
 
+def test_restart_over_an_earlier_record_sets_it_aside_unchanged(tmp_path, small_session):
+    """``--restart`` starts a new record; the earlier one is moved, byte for byte, never deleted."""
+    out = tmp_path / "record"
+    first = run_qcmon("summarize", small_session, "--out", out)
+    assert first.returncode == 0, first.stderr
+    (out / "my_notes.txt").write_text("kept where it is", encoding="utf-8")  # not a qcmon file: left alone
+    before = snapshot(out)
+    again = run_qcmon("summarize", small_session, "--out", out, "--restart")
+    assert again.returncode == 0, again.stderr
+    earlier = [p for p in out.iterdir() if p.name.startswith("earlier-")]
+    assert len(earlier) == 1 and f"earlier record moved to {earlier[0]}" in again.stdout
+    content = {k: v[:2] for k, v in before.items() if k not in ("my_notes.txt", ".")}  # sha256 and size
+    assert content == {k: v[:2] for k, v in snapshot(earlier[0]).items() if k != "."}
+    assert (out / "my_notes.txt").read_text(encoding="utf-8") == "kept where it is"
+    assert _rows(out) == _rows(earlier[0]) == 60  # a full new record, not appended to the old one
+
+
 def test_read_only_record_folder_gives_exit_2_and_keeps_the_previous_record(tmp_path, small_session):
     out = tmp_path / "mnt"
     out.mkdir()
