@@ -64,65 +64,79 @@ def _options(args, *, follow: bool):
         plot_processes=0 if follow else 2)
 
 
-def build_parser() -> argparse.ArgumentParser:
+_RESTART_HELP = "start a new record; an earlier one in --out is moved into --out/earlier-YYYYMMDD-HHMMSS"
+#: The subcommands, in the order of the help.
+COMMANDS = ("summarize", "watch", "profiles", "simulate", "audit", "demo")
+
+
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The command line; with ``only``, just that subcommand gets its options (the others are listed by name and
+    help: their options would load the simulator and the audit, about 0.2 s, for nothing)."""
     parser = argparse.ArgumentParser(
         prog="qcmon", description="Quality control of fluorescence imaging sessions, live or after the fact.")
     parser.add_argument("--version", action="version", version=f"qcmon {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    p = sub.add_parser("summarize", help="measure a finished session (folder or TIFF) and write its record")
-    p.add_argument("path", type=Path, metavar="PATH")
-    _add_acquisition(p)
-    p.add_argument("--restart", action="store_true", help="start a new record; an earlier one in --out is moved into "
-                        "--out/earlier-YYYYMMDD-HHMMSS")
-    p.add_argument("--workers", type=_positive(int), default=1, metavar="N",
-                   help="processes measuring chunks of a long session side by side, the reference carried "
-                        "across (default: %(default)s)")
-    p.set_defaults(func=cmd_summarize)
+    def command(name: str, help: str) -> argparse.ArgumentParser | None:
+        p = sub.add_parser(name, help=help)
+        return p if only is None or only == name else None
 
-    p = sub.add_parser("watch", help="follow a session folder while the microscope writes it")
-    p.add_argument("path", type=Path, metavar="DIR")
-    _add_acquisition(p)
-    p.add_argument("--poll", type=_positive(float), metavar="SECONDS",
-                   help="look for changes every SECONDS instead of file-system events (network shares)")
-    p.add_argument("--until-idle", type=_positive(float), metavar="SECONDS",
-                   help="end the watch when no new frame came for SECONDS")
-    p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
-    p.add_argument("--on-alarm", metavar="COMMAND",
-                   help="run COMMAND when an alarm begins, with the event as JSON on its standard input")
-    p.add_argument("--restart", action="store_true", help="start a new record; an earlier one in --out is moved into "
-                        "--out/earlier-YYYYMMDD-HHMMSS")
-    p.set_defaults(func=cmd_watch)
+    p = command("summarize", "measure a finished session (folder or TIFF) and write its record")
+    if p is not None:
+        p.add_argument("path", type=Path, metavar="PATH")
+        _add_acquisition(p)
+        p.add_argument("--restart", action="store_true", help=_RESTART_HELP)
+        p.add_argument("--workers", type=_positive(int), default=1, metavar="N",
+                       help="processes measuring chunks of a long session side by side, the reference carried "
+                            "across (default: %(default)s)")
+        p.set_defaults(func=cmd_summarize)
 
-    p = sub.add_parser("profiles", help="list the threshold profiles")
-    p.set_defaults(func=cmd_profiles)
+    p = command("watch", "follow a session folder while the microscope writes it")
+    if p is not None:
+        p.add_argument("path", type=Path, metavar="DIR")
+        _add_acquisition(p)
+        p.add_argument("--poll", type=_positive(float), metavar="SECONDS",
+                       help="look for changes every SECONDS instead of file-system events (network shares)")
+        p.add_argument("--until-idle", type=_positive(float), metavar="SECONDS",
+                       help="end the watch when no new frame came for SECONDS")
+        p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
+        p.add_argument("--on-alarm", metavar="COMMAND",
+                       help="run COMMAND when an alarm begins, with the event as JSON on its standard input")
+        p.add_argument("--restart", action="store_true", help=_RESTART_HELP)
+        p.set_defaults(func=cmd_watch)
 
-    try:
+    p = command("profiles", "list the threshold profiles")
+    if p is not None:
+        p.set_defaults(func=cmd_profiles)
+
+    p = command("simulate", "write a synthetic session with known ground truth")
+    if p is not None:
         from qcmon.simulate import cli as sim_cli
-    except ImportError:  # pragma: no cover - simulator is part of the package
-        sim_cli = None
-    if sim_cli is not None:
-        p = sub.add_parser("simulate", help="write a synthetic session with known ground truth")
+
         sim_cli.add_arguments(p)
         p.set_defaults(func=sim_cli.run)
 
-    from qcmon.audit import cli as audit_cli
+    p = command("audit", "measure many finished sessions; a table, verdicts and chronic trends")
+    if p is not None:
+        from qcmon.audit import cli as audit_cli
 
-    p = sub.add_parser("audit", help="measure many finished sessions; a table, verdicts and chronic trends")
-    audit_cli.add_arguments(p)
-    p.set_defaults(func=audit_cli.run)
+        audit_cli.add_arguments(p)
+        p.set_defaults(func=audit_cli.run)
 
-    p = sub.add_parser("demo", help="watch a session the simulator writes live (nothing else needed)")
-    p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
-    p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
-                   help="length of the simulated session (default: the scenario's)")
-    p.add_argument("--out", type=Path, metavar="DIR", help="keep the session and its record here")
-    p.set_defaults(func=cmd_demo)
+    p = command("demo", "watch a session the simulator writes live (nothing else needed)")
+    if p is not None:
+        p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
+        p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
+                       help="length of the simulated session (default: the scenario's)")
+        p.add_argument("--out", type=Path, metavar="DIR", help="keep the session and its record here")
+        p.set_defaults(func=cmd_demo)
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    named = next((a for a in argv if not a.startswith("-")), None)  # the only options before it are -h, --version
+    parser = build_parser(only=named if named in COMMANDS else None)
     args = parser.parse_args(argv)
     try:
         return int(args.func(args) or 0)

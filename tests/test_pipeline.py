@@ -231,3 +231,22 @@ def test_default_record_goes_beside_the_session(tmp_path):
 
     (tmp_path / "fov2").mkdir()
     assert default_out_dir(tmp_path / "fov2") == (tmp_path / "fov2.qcmon").resolve()
+
+
+def _options_of(parser, command: str) -> list[tuple]:
+    sub = next(a for a in parser._actions if a.dest == "command").choices[command]  # argparse's own registry
+    return [(tuple(a.option_strings), a.dest, a.default, a.help) for a in sub._actions]
+
+
+def test_command_line_builds_only_the_named_command_with_the_same_options():
+    """``qcmon summarize`` does not load the simulator or the audit to build its options; every command's options
+    are those of the full parser."""
+    from qcmon.cli import COMMANDS, build_parser
+
+    full = build_parser()
+    for command in COMMANDS:
+        assert _options_of(build_parser(only=command), command) == _options_of(full, command), command
+    code = ("import sys; from qcmon.cli import build_parser; build_parser(only='summarize'); "
+            "print(sorted(m for m in sys.modules if m.startswith(('qcmon.audit', 'qcmon.simulate'))))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
