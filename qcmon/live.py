@@ -16,6 +16,7 @@ import shlex
 import subprocess
 import threading
 import time
+from collections.abc import Generator
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
@@ -29,7 +30,7 @@ from qcmon.errors import FrameError, QcmonError
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record import SessionRecord, write_atomic
-from qcmon.report import PlotWorkers, write_report
+from qcmon.report import PanelDrawing, PlotWorkers, write_report
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
@@ -150,31 +151,30 @@ class Monitor:
         self._start_plots()
         try:
             while True:
-                frames = source.poll(final=not o.follow, max_frames=_BATCH)
+                n = self._ingest(run, source, source.frames(final=not o.follow, max_frames=_BATCH), record,
+                                 listeners)
                 self.facts = source.facts
-                if frames:
+                if n:
                     idle_since = time.monotonic()
-                    self._ingest(run, source, frames, record, listeners)
                 self._handle_commands(run, record, listeners)
                 now = time.monotonic()
                 if now - last_status >= (0.25 if listeners else o.status_every_s):
                     self._update_status(run, source, listeners)
                     last_status = now
                 record.maybe_flush()
-                run.behind = len(frames) == _BATCH and not (run.split is not None and run.split.reading_done)
+                run.behind = n == _BATCH and not (run.split is not None and run.split.reading_done)
                 if run.behind:
                     continue  # more is waiting on disk: no pause, and no end yet
                 if not o.follow or self._stop.is_set():
                     break
                 if o.until_idle_s is not None and now - idle_since >= o.until_idle_s:
                     break
-                if not frames:
+                if not n:
                     watcher.wait(0.2)
             # end of watch: whatever completed meanwhile, then what the engine held back
             while o.follow:
-                frames = source.poll(final=True, max_frames=_BATCH)
-                self._ingest(run, source, frames, record, listeners)
-                if len(frames) < _BATCH:
+                if self._ingest(run, source, source.frames(final=True, max_frames=_BATCH), record,
+                                listeners) < _BATCH:
                     break
             if run.engine is not None:
                 self._deliver(run, run.engine.flush(), record, listeners)
@@ -205,37 +205,46 @@ class Monitor:
             except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
                 self._plots = None
 
-    def _ingest(self, run: "_RunState", source: SessionSource, frames: list[Frame], record, listeners) -> None:
-        if not frames:
-            return
-        if run.engine is None:
-            run.engine = Engine(self._settings(source.facts, frames[0]))
-            o = self.options
-            if not o.follow and o.workers > 1:  # a finished session: later chunks go to other processes
-                n_c, n_z = (source.position["layout"] or (1, 1))[:2]
-                run.split = SplitRun(
-                    workers=o.workers, path=str(self.path), frames_per_point=int(n_c) * int(n_z),
-                    window_s=run.engine.settings.bleach_window_s,
-                    source_kwargs=dict(channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
-                                       raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
-                                       pixel_size_um=o.pixel_size_um))
-        sp = run.split
+    def _ingest(self, run: "_RunState", source: SessionSource, frames: Generator[Frame, None, None], record,
+                listeners) -> int:
+        """Measure ``frames`` as they are read (``SessionSource.frames``), record the rows; how many were read."""
         rows: list[dict] = []
-        for fr in frames:
-            if sp is not None and sp.stop is not None and fr.index >= sp.stop:
-                sp.reading_done = True  # the rest is measured by the workers
-                break
-            try:
-                new = run.engine.process(fr)
-            except FrameError as err:
-                self._problem_to(record, listeners)(err)
-                continue
-            rows.extend(new)
-            if sp is not None and not sp.decided:
-                sp.note_rows(new)
-                if sp.ready() and sp.launch(run.engine, source.position) == 1:
-                    run.split = sp = None  # too short to split: one process, the engine's own values
+        n = 0
+        try:
+            for fr in frames:
+                n += 1
+                if run.engine is None:
+                    self._start_engine(run, source, fr)
+                sp = run.split
+                if sp is not None and sp.stop is not None and fr.index >= sp.stop:
+                    sp.reading_done = True  # the rest is measured by the workers
+                    break
+                try:
+                    new = run.engine.process(fr)
+                except FrameError as err:
+                    self._problem_to(record, listeners)(err)
+                    continue
+                rows.extend(new)
+                if sp is not None and not sp.decided:
+                    sp.note_rows(new)
+                    if sp.ready() and sp.launch(run.engine, source.position) == 1:
+                        run.split = None  # too short to split: one process, the engine's own values
+        finally:
+            frames.close()  # the file being read is closed now, not when the generator is collected
         self._deliver(run, rows, record, listeners)
+        return n
+
+    def _start_engine(self, run: "_RunState", source: SessionSource, first: Frame) -> None:
+        run.engine = Engine(self._settings(source.facts, first))
+        o = self.options
+        if not o.follow and o.workers > 1:  # a finished session: later chunks go to other processes
+            n_c, n_z = (source.position["layout"] or (1, 1))[:2]
+            run.split = SplitRun(
+                workers=o.workers, path=str(self.path), frames_per_point=int(n_c) * int(n_z),
+                window_s=run.engine.settings.bleach_window_s,
+                source_kwargs=dict(channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
+                                   raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
+                                   pixel_size_um=o.pixel_size_um))
 
     def _collect_split(self, run: "_RunState", source: SessionSource, record, listeners) -> None:
         """The workers' rows, chunk after chunk, through the same record, thresholds and listeners."""
@@ -383,6 +392,8 @@ class Monitor:
                 split: SplitRun | None = None) -> dict:
         traces = record.read_traces()
         events = record.read_events()
+        # the plots first: drawing processes (if any) draw them while the summary is computed
+        panels = PanelDrawing(traces, events, self.profile, self._plots)
         extra = {}
         if engine is not None:
             info = engine.stream_info()
@@ -418,7 +429,7 @@ class Monitor:
             if ref is not None:
                 paths["reference"] = str(_write_tiff_atomic(self.out_dir / "reference.tif", ref))
         paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts,
-                                           plots=self._plots))
+                                           panels=panels))
         return paths
 
 

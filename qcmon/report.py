@@ -17,7 +17,7 @@ from qcmon.events import SYMBOLS, Event
 from qcmon.summary import GROUPS, _periods, _streams
 from qcmon.thresholds import Profile
 
-__all__ = ["envelope", "write_report", "report_html", "PlotWorkers"]
+__all__ = ["envelope", "write_report", "report_html", "PanelDrawing", "PlotWorkers"]
 
 #: Points per trace above which a plot shows a min/max envelope instead of every frame (the plots are 855 px wide:
 #: more points than pixel columns only cost drawing time).
@@ -144,11 +144,16 @@ def _panel_job(job: tuple) -> tuple[str, str] | None:
 
 
 def _load_matplotlib() -> None:
-    """Load the modules a plot needs, ahead of the plots."""
-    import importlib
+    """Load what a plot needs ahead of the plots: the modules, and (by drawing a small figure) the font, the text
+    layout caches and the PNG encoder, which the first plot of a process would otherwise load."""
+    from matplotlib.figure import Figure
 
-    for name in ("matplotlib.figure", "matplotlib.backends.backend_agg"):
-        importlib.import_module(name)
+    fig = Figure(figsize=(2, 1))
+    ax = fig.add_subplot()
+    ax.plot([0.0, 1.0], [0.0, 1.0], label="µm")
+    ax.set_xlabel("time (s)")
+    ax.legend(fontsize=7)
+    _png(fig)
 
 
 def _nothing() -> None:
@@ -160,7 +165,9 @@ class PlotWorkers:
 
     Loading matplotlib takes about 0.7 s here and each plot about 0.1 s; a summary of a finished session otherwise
     spends both after its last frame. Started early, the processes load matplotlib on the other core while the
-    frames are measured, and at the end draw the plots in parallel. Anything that goes wrong with them (a process
+    frames are measured, and at the end draw the plots in parallel. They run at the lowest priority
+    (:mod:`qcmon._plotproc`): two of them loading matplotlib at normal priority took 0.6–1.3 s of processor time
+    from a 2-core machine's measurement of 3,600 frames. Anything that goes wrong with them (a process
     that cannot start or dies) only means the plots are drawn in this process, as without them.
 
     Parameters
@@ -173,32 +180,55 @@ class PlotWorkers:
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
+        from qcmon._plotproc import start
+
+        # low priority (qcmon._plotproc): loading matplotlib must not slow the measurement on a busy core
         self._pool = ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"),
-                                         initializer=_load_matplotlib)
+                                         initializer=start)
         # processes start on demand: one empty job per process starts them all now
         for _ in range(processes):
             self._pool.submit(_nothing)
 
-    def map(self, jobs: list[tuple]) -> list[tuple[str, str] | None]:
-        """``_panel(*job)`` of every job, in order."""
-        return list(self._pool.map(_panel_job, jobs))
+    def submit(self, jobs: list[tuple]) -> list:
+        """Start ``_panel(*job)`` of every job; the futures, in order."""
+        return [self._pool.submit(_panel_job, job) for job in jobs]
 
     def close(self) -> None:
-        self._pool.shutdown(wait=False, cancel_futures=True)
+        """Stop the processes and wait for them (a plot being drawn is finished first, at most about 0.1 s).
+
+        Not waiting would leave the pool's manager thread running into the interpreter's exit, where Python 3.11 may
+        print an ignored ``OSError: Bad file descriptor`` (seen once here: a race between ``concurrent.futures``'
+        exit hook and that thread, which closes the pipe the hook writes to)."""
+        self._pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _draw_panels(traces, streams, events, profile, plots: PlotWorkers | None) -> list[tuple[str, str] | None]:
-    """The plots of :data:`_PANELS`, drawn by ``plots`` when given (falling back to this process)."""
-    jobs = []
-    for title, columns, scale, unit in _PANELS:
-        needed = {k: np.asarray(traces[k]) for k in ("time_s", "frame", *columns)}  # what a plot reads
-        jobs.append((needed, streams, events, profile, title, columns, scale, unit))
-    if plots is not None:
-        try:
-            return plots.map(jobs)
-        except Exception:  # noqa: BLE001 - a drawing process failed: the plots are drawn here instead
-            pass
-    return [_panel(*job) for job in jobs]
+class PanelDrawing:
+    """The report's plots (:data:`_PANELS`), drawn from the moment this is made by ``plots`` when given, so that
+    they are drawn while the summary is computed; :meth:`result` collects them (drawing here whatever the processes
+    could not)."""
+
+    def __init__(self, traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile,
+                 plots: PlotWorkers | None = None):
+        self.streams = _streams(traces)
+        self._jobs = []
+        for title, columns, scale, unit in _PANELS:
+            needed = {k: np.asarray(traces[k]) for k in ("time_s", "frame", *columns)}  # what a plot reads
+            self._jobs.append((needed, self.streams, list(events), profile, title, columns, scale, unit))
+        self._futures = None
+        if plots is not None and self.streams:
+            try:
+                self._futures = plots.submit(self._jobs)
+            except Exception:  # noqa: BLE001 - no drawing processes: drawn here in result()
+                self._futures = None
+
+    def result(self) -> list[tuple[str, str] | None]:
+        """``(column, base64 PNG)`` per panel, or None for a panel with nothing measured."""
+        if self._futures is not None:
+            try:
+                return [f.result() for f in self._futures]
+            except Exception:  # noqa: BLE001 - a drawing process failed: the plots are drawn here instead
+                pass
+        return [_panel(*job) for job in self._jobs]
 
 
 def _fmt(v) -> str:
@@ -217,7 +247,8 @@ def _verdict(v: str) -> str:
 
 
 def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile,
-                facts: Mapping | None = None, *, plots: PlotWorkers | None = None) -> str:
+                facts: Mapping | None = None, *, plots: PlotWorkers | None = None,
+                panels: PanelDrawing | None = None) -> str:
     """The text of ``report.html`` (see :func:`write_report`)."""
     e = html.escape
     events = list(events)
@@ -256,9 +287,10 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
     parts.append("<h2>Traces</h2><p class='small'>Dashed: warning level; solid: alarm level; shaded: declared "
                  "warning (orange) and alarm (red) periods. Long sessions show the minimum–maximum envelope, so "
                  "single-frame spikes stay visible.</p>")
-    streams = _streams(traces)
-    if streams:
-        for (title, *_), got in zip(_PANELS, _draw_panels(traces, streams, events, profile, plots)):
+    if panels is None:
+        panels = PanelDrawing(traces, events, profile, plots)
+    if panels.streams:
+        for (title, *_), got in zip(_PANELS, panels.result()):
             if got is None:
                 parts.append(f"<h3>{e(title)}</h3><p class='small'>not measured in this session</p>")
                 continue
@@ -309,7 +341,8 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
 
 
 def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequence[Event],
-                 profile: Profile, facts: Mapping | None = None, *, plots: PlotWorkers | None = None) -> Path:
+                 profile: Profile, facts: Mapping | None = None, *, plots: PlotWorkers | None = None,
+                 panels: PanelDrawing | None = None) -> Path:
     """Write ``report.html`` into ``out_dir`` atomically.
 
     Parameters
@@ -325,6 +358,8 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
         ``{key: {"value", "origin"}}``; default ``summary["facts"]``.
     plots : PlotWorkers, optional
         Processes that draw the plots (default: drawn in this process). The report is the same either way.
+    panels : PanelDrawing, optional
+        The plots, already started from these traces and events (``plots`` is then not used).
 
     Returns
     -------
@@ -334,4 +369,4 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     from qcmon.record import write_atomic
 
     return write_atomic(Path(out_dir) / "report.html",
-                        report_html(summary, traces, events, profile, facts, plots=plots))
+                        report_html(summary, traces, events, profile, facts, plots=plots, panels=panels))

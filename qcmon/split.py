@@ -116,19 +116,15 @@ def measure_chunk(job: ChunkJob) -> dict:
                         on_problem=lambda err: problems.append(str(err)))
     rows: list[dict] = []
     with threadpool_limits(limits=1, user_api="blas"):
-        done = False
-        while not done:
-            frames = src.poll(final=True, max_frames=64)
-            if not frames:
+        frames = src.frames(final=True)  # each frame read as it is measured (see SessionSource.frames)
+        for fr in frames:
+            if job.stop is not None and fr.index >= job.stop:
                 break
-            for fr in frames:
-                if job.stop is not None and fr.index >= job.stop:
-                    done = True
-                    break
-                try:
-                    rows.extend(engine.process(fr))
-                except FrameError as err:
-                    problems.append(str(err))
+            try:
+                rows.extend(engine.process(fr))
+            except FrameError as err:
+                problems.append(str(err))
+        frames.close()
         if job.stop is None:
             rows.extend(engine.flush())
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]

@@ -119,3 +119,19 @@ def test_plots_drawn_by_other_processes_give_the_same_report(session):
     broken = PlotWorkers(1)
     broken.close()
     assert report_html(summary, traces, events, prof, facts, plots=broken) == here
+
+
+def test_plot_processes_run_at_the_lowest_priority():
+    # POSIX niceness (os.nice, 19 = lowest): loading matplotlib in them must not take the measuring core
+    import os
+
+    from qcmon.report import PlotWorkers
+
+    if not hasattr(os, "nice"):
+        pytest.skip("no process niceness on this system")
+    workers = PlotWorkers(1)
+    try:
+        theirs = workers._pool.submit(os.getpriority, os.PRIO_PROCESS, 0).result(timeout=120)
+    finally:
+        workers.close()
+    assert theirs == min(19, os.getpriority(os.PRIO_PROCESS, 0) + 19)

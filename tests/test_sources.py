@@ -53,6 +53,41 @@ def _digest(folder):
     return out
 
 
+@pytest.mark.parametrize("layout", ["chunks", "raw", "thumbnails"])
+def test_frames_stopped_early_give_every_frame_once(tmp_path, layout):
+    # SessionSource.frames reads each frame as it is asked for; a reader that stops at any point gets the rest
+    # from the next call: together, the frames of one poll, in order, none twice (qcmon's own contract).
+    data = _stack(23)
+    if layout == "chunks":
+        for k in range(0, 23, 5):
+            _imwrite(tmp_path / f"chunk_{k:02d}.tif", data[k : k + 5])
+    elif layout == "raw":
+        (tmp_path / "frames.raw").write_bytes(data.tobytes())
+        (tmp_path / "frames.toml").write_text('dtype = "uint16"\nheight = 24\nwidth = 20\n')
+    else:  # a reduced-resolution page after every frame (NewSubfileType 1): not frames, passed over
+        with tifffile.TiffWriter(tmp_path / "session.tif") as tw:
+            for frame in data:
+                tw.write(frame, photometric="minisblack")
+                tw.write(frame[::2, ::2], photometric="minisblack", subfiletype=1)
+    source = SessionSource(tmp_path)
+    got = []
+    stops = iter([1, 3, 2, 7, 1, 4, 100])
+    while True:
+        frames = source.frames(final=True, max_frames=6)
+        taken = 0
+        for fr in frames:
+            got.append(fr)
+            taken += 1
+            if taken == next(stops, 100):
+                break
+        frames.close()
+        if taken == 0:
+            break
+    _frames_equal(got, list(data))
+    assert [f.index for f in got] == list(range(23))
+    assert source.problems == []
+
+
 # ----------------------------------------------------------------------------------------------- layouts
 @pytest.mark.parametrize("layout", ["per_frame", "chunks", "single", "raw", "bigtiff", "zlib"])
 def test_every_layout_gives_the_frames_in_order(tmp_path, layout):

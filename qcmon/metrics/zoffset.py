@@ -10,7 +10,6 @@ import warnings
 from typing import NamedTuple
 
 import numpy as np
-from scipy import ndimage
 
 from qcmon.metrics._imageops import add_shifted, as_image, as_stack, auto_bin, bin_image, finite_float32, shift_integer
 from qcmon.metrics.registration import ShiftEstimator
@@ -125,6 +124,8 @@ class ZEstimator:
                 res = ShiftEstimator(ref32).estimate(planes[best])
             if math.isfinite(res.dy_px):
                 self.shift_px = (float(res.dy_px), float(res.dx_px))
+                from scipy import ndimage  # only with a z-stack: not loaded by every start of qcmon
+
                 for p in range(self.n_planes):
                     planes[p] = ndimage.shift(planes[p], (-res.dy_px, -res.dx_px), order=1, mode="nearest")
             self._q = self._matrix(planes)

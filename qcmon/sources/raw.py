@@ -33,6 +33,7 @@ import sys
 import numpy as np
 
 from qcmon.errors import FrameError, NotReadyError
+from qcmon.sources._drain import drain
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -162,19 +163,22 @@ class RawStream:
 
     def read(self, limit: int, *, give_up: bool = False, on_open=None):
         """Read up to ``limit`` new complete frames; same contract as :meth:`TiffStream.read`."""
+        return drain(self.iter_read(limit, give_up=give_up, on_open=on_open))
+
+    def iter_read(self, limit: int, *, give_up: bool = False, on_open=None):
+        """:meth:`read` one frame at a time; same contract as :meth:`TiffStream.iter_read`."""
         if self.config is None:
             try:
                 self.config = self._configure(give_up)
             except (NotReadyError, FrameError) as exc:
-                return [], exc
+                return exc
             if on_open is not None:
                 on_open(self, None)
         c = self.config
         shape = (c["height"], c["width"])
         dtype = c["dtype"]
         frame_bytes = shape[0] * shape[1] * dtype.itemsize
-        items = []
-        with open(self.path, "rb") as fh:  # read-only, closed on return
+        with open(self.path, "rb") as fh:  # read-only, closed at the end or when the generator is closed
             st = os.fstat(fh.fileno())
             available = max(0, (st.st_size - c["header_bytes"]) // frame_bytes)
             self.pages_done += self.skip
@@ -189,19 +193,19 @@ class RawStream:
                 try:
                     got = fh.readinto(data)
                 except OSError as exc:
-                    return items, NotReadyError(f"read error: {exc}")
+                    return NotReadyError(f"read error: {exc}")
                 if got != frame_bytes:  # the file shrank under us
-                    return items, NotReadyError("raw stream is shorter than its size said")
+                    return NotReadyError("raw stream is shorter than its size said")
                 if not dtype.isnative:
                     data = data.byteswap().view(dtype.newbyteorder("="))
-                items.append((self.pages_done, data))
-                self.pages_done += 1
+                self.pages_done += 1  # before the yield: a frame handed on is consumed
+                yield self.pages_done - 1, data
         at_end = self.pages_done >= available
         self.signature = (st.st_size, st.st_mtime_ns) if at_end else None
         remainder = st.st_size - c["header_bytes"] - available * frame_bytes
         if at_end and remainder > 0:
-            return items, NotReadyError(f"frame {available} is incomplete: {remainder} of {frame_bytes} bytes written")
-        return items, None
+            return NotReadyError(f"frame {available} is incomplete: {remainder} of {frame_bytes} bytes written")
+        return None
 
     def sidecar_facts(self) -> dict[str, tuple[object, str]]:
         """Facts of the sidecar (origin "sidecar"); options fill what it lacks (origin "option")."""

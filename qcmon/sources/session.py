@@ -183,12 +183,22 @@ class SessionSource:
         list of Frame
             Never the same frame twice, never skipping one.
         """
+        return list(self.frames(final, max_frames=max_frames))
+
+    def frames(self, final: bool = False, *, max_frames: int | None = None) -> Iterator[Frame]:
+        """:meth:`poll` one frame at a time, each read from its file when it is asked for.
+
+        A frame measured as soon as it comes is still in the processor's cache: a loop over this is faster than
+        one over :meth:`poll`'s list (whose frames, read all before the first is measured, are not). The file
+        being read stays open, read-only, between the frames of one call. Stopping early is fine: a frame counts
+        as read once it has been yielded, and the rest comes with the next call.
+        """
         if max_frames is not None and max_frames < 1:
             raise ValueError(f"max_frames: must be >= 1, got {max_frames!r}")
         limit = math.inf if max_frames is None else max_frames
         self._scan()
-        out: list[Frame] = []
-        while self._queue and len(out) < limit:
+        given = 0
+        while self._queue and given < limit:
             key, name = self._queue[0]
             stream = self._streams[name]
             is_last = len(self._queue) == 1
@@ -212,20 +222,31 @@ class SessionSource:
             self._sizes[name] = st.st_size
             stalled = self._stalled(name, signature)
             stream.skip_frames = self._skip_left
+            items = stream.iter_read(min(limit - given, 1 << 30), give_up=final or stalled, on_open=self._opened)
+            stop = None
+            unopened = False
             try:
-                items, stop = stream.read(min(limit - len(out), 1 << 30), give_up=final or stalled,
-                                          on_open=self._opened)
-            except OSError as exc:
-                items, stop = [], NotReadyError(f"cannot be opened: {exc.strerror or exc}")
-                unopened = True
-            else:
-                unopened = False
-            self._count += self._skip_left - stream.skip_frames  # passed over: they hold their slots
-            self._skip_left, stream.skip_frames = stream.skip_frames, 0
-            for page, data in items:
-                self._emit(stream, page, data, out)
-            if stream.pages_done and (self._frontier is None or key > self._frontier):
-                self._frontier = key
+                while True:
+                    try:
+                        page, data = next(items)
+                    except StopIteration as end:
+                        stop = end.value
+                        break
+                    except OSError as exc:  # opening the file (reading errors are in ``stop``)
+                        stop = NotReadyError(f"cannot be opened: {exc.strerror or exc}")
+                        unopened = True
+                        break
+                    self._passed_over(stream)
+                    frame = self._emit(stream, page, data)
+                    if frame is not None:
+                        given += 1
+                        yield frame
+            finally:  # also when the caller stops early: what was read is accounted for
+                items.close()
+                self._passed_over(stream)
+                stream.skip_frames = 0
+                if stream.pages_done and (self._frontier is None or key > self._frontier):
+                    self._frontier = key
             if isinstance(stop, FrameError):
                 self._give_up(stop)
                 continue
@@ -241,12 +262,16 @@ class SessionSource:
                     self._stall[name] = (signature, time.monotonic())
                 break
             self._stall.pop(name, None)
-            if len(out) >= limit or stream.signature is None:
+            if given >= limit or stream.signature is None:
                 break
             if is_last:
                 break
             self._finish()
-        return out
+
+    def _passed_over(self, stream) -> None:
+        """Count the frames ``stream`` passed over without decoding (``skip_frames``): they hold their slots."""
+        self._count += self._skip_left - stream.skip_frames
+        self._skip_left = stream.skip_frames
 
     def __iter__(self) -> Iterator[Frame]:
         """All frames of a finished session (``poll(final=True)`` in chunks of 64)."""
@@ -411,9 +436,10 @@ class SessionSource:
             facts.set("bit_depth", np.dtype(facts.get("dtype")).itemsize * 8, "dtype")
         return facts
 
-    def _emit(self, stream, page: int, data, out: list[Frame]) -> None:
+    def _emit(self, stream, page: int, data) -> Frame | None:
+        """The frame of an item read from ``stream`` (None for a thumbnail or a page reported as a problem)."""
         if data is None:
-            return  # a thumbnail page: not a frame
+            return None  # a thumbnail page: not a frame
         if self._layout is None:
             facts = self.facts
             self._layout = (int(facts.get("channels", 1)), int(facts.get("planes", 1)),
@@ -428,7 +454,7 @@ class SessionSource:
         index = n // (n_c * n_z)
         if isinstance(data, FrameError):
             self._problem(data)
-            return
+            return None
         kind = (tuple(data.shape), str(data.dtype))
         if self._frame_kind is None:
             self._frame_kind = kind
@@ -436,7 +462,7 @@ class SessionSource:
             self._problem(FrameError(
                 f"frame size/type changed from {self._frame_kind[0]} {self._frame_kind[1]} to {kind[0]} {kind[1]}; "
                 "such pages are skipped", path=stream.path, page=page))
-            return
+            return None
         time_s = math.nan
         if stream.meta is not None:
             stamp = stream.meta.timestamp(page)
@@ -444,7 +470,7 @@ class SessionSource:
                 if self._t0 is None:
                     self._t0 = stamp
                 time_s = stamp - self._t0
-        out.append(Frame(data, index, channel=channel, plane=plane, time_s=time_s, source=stream.path, page=page))
+        return Frame(data, index, channel=channel, plane=plane, time_s=time_s, source=stream.path, page=page)
 
 
 def _same(a, b) -> bool:

@@ -12,7 +12,7 @@ pixels are decoded). Pages whose fingerprint equals that of the last fully parse
 :class:`tifffile.TiffFrame` objects that share that page's decoding; any other page is parsed in full by
 :class:`tifffile.TiffPage` and checked again.
 
-The file is opened read-only for one read and closed again; nothing is ever written, renamed or locked.
+The file is opened read-only for one batch of pages and closed again; nothing is ever written, renamed or locked.
 """
 
 from __future__ import annotations
@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import tifffile
 
 from qcmon.errors import FrameError, NotReadyError
+from qcmon.sources._drain import drain
 
 #: Size in bytes of one value of each TIFF field type (TIFF 6.0 section 2; BigTIFF adds 16, 17, 18).
 _TYPE_SIZES = {1: 1, 2: 1, 3: 2, 4: 4, 5: 8, 6: 1, 7: 1, 8: 2, 9: 4, 10: 8, 11: 4, 12: 8, 13: 4, 16: 8, 17: 8, 18: 8}
@@ -241,33 +242,43 @@ class TiffStream:
             be read just now), FrameError when the rest of the file is unusable; None at the end of the chain of
             pages or when ``limit`` was reached.
         """
-        items: list = []
-        with open(self.path, "rb") as fh:  # read-only, closed on return
+        return drain(self.iter_read(limit, give_up=give_up, on_open=on_open))
+
+    def iter_read(self, limit: int, *, give_up: bool = False, on_open=None):
+        """:meth:`read` one page at a time: a generator of the ``(page, data)`` items whose return value
+        (``StopIteration.value``) is ``stop``.
+
+        Each page is read when the next item is asked for, so that its pixels are still in the processor's cache
+        when they are measured right away. The file stays open (read-only) between the items. A page counts as
+        consumed once it is yielded: closing the generator early leaves the rest for the next read.
+        """
+        with open(self.path, "rb") as fh:  # read-only, closed at the end or when the generator is closed
             st = os.fstat(fh.fileno())  # taken before reading: a change after this is seen next time
             size = st.st_size
-            at_end = False
             try:
                 if self.header is None:
                     self.header = read_header(fh, size, self.path)
                     self.pointer = self.header.first_pointer
-                at_end = self._read_pages(fh, size, limit, give_up, on_open, items)
+                at_end = yield from self._pages(fh, size, limit, give_up, on_open)
             except NotReadyError as exc:
-                return items, exc
+                return exc
             except OSError as exc:
-                return items, NotReadyError(f"read error: {exc}")
+                return NotReadyError(f"read error: {exc}")
             except FrameError as exc:
                 if exc.path is None:
                     exc = FrameError(exc.reason, path=self.path, page=self.pages_done)
-                return items, exc
+                return exc
         # only a file read to the end of its chain of pages may be passed over while unchanged
         self.signature = (st.st_size, st.st_mtime_ns) if at_end else None
-        return items, None
+        return None
 
-    def _read_pages(self, fh, size, limit, give_up, on_open, items) -> bool:
+    def _pages(self, fh, size, limit, give_up, on_open):
+        """Generator of the pages as ``(page, data)``; returns whether the end of the chain was reached."""
         header = self.header
         tif = key = key_fp = None
+        given = 0
         try:
-            while len(items) < limit:
+            while given < limit:
                 offset = read_pointer(fh, header, self.pointer, size)
                 if offset == 0:
                     return True
@@ -281,8 +292,9 @@ class TiffStream:
                     self._advance(info)
                     continue
                 if info.reduced:
-                    items.append((page, None))
                     self._advance(info)
+                    given += 1
+                    yield page, None
                     continue
                 if self.skip_frames:
                     self.skip_frames -= 1
@@ -303,14 +315,16 @@ class TiffStream:
                     except Exception as exc:  # noqa: BLE001 - tifffile raises several types on corrupt tags
                         if not give_up:
                             raise NotReadyError(f"page {page} cannot be parsed yet: {exc}") from exc
-                        items.append((page, FrameError(f"the page directory cannot be parsed (corrupt file): {exc}",
-                                                       path=self.path, page=page)))
                         self._advance(info)
+                        given += 1
+                        yield page, FrameError(f"the page directory cannot be parsed (corrupt file): {exc}",
+                                               path=self.path, page=page)
                         continue
                     problem = page_problem(frame)
                     if problem is not None:
-                        items.append((page, FrameError(problem, path=self.path, page=page)))
                         self._advance(info)
+                        given += 1
+                        yield page, FrameError(problem, path=self.path, page=page)
                         continue
                     key, key_fp = frame, info.fingerprint
                 else:
@@ -323,8 +337,9 @@ class TiffStream:
                         raise NotReadyError(f"page {page} cannot be decoded yet: {exc}") from exc
                     data = FrameError(f"cannot be decoded ({frame.compression.name} compression): {exc}",
                                       path=self.path, page=page)
-                items.append((page, data))
-                self._advance(info)
+                self._advance(info)  # before the yield: a page handed on is consumed, even if the reader stops
+                given += 1
+                yield page, data
             return False
         finally:
             if tif is not None:
