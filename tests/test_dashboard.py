@@ -243,6 +243,11 @@ async def replayed(pilot, app: QcmonApp, monitor: ReplayMonitor) -> None:
     """Wait until the double has sent everything queued and the app has shown its last status."""
     await until(pilot, monitor.idle, "the replay")
     await until(pilot, lambda: app.status is not None and app.status.frames_measured == app._last_fed_frames, "the last status")
+    # rows that came after that status wait for the app's 1-s refresh timer: show them now, so that what a
+    # snapshot sees does not depend on whether the timer fired
+    if app._dirty:
+        app.refresh_display()
+        await pilot.pause()
 
 
 def last_frames(items) -> int:
