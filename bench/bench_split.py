@@ -4,7 +4,9 @@ Writes a multi-page TIFF session (cells on neuropil at 1.5 photons/px with plant
 ``bench_engine.make_frames`` cycled), then prints frames per second of:
 - the engine alone over the same frames held in memory (one core),
 - ``qcmon summarize PATH`` (reading, measuring, the record, summary and report) with ``--workers 1`` and ``2``,
-and the ratios: summarize / engine (target ≥ 0.8) and two / one process (target ≥ 1.8 on two idle cores).
+and the ratios of their medians over interleaved rounds: summarize / engine (target ≥ 0.8) and two / one process
+(target ≥ 1.8 on two idle cores). Consecutive identical runs of summarize differ by up to 15 % on this
+machine; one run of each would say more about the moment than about qcmon.
 
 No assertions: speed is read, never asserted. Run: ``python bench/bench_split.py [--size PX] [--frames N]``.
 """
@@ -61,6 +63,7 @@ def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--size", type=int, default=512)
     p.add_argument("--frames", type=int, default=4000)
+    p.add_argument("--rounds", type=int, default=3, help="interleaved rounds of the three measurements")
     args = p.parse_args()
     distinct, _ = make_frames(args.size, 200)
     with tempfile.TemporaryDirectory() as tmp:
@@ -72,14 +75,23 @@ def main() -> None:
         # written to disk before anything is timed (the kernel's write-back would otherwise slow the first
         # measurement); summarize_fps warms the page cache before each run
         os.sync()
-        before = engine_fps(distinct, args.frames)
-        one = summarize_fps(path, Path(tmp) / "out1", 1, args.frames)
-        two = summarize_fps(path, Path(tmp) / "out2", 2, args.frames)
-        eng = max(before, engine_fps(distinct, args.frames))  # the faster of two runs: a conservative ratio
-    print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores")
-    print(f"  engine alone (frames in memory, one core)   {eng:8.1f} frames/s   (faster of a run before and after)")
-    print(f"  qcmon summarize --workers 1                 {one:8.1f} frames/s   {one / eng:5.2f}× the engine")
-    print(f"  qcmon summarize --workers 2                 {two:8.1f} frames/s   {two / one:5.2f}× one process")
+        eng, one, two = [], [], []
+        for r in range(args.rounds):  # interleaved, so that a slow spell of the machine hits all three alike
+            eng.append(engine_fps(distinct, args.frames))
+            one.append(summarize_fps(path, Path(tmp) / f"out1_{r}", 1, args.frames))
+            two.append(summarize_fps(path, Path(tmp) / f"out2_{r}", 2, args.frames))
+    e, o, t = (float(np.median(x)) for x in (eng, one, two))
+    spread = [b / a for a, b in zip(eng, one)]
+    print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores, median of {args.rounds} interleaved rounds")
+    print(f"  engine alone (frames in memory, one core)   {e:8.1f} frames/s   (rounds: {_fmt(eng)})")
+    print(f"  qcmon summarize --workers 1                 {o:8.1f} frames/s   {o / e:5.2f}× the engine "
+          f"(rounds: {_fmt(one)}; per round {min(spread):.2f}–{max(spread):.2f}×)")
+    print(f"  qcmon summarize --workers 2                 {t:8.1f} frames/s   {t / o:5.2f}× one process "
+          f"(rounds: {_fmt(two)})")
+
+
+def _fmt(values) -> str:
+    return ", ".join(f"{v:.0f}" for v in values)
 
 
 if __name__ == "__main__":

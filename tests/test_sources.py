@@ -88,6 +88,28 @@ def test_frames_stopped_early_give_every_frame_once(tmp_path, layout):
     assert source.problems == []
 
 
+def test_a_page_unlike_the_one_before_is_parsed_in_full(tmp_path):
+    # Pages whose directory equals the previous one's but for the strip offset are not parsed again
+    # (tiffpages.read_ifd, like=...); a page of another size or type in the same file must not pass for one.
+    data = _stack(9, shape=(16, 12))
+    with tifffile.TiffWriter(tmp_path / "session.tif") as tw:
+        for i, frame in enumerate(data):
+            if i == 4:
+                tw.write(frame[:8], photometric="minisblack")  # another size
+            elif i == 6:
+                tw.write(frame.astype(np.uint8), photometric="minisblack")  # another type
+            else:
+                tw.write(frame, photometric="minisblack")
+    source = SessionSource(tmp_path)
+    frames = _read_all(source)
+    keep = [0, 1, 2, 3, 5, 7, 8]
+    _frames_equal(frames, [data[i] for i in keep])
+    assert [f.page for f in frames] == keep
+    assert [str(p.reason) for p in source.problems] == [
+        "frame size/type changed from (16, 12) uint16 to (8, 12) uint16; such pages are skipped",
+        "frame size/type changed from (16, 12) uint16 to (16, 12) uint8; such pages are skipped"]
+
+
 # ----------------------------------------------------------------------------------------------- layouts
 @pytest.mark.parametrize("layout", ["per_frame", "chunks", "single", "raw", "bigtiff", "zlib"])
 def test_every_layout_gives_the_frames_in_order(tmp_path, layout):

@@ -94,6 +94,10 @@ class IfdInfo:
     reduced: bool  # NewSubfileType says "reduced-resolution image" (a thumbnail, not a frame)
     dataoffsets: tuple[int, ...]
     databytecounts: tuple[int, ...]
+    #: For a page of one strip: ``(bytes before, bytes after, position, struct format)`` of the StripOffsets value
+    #: in the IFD's tag bytes. A next IFD whose tag bytes differ from these only there is the same page but for
+    #: where its pixels lie (the usual case: every page of a session written alike), and need not be parsed.
+    template: tuple | None = None
 
 
 def read_pointer(fh, header: TiffHeader, position: int, size: int) -> int:
@@ -104,10 +108,14 @@ def read_pointer(fh, header: TiffHeader, position: int, size: int) -> int:
     return struct.unpack(header.offset_format, fh.read(header.offset_size))[0]
 
 
-def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = True) -> IfdInfo:
+def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = True, like: IfdInfo | None = None
+             ) -> IfdInfo:
     """Minimal parse of the IFD at ``offset``, checking that it and the data it points to are inside the file.
 
     With ``full=False`` only the position of the next pointer is found (to pass over consumed pages on resume).
+    With ``like`` (an earlier page's result with a ``template``), an IFD whose tag bytes equal that page's but for
+    the offset of its one strip is not parsed again: it has the same tags, values and out-of-line values (which
+    lie inside the file, which does not shrink) and the same structure fingerprint.
 
     Raises
     ------
@@ -135,11 +143,21 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
         return IfdInfo(offset, next_pointer, (), False, (), ())
     buf = fh.read(nbytes)
     bo = header.byteorder
+    if like is not None and like.template is not None:
+        before, after, pos, fmt = like.template
+        if buf.startswith(before) and buf.endswith(after) and len(buf) == len(before) + len(after) + header.offset_size:
+            start = struct.unpack_from(fmt, buf, pos)[0]
+            if start + like.databytecounts[0] > size:
+                raise NotReadyError(f"image data ends at byte {start + like.databytecounts[0]} but the file has "
+                                    f"{size} bytes (still being written?)")
+            return IfdInfo(offset, next_pointer, like.fingerprint, like.reduced, (start,), like.databytecounts,
+                           like.template)
     head_format = header.tag_head_format
     inline, tag_size = header.offset_size, header.tag_size
     fingerprint = []
     values: dict[int, tuple[int, ...]] = {}
     reduced = False
+    strip_at = None
     for i in range(tagno):
         start = i * tag_size
         code, dtype, count = struct.unpack_from(head_format, buf, start)
@@ -158,6 +176,8 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
             if dtype not in _INT_FORMATS:
                 raise FrameError(f"tag {code} of the page directory at byte {offset} has type {dtype}")
             values[code] = _ints(fh, bo, dtype, count, value, value_offset)
+            if code == _STRIP_OFFSETS and count == 1:
+                strip_at = (start + tag_size - inline, f"{bo}{_INT_FORMATS[dtype]}")
     offsets = values.get(_STRIP_OFFSETS, values.get(_TILE_OFFSETS))
     counts = values.get(_STRIP_COUNTS, values.get(_TILE_COUNTS))
     if offsets is None or counts is None or len(offsets) != len(counts):
@@ -165,7 +185,11 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
     end = max((o + c for o, c in zip(offsets, counts)), default=0)
     if end > size:
         raise NotReadyError(f"image data ends at byte {end} but the file has {size} bytes (still being written?)")
-    return IfdInfo(offset, next_pointer, tuple(fingerprint), reduced, offsets, counts)
+    template = None
+    if strip_at is not None and len(offsets) == 1 and _TILE_OFFSETS not in values:
+        pos, fmt = strip_at
+        template = (buf[:pos], buf[pos + inline:], pos, fmt)
+    return IfdInfo(offset, next_pointer, tuple(fingerprint), reduced, offsets, counts, template)
 
 
 def _ints(fh, byteorder: str, dtype: int, count: int, value: bytes, value_offset: int | None) -> tuple[int, ...]:
@@ -275,7 +299,7 @@ class TiffStream:
     def _pages(self, fh, size, limit, give_up, on_open):
         """Generator of the pages as ``(page, data)``; returns whether the end of the chain was reached."""
         header = self.header
-        tif = key = key_fp = None
+        tif = key = key_fp = like = None
         given = 0
         try:
             while given < limit:
@@ -286,7 +310,9 @@ class TiffStream:
                 if offset in self.seen:
                     raise FrameError(f"the chain of pages loops back to byte {offset} (corrupt file)",
                                      path=self.path, page=page)
-                info = read_ifd(fh, header, offset, size, full=self.skip == 0)
+                info = read_ifd(fh, header, offset, size, full=self.skip == 0, like=like)
+                if info.template is not None:
+                    like = info
                 if self.skip:
                     self.skip -= 1
                     self._advance(info)
