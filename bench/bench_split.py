@@ -82,7 +82,8 @@ def main() -> None:
             two.append(summarize_fps(path, Path(tmp) / f"out2_{r}", 2, args.frames))
     e, o, t = (float(np.median(x)) for x in (eng, one, two))
     spread = [b / a for a, b in zip(eng, one)]
-    print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores, median of {args.rounds} interleaved rounds")
+    print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores, "
+          f"median of {args.rounds} interleaved rounds")
     print(f"  engine alone (frames in memory, one core)   {e:8.1f} frames/s   (rounds: {_fmt(eng)})")
     print(f"  qcmon summarize --workers 1                 {o:8.1f} frames/s   {o / e:5.2f}× the engine "
           f"(rounds: {_fmt(one)}; per round {min(spread):.2f}–{max(spread):.2f}×)")

@@ -118,7 +118,7 @@ class Monitor:
         Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``, and ``"earlier"``: where
         an earlier record in ``out_dir`` was moved (``resume=False``).
         """
-        # Frames are read in batches of new arrays: keep their memory for the next batch (see qcmon._memory).
+        # Frames are read into new arrays: keep freed memory for the next ones (see qcmon._memory).
         keep_freed_memory()
         # The engine's matrix products are small: one BLAS thread is fastest, and it leaves the other core to
         # the acquisition computer's own work (and to a second qcmon in an audit).

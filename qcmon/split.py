@@ -107,7 +107,7 @@ def measure_chunk(job: ChunkJob) -> dict:
     from qcmon._memory import keep_freed_memory
     from qcmon.sources import SessionSource
 
-    keep_freed_memory()  # frames are read in batches of new arrays: reuse their memory (see qcmon._memory)
+    keep_freed_memory()  # frames are read into new arrays: reuse freed memory (see qcmon._memory)
     problems: list[str] = []
     engine = pickle.loads(job.engine)
     token = {**job.token, "pages": 0, "files": {}, "given_up": []}

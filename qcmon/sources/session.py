@@ -38,7 +38,7 @@ import math
 import os
 import re
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Generator, Iterator
 
 import numpy as np
 
@@ -185,7 +185,7 @@ class SessionSource:
         """
         return list(self.frames(final, max_frames=max_frames))
 
-    def frames(self, final: bool = False, *, max_frames: int | None = None) -> Iterator[Frame]:
+    def frames(self, final: bool = False, *, max_frames: int | None = None) -> Generator[Frame, None, None]:
         """:meth:`poll` one frame at a time, each read from its file when it is asked for.
 
         A frame measured as soon as it comes is still in the processor's cache: a loop over this is faster than

@@ -113,9 +113,9 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
     """Minimal parse of the IFD at ``offset``, checking that it and the data it points to are inside the file.
 
     With ``full=False`` only the position of the next pointer is found (to pass over consumed pages on resume).
-    With ``like`` (an earlier page's result with a ``template``), an IFD whose tag bytes equal that page's but for
-    the offset of its one strip is not parsed again: it has the same tags, values and out-of-line values (which
-    lie inside the file, which does not shrink) and the same structure fingerprint.
+    With ``like`` (the result for an earlier page of the same read, with a ``template``), an IFD whose tag bytes
+    equal that page's but for the offset of its one strip is not parsed again: it has the same tags, values and
+    out-of-line values (found inside the file for that page, at the same file size) and the same fingerprint.
 
     Raises
     ------
@@ -145,7 +145,8 @@ def read_ifd(fh, header: TiffHeader, offset: int, size: int, *, full: bool = Tru
     bo = header.byteorder
     if like is not None and like.template is not None:
         before, after, pos, fmt = like.template
-        if buf.startswith(before) and buf.endswith(after) and len(buf) == len(before) + len(after) + header.offset_size:
+        if (len(buf) == len(before) + len(after) + header.offset_size and buf.startswith(before)
+                and buf.endswith(after)):
             start = struct.unpack_from(fmt, buf, pos)[0]
             if start + like.databytecounts[0] > size:
                 raise NotReadyError(f"image data ends at byte {start + like.databytecounts[0]} but the file has "
