@@ -82,10 +82,13 @@ class Monitor:
     """Measure a session, live or after the fact, and keep its record.
 
     Thread-safe controls: :meth:`stop`, :meth:`new_reference`, :meth:`add_note`. :meth:`run` blocks.
+    ``plots``: report plot processes to use (and leave open) instead of starting ``options.plot_processes`` of its
+    own, for a caller that measures one session after another (the audit).
     """
 
-    def __init__(self, options: MonitorOptions):
+    def __init__(self, options: MonitorOptions, *, plots: PlotWorkers | None = None):
         self.options = options
+        self._shared_plots = plots  # the caller's plot processes, kept open for its next runs
         self.path = Path(options.path)
         if not self.path.exists():
             raise QcmonError(f"{self.path}: no such file or folder")
@@ -147,7 +150,7 @@ class Monitor:
             watcher.__enter__()
         last_status = -math.inf
         idle_since = time.monotonic()
-        self._plots = None
+        self._plots = self._shared_plots
         self._start_plots()
         try:
             while True:
@@ -188,7 +191,7 @@ class Monitor:
             record.flush()
             return self._finish(record, source, run.engine, run.split)
         finally:
-            if self._plots is not None:
+            if self._plots is not None and self._plots is not self._shared_plots:
                 self._plots.close()
             if run.split is not None:
                 run.split.close()

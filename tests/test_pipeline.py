@@ -250,3 +250,22 @@ def test_command_line_builds_only_the_named_command_with_the_same_options():
             "print(sorted(m for m in sys.modules if m.startswith(('qcmon.audit', 'qcmon.simulate'))))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
+
+
+def test_plot_processes_given_to_monitors_serve_one_session_after_another(tmp_path, drift_session, drift_record):
+    # The audit hands one set of plot processes to each session's Monitor: each report is the one drawn in
+    # process (Agg is deterministic), and the processes stay open for the next session.
+    from qcmon.report import PlotWorkers
+
+    plots = PlotWorkers(2)
+    try:
+        for k in range(2):
+            opts = MonitorOptions(path=drift_session / "frames", out_dir=tmp_path / f"rec{k}", follow=False,
+                                  zstack=drift_session / "zstack.tif")
+            paths = Monitor(opts, plots=plots).run()
+            shown = Path(paths["report"]).read_text(encoding="utf-8").split("<h2>Traces</h2>")[1]
+            drawn_here = (drift_record / "report.html").read_text(encoding="utf-8").split("<h2>Traces</h2>")[1]
+            assert shown.split("<h2>Events")[0] == drawn_here.split("<h2>Events")[0]
+        assert plots._pool.submit(int, "3").result(timeout=60) == 3  # still open: a closed pool refuses work
+    finally:
+        plots.close()

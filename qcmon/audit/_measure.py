@@ -115,7 +115,7 @@ def _error_text(err: BaseException) -> str:
     return " ".join(text.split())
 
 
-def measure_session(task: dict) -> dict:
+def measure_session(task: dict, plots=None) -> dict:
     """Measure one session through :class:`qcmon.live.Monitor` (``follow=False``) into ``task["record"]``.
 
     Never raises for a bad session: the outcome carries the error. Writes the manifest beside the record.
@@ -125,6 +125,8 @@ def measure_session(task: dict) -> dict:
     task : dict
         ``rel``, ``path``, ``frame_files``, ``extra_files``, ``zstack``, ``record``, ``profile``,
         ``profile_fingerprint``, ``monitor`` (MonitorOptions keyword arguments of :data:`MONITOR_KEYS`).
+    plots : qcmon.report.PlotWorkers, optional
+        Processes that draw the report's plots (left open for the next session); default: drawn in this process.
 
     Returns
     -------
@@ -155,7 +157,7 @@ def measure_session(task: dict) -> dict:
                               workers=int(task.get("split_workers", 1)), **kwargs)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            monitor = Monitor(opts)
+            monitor = Monitor(opts, plots=plots)
             paths = monitor.run()
         outcome["warnings"] = sorted({f"{w.category.__name__}: {w.message}" for w in caught})
         outcome["problems"] = list(monitor.problems)

@@ -152,8 +152,16 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
     if opts.workers <= 1 or len(todo) < opts.workers:
         # fewer sessions than processes: one session after another, each long one split into chunks of time
         # points over the processes (qcmon.split; short sessions stay in one process)
-        for t in todo:
-            yield measure_session({**t, "split_workers": opts.workers})
+        # the report's plots: drawn by two low-priority processes kept for the whole audit, which load matplotlib
+        # while the first session is measured and draw each session's plots side by side at its end (the cores
+        # are otherwise idle then); in this process if they cannot start
+        plots = _plot_workers() if todo else None
+        try:
+            for t in todo:
+                yield measure_session({**t, "split_workers": opts.workers}, plots)
+        finally:
+            if plots is not None:
+                plots.close()
         return
     ctx = multiprocessing.get_context("spawn")
     with cf.ProcessPoolExecutor(max_workers=min(opts.workers, len(todo)), mp_context=ctx) as pool:
@@ -165,6 +173,15 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
             except Exception as err:  # the worker process died (e.g. out of memory)
                 yield {"rel": t["rel"], "status": "error", "error": f"worker failed: {err}", "record": t["record"],
                        "summary": None, "frames": 0, "bytes": 0}
+
+
+def _plot_workers():
+    from qcmon.report import PlotWorkers
+
+    try:
+        return PlotWorkers(2)
+    except Exception:  # noqa: BLE001 - no processes to spare: each report draws its plots in this process
+        return None
 
 
 def _read_traces(record: Path):
