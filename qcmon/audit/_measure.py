@@ -15,8 +15,12 @@ import time
 import traceback
 import warnings
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import qcmon
+
+if TYPE_CHECKING:  # the report module loads only when a session is measured
+    from qcmon.report import PlotWorkers
 
 #: Version of the manifest layout; a different one means "measure again".
 MANIFEST_SCHEMA = "qcmon.audit-manifest/1"
@@ -115,7 +119,7 @@ def _error_text(err: BaseException) -> str:
     return " ".join(text.split())
 
 
-def measure_session(task: dict, plots=None) -> dict:
+def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
     """Measure one session through :class:`qcmon.live.Monitor` (``follow=False``) into ``task["record"]``.
 
     Never raises for a bad session: the outcome carries the error. Writes the manifest beside the record.
