@@ -154,8 +154,7 @@ class Monitor:
         self._start_plots()
         try:
             while True:
-                n = self._ingest(run, source, source.frames(final=not o.follow, max_frames=_BATCH), record,
-                                 listeners)
+                n = self._ingest(run, source, self._frames(source, final=not o.follow), record, listeners)
                 self.facts = source.facts
                 if n:
                     idle_since = time.monotonic()
@@ -176,8 +175,7 @@ class Monitor:
                     watcher.wait(0.2)
             # end of watch: whatever completed meanwhile, then what the engine held back
             while o.follow:
-                if self._ingest(run, source, source.frames(final=True, max_frames=_BATCH), record,
-                                listeners) < _BATCH:
+                if self._ingest(run, source, self._frames(source, final=True), record, listeners) < _BATCH:
                     break
             if run.engine is not None:
                 self._deliver(run, run.engine.flush(), record, listeners)
@@ -208,9 +206,19 @@ class Monitor:
             except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
                 self._plots = None
 
+    def _frames(self, source: SessionSource, *, final: bool) -> Generator[Frame, None, None]:
+        """The next batch of frames. A finished session: each read as it is measured (``SessionSource.frames``:
+        still in the cache when measured; its file stays open, read-only, for the batch). While the microscope
+        writes: the whole batch read first (``poll``), so that its file is open only while it is read — on some
+        systems a writer cannot rename or delete a file another program holds open."""
+        if self.options.follow:
+            yield from source.poll(final=final, max_frames=_BATCH)
+        else:
+            yield from source.frames(final=final, max_frames=_BATCH)
+
     def _ingest(self, run: "_RunState", source: SessionSource, frames: Generator[Frame, None, None], record,
                 listeners) -> int:
-        """Measure ``frames`` as they are read (``SessionSource.frames``), record the rows; how many were read."""
+        """Measure ``frames`` (from :meth:`_frames`), record the rows; how many were read."""
         rows: list[dict] = []
         n = 0
         try:
