@@ -29,7 +29,7 @@ from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
-from qcmon.record import SessionRecord, write_atomic
+from qcmon.record import EXCLUDE_FILE, REFERENCE_FILE, SUMMARY_FILE, SessionRecord, write_atomic
 from qcmon.report import PanelDrawing, PlotWorkers, write_report
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
@@ -431,14 +431,14 @@ class Monitor:
         paths = {"out_dir": str(self.out_dir)}
         if self.earlier_record is not None:
             paths["earlier"] = str(self.earlier_record)
-        paths["summary"] = str(write_atomic(self.out_dir / "summary.json",
+        paths["summary"] = str(write_atomic(self.out_dir / SUMMARY_FILE,
                                             json.dumps(_jsonable(summary), indent=2, ensure_ascii=False)))
         ranges = exclude_ranges(traces, events, self.profile)
-        paths["exclude"] = str(_write_exclude(self.out_dir / "exclude.csv", ranges))
+        paths["exclude"] = str(_write_exclude(self.out_dir / EXCLUDE_FILE, ranges))
         if engine is not None and engine.streams:
             ref = engine.reference_image(*engine.streams[0])
             if ref is not None:
-                paths["reference"] = str(_write_tiff_atomic(self.out_dir / "reference.tif", ref))
+                paths["reference"] = str(_write_tiff_atomic(self.out_dir / REFERENCE_FILE, ref))
         paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts,
                                            panels=panels))
         return paths

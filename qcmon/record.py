@@ -38,8 +38,12 @@ from qcmon.events import Event
 
 __all__ = [
     "EVENTS_FILE",
+    "EXCLUDE_FILE",
     "INFO_FILE",
     "RECORD_FILES",
+    "REFERENCE_FILE",
+    "REPORT_FILE",
+    "SUMMARY_FILE",
     "TRACES_FILE",
     "SessionRecord",
     "read_events",
@@ -52,8 +56,12 @@ __all__ = [
 TRACES_FILE = "traces.csv"
 EVENTS_FILE = "events.jsonl"
 INFO_FILE = "session.json"
+SUMMARY_FILE = "summary.json"
+EXCLUDE_FILE = "exclude.csv"
+REFERENCE_FILE = "reference.tif"
+REPORT_FILE = "report.html"
 #: Every file qcmon writes into an output folder (``--restart`` sets these aside, nothing else).
-RECORD_FILES = (TRACES_FILE, EVENTS_FILE, INFO_FILE, "summary.json", "exclude.csv", "reference.tif", "report.html")
+RECORD_FILES = (TRACES_FILE, EVENTS_FILE, INFO_FILE, SUMMARY_FILE, EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE)
 
 #: Seconds between forced writes to the disk (os.fsync).
 SYNC_INTERVAL_S = 1.0

@@ -366,7 +366,7 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     pathlib.Path
         The report's path.
     """
-    from qcmon.record import write_atomic
+    from qcmon.record import REPORT_FILE, write_atomic
 
-    return write_atomic(Path(out_dir) / "report.html",
+    return write_atomic(Path(out_dir) / REPORT_FILE,
                         report_html(summary, traces, events, profile, facts, plots=plots, panels=panels))

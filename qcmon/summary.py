@@ -462,13 +462,13 @@ def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events:
     dict
         The summary.
     """
-    from qcmon.record import write_atomic
+    from qcmon.record import EXCLUDE_FILE, SUMMARY_FILE, write_atomic
     from qcmon.report import write_report
 
     out_dir = Path(out_dir)
     summary = summarize_traces(traces, events, facts=facts, profile=profile, extra=extra)
-    write_atomic(out_dir / "summary.json", summary_json(summary))
-    write_atomic(out_dir / "exclude.csv", exclude_csv(exclude_ranges(traces, events, profile)))
+    write_atomic(out_dir / SUMMARY_FILE, summary_json(summary))
+    write_atomic(out_dir / EXCLUDE_FILE, exclude_csv(exclude_ranges(traces, events, profile)))
     write_report(out_dir, summary, traces, events, profile, facts or {})
     return summary
 
@@ -490,11 +490,11 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
     dict
         The summary written.
     """
-    from qcmon.record import read_events, read_info, read_traces
+    from qcmon.record import SUMMARY_FILE, read_events, read_info, read_traces
 
     out_dir = Path(out_dir)
     info = read_info(out_dir)
-    previous = out_dir / "summary.json"
+    previous = out_dir / SUMMARY_FILE
     if not info and previous.exists():  # a session without session.json: take facts and profile from before
         try:
             old = json.loads(previous.read_text(encoding="utf-8"))
