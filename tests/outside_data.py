@@ -1,0 +1,137 @@
+"""Data and reference implementations that qcmon did not make: the outside half of every accuracy check.
+
+A test against qcmon's own simulator shares the simulator's blind spots. The functions here give real images
+(made by microscopes, shipped inside public packages) to use as specimens, and a detector model that follows the
+published noise model of the EMVA 1288 standard, so that a metric can be held against ground truth on data whose
+structure nobody on this project chose.
+
+Sources
+-------
+- :func:`nuclei_2d`: ``stardist/data/images/img2d.tif`` of the ``stardist`` 0.9.2 wheel on the package index
+  (BSD-3-Clause): a 512 × 512 uint16 widefield fluorescence image of stained cell nuclei. ``make setup`` fetches
+  the wheel (``pip download --no-deps``) into ``.venv/outside/``; nothing is downloaded at test time and the
+  package is never imported or installed (only its data file is read from the wheel).
+- :func:`nuclei_3d`: ``stardist/data/images/img3d.tif`` of the same wheel: a 31 × 61 × 57 uint16 fluorescence
+  volume of nuclei (planes × rows × columns).
+- scikit-image's bundled images (``skimage.data``) are real photographs and micrographs, not fluorescence; use
+  them where any real structure will do (the peer library's own registration tests use ``camera``).
+- The EMVA 1288 reference implementation is the ``emva1288`` package (test extra); it calls ``numpy.asfarray``,
+  removed in numpy 2: :func:`emva1288_modules` restores that alias before importing it.
+
+The detector model (:func:`detect`) is the linear camera model of EMVA 1288 release 4.0, section 2: photons
+arrive Poisson-distributed, the conversion gain K turns electrons into DN, a Gaussian dark noise σ_d (DN) and an
+offset μ_dark are added, and the result is quantised and clipped to the digitiser's range [0, 2ⁿ − 1].
+"""
+
+from __future__ import annotations
+
+import functools
+import glob
+import io
+import os
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import tifffile
+
+__all__ = ["OutsideDataMissing", "nuclei_2d", "nuclei_3d", "specimen_crop", "detect", "emva1288_modules"]
+
+_REPO = Path(__file__).resolve().parents[1]
+
+
+class OutsideDataMissing(RuntimeError):
+    """The wheel holding the outside images is not where ``make setup`` puts it."""
+
+
+def _wheel() -> Path:
+    folder = Path(os.environ.get("QCMON_OUTSIDE_DATA", _REPO / ".venv" / "outside"))
+    found = sorted(glob.glob(str(folder / "stardist-0.9.2-*.whl")))
+    if not found:
+        raise OutsideDataMissing(
+            f"no stardist-0.9.2 wheel in {folder}: run `make setup` (it fetches the wheel whose package data are "
+            "the real fluorescence images of the outside checks), or set QCMON_OUTSIDE_DATA to its folder")
+    return Path(found[-1])
+
+
+@functools.lru_cache(maxsize=None)
+def _read(member: str) -> np.ndarray:
+    with zipfile.ZipFile(_wheel()) as zf:
+        data = zf.read(member)
+    arr = tifffile.imread(io.BytesIO(data))
+    arr.setflags(write=False)
+    return arr
+
+
+def nuclei_2d() -> np.ndarray:
+    """The 512 × 512 uint16 fluorescence image of nuclei shipped in the stardist 0.9.2 wheel (read-only)."""
+    return _read("stardist/data/images/img2d.tif")
+
+
+def nuclei_3d() -> np.ndarray:
+    """The 31 × 61 × 57 uint16 fluorescence volume of nuclei shipped in the stardist 0.9.2 wheel (read-only)."""
+    return _read("stardist/data/images/img3d.tif")
+
+
+def specimen_crop(image: np.ndarray, shape: tuple[int, int], dy: float, dx: float, *, margin: int = 0) -> np.ndarray:
+    """A window of ``image`` whose content is moved by (``dy``, ``dx``) px, with real (non-periodic) edges.
+
+    The window of ``shape`` sits at the centre of ``image`` (less ``margin``); its content is ``image`` shifted by
+    (dy, dx) — + toward increasing row/column, the sign of qcmon's ``dy_px``/``dx_px`` — by cubic-spline
+    interpolation (``scipy.ndimage.shift``, order 3) of the whole image before cropping, so nothing wraps around.
+    """
+    from scipy import ndimage
+
+    h, w = shape
+    H, W = image.shape
+    if h + 2 * margin > H or w + 2 * margin > W:
+        raise ValueError(f"a window of {shape} with margin {margin} does not fit in {image.shape}")
+    top, left = (H - h) // 2, (W - w) // 2
+    pad = int(np.ceil(max(abs(dy), abs(dx)))) + 4
+    r0, r1 = max(top - pad, 0), min(top + h + pad, H)
+    c0, c1 = max(left - pad, 0), min(left + w + pad, W)
+    sub = ndimage.shift(image[r0:r1, c0:c1].astype(np.float64), (dy, dx), order=3, mode="nearest")
+    out = sub[top - r0:top - r0 + h, left - c0:left - c0 + w]
+    return np.clip(out, 0, None)
+
+
+def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: float = 1.0, offset: float = 0.0,
+           read_noise_dn: float = 0.0, bits: int = 16, dtype=np.uint16) -> np.ndarray:
+    """One frame of the EMVA 1288 linear camera model: Poisson photons × gain + offset + Gaussian dark noise.
+
+    Parameters
+    ----------
+    expected_photons : (M, N) ndarray
+        Mean detected photons (electrons) per pixel.
+    gain : float
+        Conversion gain K, DN per photon.
+    offset : float
+        Dark level μ_dark, DN.
+    read_noise_dn : float
+        Dark noise σ_d, DN.
+    bits : int
+        Digitiser bits n: values are rounded and clipped to [0, 2ⁿ − 1] (a 12-bit digitiser in a 16-bit file:
+        ``bits=12, dtype=np.uint16``).
+    """
+    electrons = rng.poisson(np.clip(expected_photons, 0, None)).astype(np.float64)
+    dn = electrons * gain + offset
+    if read_noise_dn:
+        dn += rng.normal(0.0, read_noise_dn, dn.shape)
+    info = np.iinfo(dtype) if np.dtype(dtype).kind in "ui" else None
+    hi = float(2 ** bits - 1)
+    lo = 0.0
+    if info is not None:
+        hi = min(hi, float(info.max))
+        lo = max(lo, float(info.min))
+    return np.clip(np.rint(dn), lo, hi).astype(dtype)
+
+
+@functools.lru_cache(maxsize=None)
+def emva1288_modules():
+    """Import the EMVA 1288 reference implementation (``emva1288.process``), giving numpy 2 its ``asfarray``."""
+    if not hasattr(np, "asfarray"):
+        np.asfarray = lambda a, dtype=np.float64: np.asarray(a, dtype=dtype)  # removed in numpy 2.0
+    import emva1288.process as process
+    import emva1288.process.routines as routines
+
+    return process, routines
