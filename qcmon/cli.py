@@ -43,6 +43,9 @@ def _add_acquisition(p: argparse.ArgumentParser) -> None:
                    help="measure motion on channel C and apply it to the others")
     g.add_argument("--raw-dtype", metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
     g.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
+    g.add_argument("--dataset", metavar="PATH",
+                   help="the image series to read in an HDF5, NWB or Zarr file (a dataset path or NWB series name); "
+                        "needed when the file holds several")
     p.add_argument("--profile", default="default", metavar="NAME|FILE",
                    help="threshold profile: a name from thresholds/ or a TOML file (default: %(default)s)")
     p.add_argument("--out", type=Path, metavar="DIR",
@@ -58,7 +61,7 @@ def _options(args, *, follow: bool):
         on_alarm=getattr(args, "on_alarm", None), frame_rate_hz=args.frame_rate, pixel_size_um=args.pixel_size,
         bit_depth=args.bit_depth, dark_level=args.dark_level, zstack=args.zstack, z_step_um=args.z_step,
         motion_channel=args.motion_channel, channels=args.channels, planes=args.planes,
-        raw_dtype=args.raw_dtype, raw_shape=tuple(args.raw_shape) if args.raw_shape else None,
+        raw_dtype=args.raw_dtype, raw_shape=tuple(args.raw_shape) if args.raw_shape else None, dataset=args.dataset,
         resume=not getattr(args, "restart", False), workers=getattr(args, "workers", 1),
         # a finished session: the report's plots are drawn by two processes that load matplotlib meanwhile
         plot_processes=0 if follow else 2)
@@ -81,7 +84,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help)
         return p if only is None or only == name else None
 
-    p = command("summarize", "measure a finished session (folder or TIFF) and write its record")
+    p = command("summarize", "measure a finished session (folder, TIFF, HDF5, NWB or Zarr) and write its record")
     if p is not None:
         p.add_argument("path", type=Path, metavar="PATH")
         _add_acquisition(p)

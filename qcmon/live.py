@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 import math
 import queue
+import re
 import shlex
 import subprocess
 import threading
@@ -60,6 +61,7 @@ class MonitorOptions:
     planes: int | None = None
     raw_dtype: str | None = None
     raw_shape: tuple[int, int] | None = None
+    dataset: str | None = None  # the image series of an HDF5, NWB or Zarr container
     resume: bool = True
     status_every_s: float = 5.0
     forecast_loss_pct: float = 20.0
@@ -68,13 +70,19 @@ class MonitorOptions:
     engine_overrides: dict = field(default_factory=dict)
 
 
-def default_out_dir(path: Path) -> Path:
+def default_out_dir(path: Path, dataset: str | None = None) -> Path:
     """Where the record goes unless ``--out`` says otherwise: beside the session, never inside it.
 
-    ``/data/mouse7/session3`` → ``/data/mouse7/session3.qcmon``; a single file ``run.tif`` → ``run.qcmon``.
+    ``/data/mouse7/session3`` → ``/data/mouse7/session3.qcmon``; a single file ``run.tif`` → ``run.qcmon``; a Zarr
+    store ``run.zarr`` → ``run.qcmon``; a series chosen in a container, ``run.nwb`` with ``--dataset TwoPhotonSeries``
+    → ``run.TwoPhotonSeries.qcmon``.
     """
     path = Path(path).resolve()
-    stem = path.name if path.is_dir() else path.stem
+    stem = path.name if path.is_dir() and not path.name.lower().endswith(".zarr") else path.stem
+    if stem.lower().endswith(".ome"):
+        stem = stem[:-4]
+    if dataset:
+        stem += "." + re.sub(r"[^\w.-]+", "_", dataset.strip("/"))
     return path.parent / f"{stem}.qcmon"
 
 
@@ -92,7 +100,7 @@ class Monitor:
         self.path = Path(options.path)
         if not self.path.exists():
             raise QcmonError(f"{self.path}: no such file or folder")
-        self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path)
+        self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path, options.dataset)
         if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
             raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")
         self.profile: Profile = load_profile(options.profile)
@@ -140,7 +148,8 @@ class Monitor:
             run.status.paused_reason = "resuming: replaying the frames already recorded"
         source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
                                raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
-                               pixel_size_um=o.pixel_size_um, on_problem=self._problem_to(record, listeners))
+                               pixel_size_um=o.pixel_size_um, dataset=o.dataset,
+                               on_problem=self._problem_to(record, listeners))
         watcher = None
         if o.follow:
             from qcmon.sources.watcher import FolderWatcher
@@ -255,7 +264,7 @@ class Monitor:
                 window_s=run.engine.settings.bleach_window_s,
                 source_kwargs=dict(channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
                                    raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
-                                   pixel_size_um=o.pixel_size_um))
+                                   pixel_size_um=o.pixel_size_um, dataset=o.dataset))
 
     def _collect_split(self, run: "_RunState", source: SessionSource, record, listeners) -> None:
         """The workers' rows, chunk after chunk, through the same record, thresholds and listeners."""

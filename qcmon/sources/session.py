@@ -44,6 +44,7 @@ import numpy as np
 
 from qcmon.errors import FrameError, NotReadyError
 from qcmon.frames import AcquisitionFacts, Frame
+from qcmon.sources.arrays import ArrayStream, container_kind
 from qcmon.sources.metadata import FileMetadata, read_file_metadata
 from qcmon.sources.raw import RAW_SUFFIXES, RawStream, parse_dtype
 from qcmon.sources.tiffpages import TiffStream
@@ -76,7 +77,11 @@ class SessionSource:
     Parameters
     ----------
     path : str or path-like
-        A session folder or a single TIFF file (or raw stream).
+        A session folder or a single TIFF file (or raw stream), or a container of image series: an HDF5 or NWB
+        file or a Zarr folder (see :mod:`qcmon.sources.arrays`).
+    dataset : str, optional
+        The image series to read in a container (its name or the path of its array); needed when it holds
+        several.
     channels, planes : int, optional
         Channels and planes interleaved in the pages, when the files do not say.
     raw_dtype : numpy dtype-like, optional
@@ -113,7 +118,7 @@ class SessionSource:
     def __init__(self, path, *, channels: int | None = None, planes: int | None = None, raw_dtype=None,
                  raw_shape=None, frame_rate_hz: float | None = None, pixel_size_um: float | None = None,
                  start: dict | None = None, on_problem: Callable[[FrameError], object] | None = None,
-                 override: bool = False, grace_s: float = 30.0, skip_frames: int = 0):
+                 override: bool = False, grace_s: float = 30.0, skip_frames: int = 0, dataset: str | None = None):
         path = os.fspath(path)
         if not os.path.exists(path):
             raise ValueError(f"path: {path} does not exist")
@@ -130,8 +135,16 @@ class SessionSource:
         if not (grace_s >= 0):
             raise ValueError(f"grace_s: must be >= 0 s, got {grace_s!r}")
         self.path = path
-        self._folder = path if os.path.isdir(path) else os.path.dirname(path) or "."
-        self._single = None if os.path.isdir(path) else os.path.basename(path)
+        self._container = container_kind(path)
+        if dataset is not None and self._container is None:
+            raise ValueError(f"dataset: {path} is not an HDF5, NWB or Zarr container; a dataset cannot be chosen")
+        self._dataset = dataset
+        if self._container is not None:  # one file (a Zarr store is a folder) holding the session
+            path = os.path.normpath(path)
+            self._folder, self._single = os.path.dirname(path) or ".", os.path.basename(path)
+        else:
+            self._folder = path if os.path.isdir(path) else os.path.dirname(path) or "."
+            self._single = None if os.path.isdir(path) else os.path.basename(path)
         self._raw_dtype = None if raw_dtype is None else parse_dtype(raw_dtype, what="raw_dtype")
         self._raw_shape = raw_shape
         self._options = {"channels": channels, "planes": planes, "frame_rate_hz": frame_rate_hz,
@@ -147,7 +160,7 @@ class SessionSource:
         self.notes: list[str] = []
         self._reported: set[tuple[str, str]] = set()
         self._queue: list[tuple[tuple, str]] = []  # unfinished files in natural order
-        self._streams: dict[str, TiffStream | RawStream] = {}
+        self._streams: dict[str, TiffStream | RawStream | ArrayStream] = {}
         self._done: dict[str, int] = {}  # finished files -> pages consumed
         self._dead: dict[str, int] = {}  # files given up -> pages consumed
         self._frontier: tuple | None = None  # natural key of the latest file that was read from
@@ -215,7 +228,7 @@ class SessionSource:
                 self._finish()
                 continue
             seen = self._sizes.get(name, 0)
-            if st.st_size < seen:
+            if st.st_size < seen and stream.kind != "array":  # (a Zarr store is a folder: its size says nothing)
                 self._give_up(FrameError(f"file shrank from {seen} to {st.st_size} bytes "
                                          "(rewritten?); not read further", path=path, page=stream.pages_done))
                 continue
@@ -365,7 +378,10 @@ class SessionSource:
                 self._problem(FrameError("appeared after later files had been read; not read, to keep the "
                                          "acquisition order", path=full))
                 continue
-            if _suffix(name) in RAW_SUFFIXES:
+            if self._container is not None:
+                stream = ArrayStream(full, dataset=self._dataset, channels=self._options["channels"],
+                                     planes=self._options["planes"])
+            elif _suffix(name) in RAW_SUFFIXES:
                 stream = RawStream(full, dtype=self._raw_dtype, shape=self._raw_shape)
             else:
                 stream = TiffStream(full)
@@ -406,7 +422,9 @@ class SessionSource:
     def _opened(self, stream, tif) -> None:
         if stream.meta is not None:
             return
-        if tif is None:
+        if tif is None and stream.kind == "array":
+            stream.meta = stream.file_metadata()
+        elif tif is None:
             stream.meta = FileMetadata(facts=stream.sidecar_facts(), plane_fastest=False)
         else:
             try:

@@ -206,8 +206,6 @@ def _ints(fh, byteorder: str, dtype: int, count: int, value: bytes, value_offset
 
 def page_problem(page: tifffile.TiffPage) -> str | None:
     """Why a complete page cannot be measured as a monochrome frame, or None if it can."""
-    if page.is_tiled:
-        return "tiled pages are not supported (write strips)"
     if page.samplesperpixel != 1 or page.photometric in (2, 3, 6):
         return (f"colour page ({page.samplesperpixel} samples per pixel, photometric "
                 f"{getattr(page.photometric, 'name', page.photometric)}); one monochrome sample per pixel expected")
