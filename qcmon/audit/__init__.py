@@ -8,7 +8,11 @@ reference z-stacks named ``zstack*.tif``), or raw streams (``*.raw``, ``*.bin``,
 that could not be read (an acquisition that wrote nothing is worth seeing). Never sessions, and never entered:
 qcmon's own output (folders named ``*.qcmon``, any folder holding a ``summary.json`` written by qcmon), the
 audit's ``--out`` folder and hidden folders. A ``zstack*.tif`` in the session folder or its parent is used as the
-session's reference z-stack. Paths in every output are relative to the ROOT (prefixed by the ROOT's name when
+session's reference z-stack. A container file is a session too, once per image series it holds: an NWB file
+(``*.nwb``) with a two-photon or one-photon series in ``/acquisition``, an HDF5 file (``*.h5``, ``*.hdf5``) or a
+Zarr store (``*.zarr``, never entered) holding a dataset of 3 to 5 axes (see :mod:`qcmon.sources.arrays`); its
+path is the file's, followed by ``/SERIES`` when the file holds several. A container that cannot be opened is
+listed as a session that could not be read. Paths in every output are relative to the ROOT (prefixed by the ROOT's name when
 several roots are given). Nothing is ever written into the ROOTs.
 
 What it writes (``--out DIR``)

@@ -33,6 +33,8 @@ class SessionEntry:
         The frame files it holds directly (TIFF, or raw streams with their sidecars), sorted by name.
     zstack : Path or None
         A reference z-stack found in the folder or its parent (``zstack*.tif``).
+    dataset : str or None
+        For a session in a container file (``path`` is the file): its image series, when the file holds several.
     """
 
     path: Path
@@ -40,6 +42,8 @@ class SessionEntry:
     frame_files: tuple[Path, ...] = ()
     zstack: Path | None = None
     extra_files: tuple[Path, ...] = field(default=())
+    #: The image series to read when ``path`` is a container (HDF5, NWB, Zarr) holding several.
+    dataset: str | None = None
 
 
 def _is_zstack(name: str) -> bool:
@@ -70,6 +74,38 @@ def frame_files_in(folder: Path) -> tuple[list[Path], list[Path]]:
                     sidecars.append(folder / side)
                     break
     return frames, sidecars
+
+
+def container_sessions(folder: Path, names) -> list[tuple[Path, str | None, str | None]]:
+    """The sessions held in container files among ``names`` (files and folders of ``folder``).
+
+    Returns ``(path, dataset, error)`` for each image series: ``dataset`` None when the file holds one series,
+    ``error`` the reason when the file cannot be opened (listed as a session that could not be read). An HDF5 file
+    or Zarr store without an image series is not a session; nor is an NWB file without an imaging series.
+    """
+    from qcmon.errors import FrameError
+    from qcmon.sources.arrays import container_kind, list_series
+
+    out = []
+    for n in sorted(names):
+        if n.startswith("."):
+            continue
+        path = folder / n
+        if container_kind(str(path)) is None:
+            continue
+        try:
+            series = list_series(str(path))
+        except FrameError as exc:
+            out.append((path, None, exc.reason))
+            continue
+        except Exception as exc:  # noqa: BLE001 - a damaged container is a row of the audit, never its end
+            out.append((path, None, f"cannot be read: {type(exc).__name__}: {exc}"))
+            continue
+        if len(series) == 1:
+            out.append((path, None, None))
+        else:
+            out.extend((path, s.label, None) for s in series)
+    return out
 
 
 def is_record_folder(folder: Path) -> bool:
@@ -136,10 +172,17 @@ def discover_sessions(roots, *, skip: tuple[Path, ...] = (), zstacks: bool = Tru
                 if d.startswith(".") or sub.resolve() in skip_resolved or is_record_folder(sub):
                     continue
                 keep.append(d)
-            dirnames[:] = keep
+            dirnames[:] = [d for d in keep if not d.lower().endswith(".zarr")]  # a Zarr store is one container
             if folder.resolve() in skip_resolved or is_record_folder(folder):
                 dirnames[:] = []
                 continue
+            for path, dataset, _error in container_sessions(folder, list(_files) + [d for d in keep
+                                                                                  if d.lower().endswith(".zarr")]):
+                rel = path.relative_to(root).as_posix() + (f"/{dataset.strip('/')}" if dataset else "")
+                if prefix:
+                    rel = f"{rname}/{rel}"
+                out.append(SessionEntry(path=path, rel=rel, frame_files=(path,), dataset=dataset,
+                                        zstack=_zstack_for(folder, root) if zstacks else None))
             frames, sidecars = frame_files_in(folder)
             empty_leaf = not frames and not keep and not os.listdir(folder)
             if not frames and not empty_leaf:

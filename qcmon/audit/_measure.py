@@ -158,7 +158,7 @@ def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
             kwargs["raw_shape"] = tuple(kwargs["raw_shape"])
         opts = MonitorOptions(path=Path(task["path"]), out_dir=record, profile=task["profile"], follow=False,
                               resume=False, zstack=Path(task["zstack"]) if task.get("zstack") else None,
-                              workers=int(task.get("split_workers", 1)), **kwargs)
+                              workers=int(task.get("split_workers", 1)), dataset=task.get("dataset"), **kwargs)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             monitor = Monitor(opts, plots=plots)

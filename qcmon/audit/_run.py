@@ -123,7 +123,7 @@ def _tasks(entries: list[SessionEntry], opts: AuditOptions, fingerprint: dict) -
         tasks.append({
             "rel": e.rel, "path": str(e.path), "frame_files": [str(p) for p in e.frame_files],
             "extra_files": [str(p) for p in e.extra_files],
-            "zstack": str(e.zstack) if (e.zstack and opts.use_zstack) else None,
+            "zstack": str(e.zstack) if (e.zstack and opts.use_zstack) else None, "dataset": e.dataset,
             "record": str(Path(opts.out_dir) / "sessions" / (e.rel + ".qcmon")),
             "profile": opts.profile, "profile_fingerprint": fingerprint, "monitor": monitor,
         })
