@@ -32,6 +32,7 @@ from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record import EXCLUDE_FILE, REFERENCE_FILE, SUMMARY_FILE, SessionRecord, write_atomic
 from qcmon.report import PanelDrawing, PlotWorkers, write_report
+from qcmon.sources.arrays import container_kind
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
@@ -100,6 +101,9 @@ class Monitor:
         self.path = Path(options.path)
         if not self.path.exists():
             raise QcmonError(f"{self.path}: no such file or folder")
+        if options.dataset is not None and container_kind(str(self.path)) is None:
+            raise QcmonError(f"--dataset {options.dataset}: {self.path} is not an HDF5, NWB or Zarr file; a dataset "
+                             "cannot be chosen in it")
         self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path, options.dataset)
         if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
             raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")

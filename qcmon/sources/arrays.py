@@ -332,16 +332,18 @@ def _nwb_one(f, group, name: str, kind: str, path: str) -> Series:
                         facts["frame_rate_hz"] = (1.0 / step, f"{where} timestamps (median interval)")
         plane = group.get("imaging_plane")
         if plane is not None:
-            facts["imaging_plane"] = (plane.name.rsplit("/", 1)[-1], where)
+            link = group.get("imaging_plane", getlink=True)
+            target = getattr(link, "path", None) or plane.name  # a soft link to /general/optophysiology/NAME
+            facts["imaging_plane"] = (target.rsplit("/", 1)[-1], where)
             for key, what in (("indicator", "indicator"), ("location", "location")):
                 if key in plane:
-                    facts[what] = (_text(plane[key][()]), f"NWB imaging plane {plane.name}")
+                    facts[what] = (_text(plane[key][()]), f"NWB imaging plane {target}")
             if "excitation_lambda" in plane:
-                facts["excitation_nm"] = (float(plane["excitation_lambda"][()]), f"NWB imaging plane {plane.name}")
+                facts["excitation_nm"] = (float(plane["excitation_lambda"][()]), f"NWB imaging plane {target}")
             if "frame_rate_hz" not in facts and "imaging_rate" in plane:
                 rate = float(plane["imaging_rate"][()])
                 if rate > 0 and math.isfinite(rate):
-                    facts["frame_rate_hz"] = (rate, f"NWB imaging plane {plane.name} imaging_rate")
+                    facts["frame_rate_hz"] = (rate, f"NWB imaging plane {target} imaging_rate")
             if "grid_spacing" in plane:
                 gs = plane["grid_spacing"]
                 unit = _text(gs.attrs.get("unit", "meters")).strip().lower()
@@ -350,7 +352,7 @@ def _nwb_one(f, group, name: str, kind: str, path: str) -> Series:
                 if scale is None:
                     series.notes.append(f"{name}: grid_spacing unit {unit!r} is not a length; pixel size not used")
                 elif len(values) >= 2 and values[0] > 0 and values[1] > 0:
-                    origin = f"NWB imaging plane {plane.name} grid_spacing"
+                    origin = f"NWB imaging plane {target} grid_spacing"
                     facts["pixel_size_um"] = (float(values[0]) * scale, origin)
                     facts["pixel_size_y_um"] = (float(values[1]) * scale, origin)
                     if len(values) >= 3 and values[2] > 0:

@@ -42,7 +42,7 @@ from collections.abc import Callable, Generator, Iterator
 
 import numpy as np
 
-from qcmon.errors import FrameError, NotReadyError
+from qcmon.errors import FrameError, NotReadyError, QcmonError
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.sources.arrays import ArrayStream, container_kind
 from qcmon.sources.metadata import FileMetadata, read_file_metadata
@@ -137,7 +137,8 @@ class SessionSource:
         self.path = path
         self._container = container_kind(path)
         if dataset is not None and self._container is None:
-            raise ValueError(f"dataset: {path} is not an HDF5, NWB or Zarr container; a dataset cannot be chosen")
+            raise QcmonError(f"--dataset {dataset}: {path} is not an HDF5, NWB or Zarr file; a dataset cannot be "
+                             "chosen in it")
         self._dataset = dataset
         if self._container is not None:  # one file (a Zarr store is a folder) holding the session
             path = os.path.normpath(path)
