@@ -87,6 +87,24 @@ def default_out_dir(path: Path, dataset: str | None = None) -> Path:
     return path.parent / f"{stem}.qcmon"
 
 
+def _check_watchable(path: Path) -> None:
+    """QcmonError unless frames can be read from ``path`` while they are written: TIFF and raw streams can, an HDF5
+    (or NWB) file only when written in SWMR mode (superblock version 3), a Zarr store not (a chunk not yet written
+    reads as its fill value, which would be measured as a frame)."""
+    kind = container_kind(str(path))
+    if kind == "zarr":
+        raise QcmonError(f"{path}: a Zarr store cannot be watched while it is written (a chunk not written yet "
+                         "reads as zeros); measure it with qcmon summarize once the session is finished")
+    if kind in ("hdf5", "nwb"):
+        from qcmon.sources.arrays import hdf5_superblock_version
+
+        version = hdf5_superblock_version(str(path))
+        if version is not None and version < 3:
+            raise QcmonError(f"{path}: this HDF5 file is not written in SWMR mode (superblock version {version}, "
+                             "SWMR needs 3), so it cannot be read safely while it is written; measure it with "
+                             "qcmon summarize once the session is finished")
+
+
 class Monitor:
     """Measure a session, live or after the fact, and keep its record.
 
@@ -104,6 +122,8 @@ class Monitor:
         if options.dataset is not None and container_kind(str(self.path)) is None:
             raise QcmonError(f"--dataset {options.dataset}: {self.path} is not an HDF5, NWB or Zarr file; a dataset "
                              "cannot be chosen in it")
+        if options.follow:
+            _check_watchable(self.path)
         self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path, options.dataset)
         if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
             raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")

@@ -387,3 +387,16 @@ def test_audit_finds_container_sessions(frames, tmp_path):
         "m1/day2.h5": ("day2.h5", None),
         "m1/day3.ome.zarr": ("day3.ome.zarr", None),
     }
+
+
+def test_watch_refuses_what_cannot_be_read_while_written(frames, tmp_path, capsys):
+    # HDF5 File Format Specification II.A: SWMR needs superblock version 3; h5py's default writes version 0
+    with h5py.File(tmp_path / "old.h5", "w") as f:
+        f.create_dataset("movie", data=frames[:4])
+    _ome_zarr(tmp_path / "z.zarr", frames[:4])
+    for name, words in (("old.h5", "not written in SWMR mode"), ("z.zarr", "cannot be watched")):
+        assert main(["watch", str(tmp_path / name), "--plain", "--until-idle", "1",
+                     "--out", str(tmp_path / f"{name}.rec")]) == 2
+        assert not (tmp_path / f"{name}.rec").exists()
+        err = capsys.readouterr().err
+        assert words in err and str(tmp_path / name) in err and "qcmon summarize" in err
