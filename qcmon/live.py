@@ -87,6 +87,15 @@ def default_out_dir(path: Path, dataset: str | None = None) -> Path:
     return path.parent / f"{stem}.qcmon"
 
 
+#: TIFF compressions (tifffile's names) that always lose information, and those that may (the tag does not say).
+LOSSY_COMPRESSIONS = frozenset({"JPEG", "OJPEG", "JPEG_99", "ALT_JPEG", "JPEG_LOSSY", "JPEG_2000_LOSSY", "WEBP",
+                                "WEBP_DEPRECATED"})
+MAYBE_LOSSY_COMPRESSIONS = frozenset({"JPEG2000", "APERIO_JP2000_YCBC", "APERIO_JP2000_RGB", "JPEGXR", "JPEGXR_NDPI",
+                                      "JPEGXL", "JPEGXL_DNG", "LERC"})
+#: Columns a lossy codec's noise invalidates (they measure the pixel noise): left blank for such frames.
+NOISE_COLUMNS = ("noise_sigma", "snr", "photons_per_px", "shot_snr")
+
+
 def _check_watchable(path: Path) -> None:
     """QcmonError unless frames can be read from ``path`` while they are written: TIFF and raw streams can, an HDF5
     (or NWB) file only when written in SWMR mode (superblock version 3), a Zarr store not (a chunk not yet written
@@ -135,6 +144,7 @@ class Monitor:
         self.facts = AcquisitionFacts()
         self._plots: PlotWorkers | None = None
         self.earlier_record: Path | None = None
+        self._blank: tuple[str, ...] = ()  # columns left blank for every row (lossy compression)
 
     # ---------------------------------------------------------------- controls
     def stop(self) -> None:
@@ -275,11 +285,25 @@ class Monitor:
                         run.split = None  # too short to split: one process, the engine's own values
         finally:
             frames.close()  # the file being read is closed now, not when the generator is collected
+        while run.notices:
+            self._problem_to(record, listeners)(run.notices.pop(0))
         self._deliver(run, rows, record, listeners)
         return n
 
     def _start_engine(self, run: "_RunState", source: SessionSource, first: Frame) -> None:
         run.engine = Engine(self._settings(source.facts, first))
+        compression = str(source.facts.get("compression", ""))
+        if compression in LOSSY_COMPRESSIONS:
+            self._blank = NOISE_COLUMNS
+            run.notices.append(
+                f"frames are stored with lossy {compression} compression: the codec, not the detector, sets the "
+                f"pixel noise, so {', '.join(NOISE_COLUMNS)} and the photon-transfer figures are left blank; "
+                "mean_f rests on a dark level estimated from the same noise unless --dark-level is given")
+        elif compression in MAYBE_LOSSY_COMPRESSIONS:
+            run.notices.append(
+                f"frames are stored with {compression} compression, which may be lossy (the file does not say): if "
+                f"it is, {', '.join(NOISE_COLUMNS)} and the photon-transfer figures describe the codec, not the "
+                "detector")
         o = self.options
         if not o.follow and o.workers > 1:  # a finished session: later chunks go to other processes
             n_c, n_z = (source.position["layout"] or (1, 1))[:2]
@@ -313,6 +337,9 @@ class Monitor:
                 run.status.paused_reason = ""
         if not rows:
             return
+        for column in self._blank:  # cannot be trusted for these frames (a problem event says why)
+            for r in rows:
+                r[column] = math.nan
         record.append_rows(rows)
         for row in rows:
             for ev in run.tracker.update(row):
@@ -457,6 +484,9 @@ class Monitor:
                 "z.start_um": first.get("z_start_um", math.nan),
                 "streams": {f"{c},{p}": _jsonable(v) for (c, p), v in info.items()},
             }
+        if self._blank:
+            for key in ("photon_transfer.gain", "photon_transfer.read_noise_dn", "photon_transfer.r2"):
+                extra[key] = math.nan
         facts = source.facts.as_dict()
         summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
         summary["problems"] = list(self.problems)
@@ -490,6 +520,7 @@ class _RunState:
     last_row: dict | None = None
     behind: bool = False
     split: "SplitRun | None" = None
+    notices: list = field(default_factory=list)  # problems found when the engine starts, recorded with its rows
 
 
 def _write_exclude(path: Path, ranges) -> Path:

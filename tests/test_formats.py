@@ -400,3 +400,19 @@ def test_watch_refuses_what_cannot_be_read_while_written(frames, tmp_path, capsy
         assert not (tmp_path / f"{name}.rec").exists()
         err = capsys.readouterr().err
         assert words in err and str(tmp_path / name) in err and "qcmon summarize" in err
+
+
+def test_lossy_jpeg_session_leaves_the_noise_figures_blank(frames, tmp_path):
+    # bench/bench_formats.py measured JPEG quality 95 on 8-bit frames of a few photons per pixel: noise σ 0.37×,
+    # SNR 12× the uncompressed file's — numbers of the codec, not the detector, so they are left blank with a reason
+    eight = (frames >> 4).astype(np.uint8)
+    tifffile.imwrite(tmp_path / "j.tif", eight, photometric="minisblack", compression="jpeg",
+                     compressionargs={"level": 95})
+    rows, summary = _summarize(tmp_path / "j.tif", tmp_path / "j.qcmon")
+    assert len(rows) == T
+    for column in ("noise_sigma", "snr", "photons_per_px", "shot_snr"):
+        assert all(r[column] == "" for r in rows), column
+    assert all(r["dx_px"] != "" and r["mean_f"] != "" for r in rows)  # the rest is measured
+    assert summary["snr"]["median"] is None and summary["photon_transfer"]["gain"] is None
+    assert summary["facts"]["compression"] == {"value": "JPEG", "origin": "TIFF tags"}
+    assert any("lossy JPEG compression" in p and "left blank" in p for p in summary["problems"])

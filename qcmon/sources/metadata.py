@@ -93,6 +93,7 @@ def read_file_metadata(tif) -> FileMetadata:
         _read_imagej(tif.imagej_metadata or {}, page, meta)
     _read_resolution(page, meta)
     meta.put("dtype", str(page.dtype), "TIFF tags")
+    meta.put("compression", getattr(page.compression, "name", str(page.compression)), "TIFF tags")
     meta.put("shape", tuple(int(n) for n in page.shape), "TIFF tags")
     return meta
 
