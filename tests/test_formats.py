@@ -26,7 +26,6 @@ from qcmon.cli import main
 from qcmon.sources import SessionSource
 
 h5py = pytest.importorskip("h5py")
-zarr = pytest.importorskip("zarr")
 
 T, H, W = 40, 64, 64
 RATE_HZ, PIXEL_UM = 15.0, 0.5
@@ -294,6 +293,7 @@ def test_nwb_timestamps_give_the_frame_times(frames, tmp_path):
 # ------------------------------------------------------------------------------------------ OME-Zarr
 def _ome_zarr(path: Path, data: np.ndarray) -> None:
     """An OME-Zarr image (OME-NGFF 0.4, https://ngff.openmicroscopy.org/0.4/): two levels, axes t, y, x."""
+    zarr = pytest.importorskip("zarr", minversion="3")  # zarr 3 needs Python 3.11
     root = zarr.open_group(str(path), mode="w", zarr_format=2)
     root.create_array("0", data=data, chunks=(8, H, W))
     root.create_array("1", data=data[:, ::2, ::2], chunks=(8, H // 2, W // 2))
@@ -416,3 +416,29 @@ def test_lossy_jpeg_session_leaves_the_noise_figures_blank(frames, tmp_path):
     assert summary["snr"]["median"] is None and summary["photon_transfer"]["gain"] is None
     assert summary["facts"]["compression"] == {"value": "JPEG", "origin": "TIFF tags"}
     assert any("lossy JPEG compression" in p and "left blank" in p for p in summary["problems"])
+
+
+def test_ome_zarr_05_five_axes(frames, tmp_path):
+    # OME-NGFF 0.5 (https://ngff.openmicroscopy.org/0.5/): Zarr format 3, the metadata under attributes["ome"]
+    zarr = pytest.importorskip("zarr", minversion="3")
+    data = frames[:12].reshape(2, 2, 3, H, W)  # t, c, z, y, x
+    root = zarr.open_group(str(tmp_path / "v.zarr"), mode="w", zarr_format=3)
+    root.create_array("s0", data=data, chunks=(1, 1, 1, H, W))
+    root.create_array("s1", data=data[..., ::2, ::2], chunks=(1, 1, 1, H // 2, W // 2))
+    axes = [{"name": "t", "type": "time", "unit": "second"}, {"name": "c", "type": "channel"},
+            {"name": "z", "type": "space", "unit": "micrometer"}, {"name": "y", "type": "space", "unit": "micrometer"},
+            {"name": "x", "type": "space", "unit": "micrometer"}]
+    scale = [0.25, 1.0, 2.0, PIXEL_UM, PIXEL_UM]
+    root.attrs["ome"] = {"version": "0.5", "multiscales": [{"axes": axes, "datasets": [
+        {"path": "s0", "coordinateTransformations": [{"type": "scale", "scale": scale}]},
+        {"path": "s1", "coordinateTransformations": [{"type": "scale", "scale": scale[:3] + [1.0, 1.0]}]}]}]}
+    source = SessionSource(tmp_path / "v.zarr")
+    got = source.poll(final=True)
+    assert source.problems == [] and len(got) == 12
+    assert [(f.index, f.channel, f.plane) for f in got] == [(t, c, z) for t in range(2) for z in range(3)
+                                                            for c in range(2)]
+    for f in got:
+        np.testing.assert_array_equal(f.data, data[f.index, f.channel, f.plane])
+    facts = source.facts
+    assert facts.get("frame_rate_hz") == 4.0 and facts.get("z_step_um") == 2.0
+    assert facts.get("pixel_size_um") == PIXEL_UM and facts.get("channels") == 2 and facts.get("planes") == 3

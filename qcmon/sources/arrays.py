@@ -160,7 +160,13 @@ def _h5_reason(text: str) -> str:
 
 def open_zarr(path: str):
     """The root node of a Zarr store, read-only. FrameError naming the store when it is not Zarr."""
-    import zarr
+    try:
+        import zarr
+    except ImportError:
+        raise FrameError("reading Zarr needs the zarr package (3.0 or later, which needs Python 3.11 or later)",
+                         path=path) from None
+    if int(zarr.__version__.split(".")[0]) < 3:
+        raise FrameError(f"reading Zarr needs zarr 3.0 or later (installed: {zarr.__version__})", path=path)
 
     try:
         return zarr.open(store=path, mode="r")
