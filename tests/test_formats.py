@@ -442,3 +442,19 @@ def test_ome_zarr_05_five_axes(frames, tmp_path):
     facts = source.facts
     assert facts.get("frame_rate_hz") == 4.0 and facts.get("z_step_um") == 2.0
     assert facts.get("pixel_size_um") == PIXEL_UM and facts.get("channels") == 2 and facts.get("planes") == 3
+
+
+def test_audit_measures_each_series_of_an_nwb_file(frames, tmp_path):
+    root = tmp_path / "lab"
+    root.mkdir()
+    _nwb(root / "day1.nwb", {"TwoPhotonSeries": frames[:32], "TwoPhotonSeriesB": frames[8:40]})
+    before = _digest(root)
+    assert main(["audit", str(root), "--out", str(tmp_path / "qc"), "--quiet"]) in (0, 1)
+    with open(tmp_path / "qc" / "audit.csv", newline="", encoding="utf-8") as fh:
+        rows = {r["path"]: r for r in csv.DictReader(fh)}
+    assert sorted(rows) == ["day1.nwb/TwoPhotonSeries", "day1.nwb/TwoPhotonSeriesB"]
+    for path, row in rows.items():
+        assert row["status"] == "measured" and row["frames"] == "32", row
+        summary = json.loads((tmp_path / "qc" / "sessions" / f"{path}.qcmon" / "summary.json").read_text())
+        assert summary["facts"]["series"]["value"] == path.split("/")[-1]
+    assert _digest(root) == before  # nothing written into the archive
