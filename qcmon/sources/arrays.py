@@ -218,7 +218,7 @@ def check_array(shape, dtype, axes: str, path: str, label: str) -> None:
 
 
 # ------------------------------------------------------------------------------------------------ HDF5 / NWB
-def _attr_number(node, names) -> tuple[float | None, str | None]:
+def _attr_number(node, names) -> tuple[np.ndarray | None, str | None]:
     for name in names:
         if name in node.attrs:
             value = np.asarray(node.attrs[name])
@@ -564,6 +564,7 @@ class ArrayStream:
         self._options = (channels, planes)
         self._layout: tuple[int, int] | None = None  # (channels, planes)
         self._frame: tuple[str, tuple[int, int]] = ("", (0, 0))  # (dtype, (rows, columns)) of a frame
+        self._total = 0  # frames in the array when this batch opened it
         self.swmr = False
 
     # the session asks for this when the stream is first opened (see SessionSource._opened)
@@ -617,7 +618,7 @@ class ArrayStream:
         finally:
             if handle is not None:
                 handle.close()
-        at_end = result is None and self._available(arr) <= self.pages_done
+        at_end = result is None and self._total <= self.pages_done  # (the array is closed now: not asked again)
         self.signature = (st.st_size, st.st_mtime_ns) if at_end else None
         return result
 
@@ -635,7 +636,7 @@ class ArrayStream:
                 on_open(self, None)
         n_c, n_z = self._layout
         per_point = n_c * n_z
-        total = self._available(arr)
+        total = self._total = self._available(arr)
         self.pages_done += self.skip
         self.skip = 0
         passed = min(self.skip_frames, max(total - self.pages_done, 0))
