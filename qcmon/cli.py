@@ -147,7 +147,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"qcmon: {err}", file=sys.stderr)
         return EXIT_ERROR
     except KeyboardInterrupt:
-        print("qcmon: interrupted", file=sys.stderr)
+        print("qcmon: aborted; the rows and events recorded so far are kept, no summary or report was written "
+              "(running the same command again resumes the record and writes them)", file=sys.stderr)
         return EXIT_INTERRUPTED
 
 
@@ -176,12 +177,14 @@ def cmd_summarize(args) -> int:
 
 
 def _stop_on_signals(monitor) -> None:
-    """First Ctrl-C or SIGTERM ends the watch cleanly (the summary is written); a second Ctrl-C aborts."""
+    """First Ctrl-C or SIGTERM ends the watch cleanly (the summary is written); a second Ctrl-C aborts without
+    writing the summary, report, exclude list and reference image (``Monitor.abort``)."""
     hits = {"n": 0}
 
     def handler(signum, frame):
         hits["n"] += 1
         if hits["n"] > 1 and signum == signal.SIGINT:
+            monitor.abort()
             raise KeyboardInterrupt
         print("\nqcmon: ending the watch, writing the summary…", file=sys.stderr, flush=True)
         monitor.stop()

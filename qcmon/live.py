@@ -11,12 +11,17 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import queue
 import re
 import shlex
+import shutil
+import signal
 import subprocess
+import sys
 import threading
 import time
+from contextlib import contextmanager
 from collections.abc import Generator
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -30,8 +35,9 @@ from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
-from qcmon.record import EXCLUDE_FILE, REFERENCE_FILE, SUMMARY_FILE, SessionRecord, write_atomic
-from qcmon.report import PanelDrawing, PlotWorkers, write_report
+from qcmon.record import (EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE, SUMMARY_FILE, SessionRecord,
+                          write_atomic_set)
+from qcmon.report import PanelDrawing, PlotWorkers, report_html
 from qcmon.sources.arrays import container_kind
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
@@ -137,9 +143,14 @@ class Monitor:
         if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
             raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")
         self.profile: Profile = load_profile(options.profile)
+        self._alarm_argv = check_on_alarm(options.on_alarm) if options.on_alarm else None
         self._stop = threading.Event()
+        self._aborted = threading.Event()
         self._commands: queue.SimpleQueue = queue.SimpleQueue()
-        self._alarm_procs: list[subprocess.Popen] = []
+        self._alarm_procs: list[tuple[subprocess.Popen, float]] = []  # (process, time limit on the monotonic clock)
+        self._alarm_failed: set[str] = set()  # kinds of --on-alarm failure already reported (each once)
+        self._report = None  # reports a problem into the record (set by run)
+        self._recorded_problems: set[str] = set()  # problems in the record when resuming: not reported again
         self.problems: list[str] = []
         self.facts = AcquisitionFacts()
         self._plots: PlotWorkers | None = None
@@ -148,6 +159,13 @@ class Monitor:
 
     # ---------------------------------------------------------------- controls
     def stop(self) -> None:
+        self._stop.set()
+
+    def abort(self) -> None:
+        """End without writing the summary, report, exclude list and reference image (a second Ctrl-C): the
+        record (traces, events) is kept; the files of the set are either left as they were or, if the abort
+        comes while they are being put in place, written whole."""
+        self._aborted.set()
         self._stop.set()
 
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
@@ -174,16 +192,38 @@ class Monitor:
         o = self.options
         listeners = [listener] if listener is not None else []
         record = SessionRecord(self.out_dir, resume=o.resume, set_aside=not o.resume)
+        try:
+            return self._run_record(record, listeners)
+        except BaseException:
+            try:
+                record.close()
+            except QcmonError:
+                pass  # the error in flight says it already (e.g. the disk is full)
+            raise
+        finally:
+            record.close()
+
+    def _run_record(self, record: SessionRecord, listeners: list) -> dict:
+        o = self.options
         self.earlier_record = record.set_aside_to  # --restart over an earlier record: where it went
         run = _RunState(done=record.last_frames() if o.resume else {},
                         status=Status(folder=str(self.path), out_dir=str(self.out_dir)),
                         tracker=ThresholdTracker(self.profile))
+        self._report = self._problem_to(record, listeners)
+        if o.resume:
+            # Resuming: what the record already says is not said again. Threshold events of the frames already
+            # recorded are replayed silently (_deliver); problems met again are not reported twice.
+            recorded = record.read_events()
+            run.recorded = {_event_key(ev) for ev in recorded if ev.kind in ("start", "end")}
+            for ev in recorded:
+                if ev.kind == "problem" and ev.message not in self._recorded_problems:
+                    self._recorded_problems.add(ev.message)
+                    self.problems.append(ev.message)
         if run.done:
             run.status.paused_reason = "resuming: replaying the frames already recorded"
         source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
                                raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
-                               pixel_size_um=o.pixel_size_um, dataset=o.dataset,
-                               on_problem=self._problem_to(record, listeners))
+                               pixel_size_um=o.pixel_size_um, dataset=o.dataset, on_problem=self._report)
         watcher = None
         if o.follow:
             from qcmon.sources.watcher import FolderWatcher
@@ -207,6 +247,9 @@ class Monitor:
                     self._update_status(run, source, listeners)
                     last_status = now
                 record.maybe_flush()
+                self._take_record_notices(record)
+                if self._alarm_procs:
+                    self._reap_alarm_commands(wait=False)
                 run.behind = n == _BATCH and not (run.split is not None and run.split.reading_done)
                 if run.behind:
                     continue  # more is waiting on disk: no pause, and no end yet
@@ -230,6 +273,8 @@ class Monitor:
             run.status.paused_reason = "session ended"
             self._update_status(run, source, listeners)
             record.flush()
+            self._take_record_notices(record)
+            self._reap_alarm_commands(wait=True)  # their failures go into the record before the summary
             return self._finish(record, source, run.engine, run.split)
         finally:
             if self._plots is not None and self._plots is not self._shared_plots:
@@ -238,8 +283,12 @@ class Monitor:
                 run.split.close()
             if watcher is not None:
                 watcher.stop()
-            record.close()
             self._reap_alarm_commands(wait=True)
+
+    def _take_record_notices(self, record: SessionRecord) -> None:
+        for msg in record.take_notices():
+            print(f"qcmon: {msg}", file=sys.stderr, flush=True)
+            self._report(QcmonError(msg))
 
     def _start_plots(self) -> None:
         """Start the report's plot processes (``plot_processes``), so that they load matplotlib meanwhile."""
@@ -332,7 +381,18 @@ class Monitor:
         if run.split is not None and rows:
             rows = run.split.continuity.apply(rows)
         if run.done:
-            rows = [r for r in rows if r["frame"] > run.done.get((r["channel"], r["plane"]), -1)]
+            new = [r for r in rows if r["frame"] > run.done.get((r["channel"], r["plane"]), -1)]
+            if len(new) < len(rows):
+                # frames recorded by an earlier run: not recorded again, but through the thresholds all the same,
+                # so that their state (a warning or alarm under way, how long a value has been beyond its level)
+                # is that of an uninterrupted run; only events the record lacks are recorded
+                for row in rows:
+                    if row["frame"] <= run.done.get((row["channel"], row["plane"]), -1):
+                        for ev in run.tracker.update(row):
+                            if _event_key(ev) not in run.recorded:
+                                self._emit(ev, record, listeners)
+                        run.last_row = row
+            rows = new
             if rows and run.status.paused_reason.startswith("resuming"):
                 run.status.paused_reason = ""
         if not rows:
@@ -381,6 +441,8 @@ class Monitor:
     def _problem_to(self, record: SessionRecord, listeners):
         def report(err: Exception) -> None:
             msg = str(err)
+            if msg in self._recorded_problems:
+                return  # recorded by the run this one resumes: met again, not said again
             self.problems.append(msg)
             self._emit(Event(kind="problem", message=msg), record, listeners)
         return report
@@ -430,34 +492,58 @@ class Monitor:
             lst.on_status(status)
 
     def _run_on_alarm(self, ev: Event) -> None:
-        """Run the user's command with the event as JSON on stdin. The command line is split once, never given
-        to a shell, and nothing from files or events is put into it."""
+        """Run the user's command with the event as JSON on stdin. The command line was split and checked at start
+        (:func:`check_on_alarm`), is never given to a shell, and nothing from files or events is put into it. It
+        runs in a process group of its own, killed with everything it started if it outlives
+        :data:`ALARM_COMMAND_LIMIT_S`."""
         self._reap_alarm_commands(wait=False)
         try:
-            proc = subprocess.Popen(shlex.split(self.options.on_alarm), stdin=subprocess.PIPE,
-                                    stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            proc = subprocess.Popen(self._alarm_argv, stdin=subprocess.PIPE, stdout=subprocess.DEVNULL,
+                                    stderr=subprocess.DEVNULL, start_new_session=True)
         except OSError as err:
-            self.problems.append(f"--on-alarm {self.options.on_alarm!r} could not start: {err}")
+            self._alarm_failure("start", f"could not be started: {err.strerror or err}")
             return
         try:
             proc.stdin.write(ev.to_json().encode() + b"\n")
             proc.stdin.close()
         except OSError:
             pass
-        self._alarm_procs.append(proc)
+        self._alarm_procs.append((proc, time.monotonic() + ALARM_COMMAND_LIMIT_S))
+
+    def _alarm_failure(self, kind: str, what: str) -> None:
+        """Report a failure of the ``--on-alarm`` command once per kind (it would repeat with every alarm)."""
+        if kind in self._alarm_failed:
+            return
+        self._alarm_failed.add(kind)
+        msg = f"--on-alarm command {self.options.on_alarm!r} {what} (said once; later alarms run it all the same)"
+        if self._report is not None:
+            self._report(QcmonError(msg))
+        else:
+            self.problems.append(msg)
 
     def _reap_alarm_commands(self, *, wait: bool) -> None:
-        keep = []
-        for p in self._alarm_procs:
-            if wait:
-                try:
-                    p.wait(timeout=10)
-                except subprocess.TimeoutExpired:
-                    p.kill()
-                    p.wait()
-            elif p.poll() is None:
-                keep.append(p)
-        self._alarm_procs = keep
+        """Collect finished ``--on-alarm`` commands, kill those past their time limit (the whole process group:
+        what they started too); with ``wait``, wait for the others until their limits."""
+        while True:
+            keep = []
+            now = time.monotonic()
+            for proc, deadline in self._alarm_procs:
+                rc = proc.poll()
+                if rc is None and now < deadline:
+                    keep.append((proc, deadline))
+                    continue
+                if rc is None:
+                    _kill_group(proc.pid)
+                    proc.wait()
+                    self._alarm_failure("time", f"still ran after {ALARM_COMMAND_LIMIT_S:g} s and was stopped")
+                else:
+                    _kill_group(proc.pid)  # what it started and left behind
+                    if rc != 0:
+                        self._alarm_failure("status", f"failed (exit status {rc})")
+            self._alarm_procs = keep
+            if not wait or not keep:
+                return
+            time.sleep(0.05)
 
     def _finish(self, record: SessionRecord, source: SessionSource, engine: Engine | None,
                 split: SplitRun | None = None) -> dict:
@@ -494,16 +580,22 @@ class Monitor:
         paths = {"out_dir": str(self.out_dir)}
         if self.earlier_record is not None:
             paths["earlier"] = str(self.earlier_record)
-        paths["summary"] = str(write_atomic(self.out_dir / SUMMARY_FILE,
-                                            json.dumps(_jsonable(summary), indent=2, ensure_ascii=False)))
-        ranges = exclude_ranges(traces, events, self.profile)
-        paths["exclude"] = str(_write_exclude(self.out_dir / EXCLUDE_FILE, ranges))
+        # the summary, exclude list, reference image and report are written as one set (all new, or all as
+        # they were: a full disk or an abort half-way must not leave a new summary beside an old report)
+        files = {SUMMARY_FILE: json.dumps(_jsonable(summary), indent=2, ensure_ascii=False),
+                 EXCLUDE_FILE: _exclude_csv(exclude_ranges(traces, events, self.profile))}
+        names = {SUMMARY_FILE: "summary", EXCLUDE_FILE: "exclude", REFERENCE_FILE: "reference", REPORT_FILE: "report"}
         if engine is not None and engine.streams:
             ref = engine.reference_image(*engine.streams[0])
             if ref is not None:
-                paths["reference"] = str(_write_tiff_atomic(self.out_dir / REFERENCE_FILE, ref))
-        paths["report"] = str(write_report(self.out_dir, summary, traces, events, self.profile, facts,
-                                           panels=panels))
+                files[REFERENCE_FILE] = _tiff_bytes(ref)
+        files[REPORT_FILE] = report_html(summary, traces, events, self.profile, facts, panels=panels)
+        with _signals_held():
+            if self._aborted.is_set():
+                raise KeyboardInterrupt
+            written = write_atomic_set(self.out_dir, files)
+        for name, path in written.items():
+            paths[names[name]] = str(path)
         return paths
 
 
@@ -511,11 +603,67 @@ class Monitor:
 _BATCH = 256
 
 
+#: Seconds an ``--on-alarm`` command may run; then it is killed with everything it started.
+ALARM_COMMAND_LIMIT_S = 10.0
+
+
+def check_on_alarm(command: str) -> list[str]:
+    """The ``--on-alarm`` command split like a shell would (never run by one), checked before the watch starts.
+
+    Raises
+    ------
+    QcmonError
+        The command cannot be split (e.g. an unbalanced quote), is empty, or its program is not found or not
+        executable.
+    """
+    try:
+        argv = shlex.split(command)
+    except ValueError as err:
+        raise QcmonError(f"--on-alarm {command!r}: cannot be read as a command ({err})") from None
+    if not argv:
+        raise QcmonError("--on-alarm: the command is empty")
+    prog = argv[0]
+    found = shutil.which(prog) if os.sep not in prog else (prog if os.access(prog, os.X_OK)
+                                                           and os.path.isfile(prog) else None)
+    if found is None:
+        where = "not an executable file" if os.sep in prog else "not found on PATH"
+        raise QcmonError(f"--on-alarm {command!r}: the program {prog!r} is {where}")
+    return argv
+
+
+def _kill_group(pid: int) -> None:
+    try:
+        os.killpg(pid, signal.SIGKILL)
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+@contextmanager
+def _signals_held():
+    """Hold Ctrl-C and SIGTERM back (in the main thread) while a set of files is put in place; they are handled
+    right after."""
+    main = threading.current_thread() is threading.main_thread()
+    sigs = {signal.SIGINT, signal.SIGTERM}
+    if main:
+        old = signal.pthread_sigmask(signal.SIG_BLOCK, sigs)
+    try:
+        yield
+    finally:
+        if main:
+            signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+def _event_key(ev: Event) -> tuple:
+    """What makes a threshold event the same event in two runs (not its wall-clock time)."""
+    return (ev.kind, ev.metric, ev.state, ev.channel, ev.plane, ev.frame, ev.started_frame)
+
+
 @dataclass(slots=True)
 class _RunState:
     done: dict
     status: Status
     tracker: ThresholdTracker
+    recorded: set = field(default_factory=set)  # _event_key of the threshold events already in the record
     engine: Engine | None = None
     last_row: dict | None = None
     behind: bool = False
@@ -523,21 +671,21 @@ class _RunState:
     notices: list = field(default_factory=list)  # problems found when the engine starts, recorded with its rows
 
 
-def _write_exclude(path: Path, ranges) -> Path:
+def _exclude_csv(ranges) -> str:
     lines = ["channel,plane,first_frame,last_frame,reason"]
     for r in ranges:
         lines.append(",".join(str(x) for x in r))
-    return write_atomic(path, "\n".join(lines) + "\n")
+    return "\n".join(lines) + "\n"
 
 
-def _write_tiff_atomic(path: Path, image: np.ndarray) -> Path:
+def _tiff_bytes(image: np.ndarray) -> bytes:
     import io
 
     import tifffile
 
     buf = io.BytesIO()
     tifffile.imwrite(buf, np.asarray(image, dtype=np.float32))
-    return write_atomic(path, buf.getvalue())
+    return buf.getvalue()
 
 
 def _jsonable(obj):

@@ -21,10 +21,12 @@ from __future__ import annotations
 
 import csv
 import errno
+import fcntl
 import io
 import json
 import math
 import os
+import shutil
 import tempfile
 import time
 from pathlib import Path
@@ -45,12 +47,14 @@ __all__ = [
     "REPORT_FILE",
     "SUMMARY_FILE",
     "TRACES_FILE",
+    "LOCK_FILE",
     "SessionRecord",
     "read_events",
     "read_info",
     "read_traces",
     "rows_to_traces",
     "write_atomic",
+    "write_atomic_set",
 ]
 
 TRACES_FILE = "traces.csv"
@@ -62,6 +66,9 @@ REFERENCE_FILE = "reference.tif"
 REPORT_FILE = "report.html"
 #: Every file qcmon writes into an output folder (``--restart`` sets these aside, nothing else).
 RECORD_FILES = (TRACES_FILE, EVENTS_FILE, INFO_FILE, SUMMARY_FILE, EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE)
+#: Held locked (``fcntl.flock``) by the one process writing the record; the kernel releases it when that process
+#: ends in any way (a crash or ``kill -9`` cannot leave it stuck). Holds that process's id, for the message.
+LOCK_FILE = ".qcmon.lock"
 
 #: Seconds between forced writes to the disk (os.fsync).
 SYNC_INTERVAL_S = 1.0
@@ -137,6 +144,62 @@ def _sync_dir(folder: Path) -> None:
         pass
     finally:
         os.close(fd)
+
+
+def write_atomic_set(folder: str | os.PathLike, files: Mapping[str, str | bytes]) -> dict[str, Path]:
+    """Replace several files of ``folder`` as one set: either all of them are new, or all stay as they were.
+
+    Every file is first written in full to a temporary file in ``folder`` and forced to the disk; only when all
+    of them are there are they renamed over the old ones (``os.replace``, which needs no new space). A full disk
+    or a missing folder while writing leaves the old set untouched and no temporary file behind.
+
+    Parameters
+    ----------
+    folder : path-like
+    files : mapping of str to str or bytes
+        File name (in ``folder``) → content; text is written as UTF-8.
+
+    Returns
+    -------
+    dict of str to pathlib.Path
+        Name → path of each file written.
+
+    Raises
+    ------
+    QcmonError
+        The folder is read-only, full or missing (the old files are then unchanged).
+    """
+    folder = Path(folder)
+    temps: dict[str, str] = {}
+    try:
+        for name, data in files.items():
+            payload = data.encode("utf-8") if isinstance(data, str) else bytes(data)
+            fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=folder)
+            temps[name] = tmp
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(payload)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.chmod(tmp, 0o666 & ~_umask())
+        for name, tmp in list(temps.items()):
+            os.replace(tmp, folder / name)
+            del temps[name]
+        _sync_dir(folder)
+    except OSError as exc:
+        raise _folder_error(folder, exc, "write " + ", ".join(files)) from None
+    finally:
+        for tmp in temps.values():
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
+    return {name: folder / name for name in files}
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def _cut_partial_line(path: Path) -> int:
@@ -233,10 +296,22 @@ class SessionRecord:
         self._last_frames: dict[tuple[int, int], int] = {}
         self._last_sync = time.monotonic()
         self._closed = False
+        self._lock = None
+        #: What happened to the output folder behind qcmon's back (e.g. deleted and recreated), one message each;
+        #: the monitor reports them as problems (:meth:`take_notices`).
+        self.notices: list[str] = []
         try:
             self.out_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise _folder_error(self.out_dir, exc, "create the output folder") from None
+        self._lock = _lock_record(self.out_dir)
+        try:
+            self._open(resume, set_aside)
+        except BaseException:
+            self._lock.close()  # releases the lock
+            raise
+
+    def _open(self, resume: bool, set_aside: bool) -> None:
         exists = self.traces_path.exists() and self.traces_path.stat().st_size > 0
         exists_ev = self.events_path.exists() and self.events_path.stat().st_size > 0
         self.set_aside_to: Path | None = None
@@ -245,7 +320,7 @@ class SessionRecord:
                 raise QcmonError(f"{self.out_dir}: already holds a session record ({TRACES_FILE}, {EVENTS_FILE}); "
                                  "resume it, or choose another output folder")
             self.set_aside_to = set_aside_record(self.out_dir)
-        mode = "ab" if resume else "wb"
+        mode = "a+b" if resume else "w+b"  # readable too: a deleted folder is rebuilt from the open files
         try:
             if resume and exists:
                 _cut_partial_line(self.traces_path)
@@ -339,6 +414,64 @@ class SessionRecord:
                     fh.flush()
                     os.fsync(fh.fileno())
             self._last_sync = now
+            self._check_folder()
+
+    def _check_folder(self) -> None:
+        """Once per forced write: are the open files still the ones in the output folder? When the folder (or a
+        record file) was deleted or replaced, recreate it and copy everything recorded so far into it from the
+        open files (which the system keeps while they are open), so that no row is lost; say so in
+        :attr:`notices`."""
+        if not hasattr(self, "_events"):
+            return
+        gone = []
+        for path, fh in ((self.traces_path, self._traces), (self.events_path, self._events)):
+            try:
+                same = os.stat(path).st_ino == os.fstat(fh.fileno()).st_ino
+            except FileNotFoundError:
+                same = False
+            if not same:
+                gone.append(path.name)
+        if not gone:
+            return
+        folder_gone = not self.out_dir.is_dir()
+        try:
+            self.out_dir.mkdir(parents=True, exist_ok=True)
+            if folder_gone:
+                self._lock.close()
+                self._lock = _lock_record(self.out_dir)
+            kept = []
+            for attr, path in (("_traces", self.traces_path), ("_events", self.events_path)):
+                old = getattr(self, attr)
+                old.flush()
+                old.seek(0)
+                new = open(path, "x+b" if not path.exists() else "a+b")
+                if new.tell() == 0 and path.name in gone:
+                    shutil.copyfileobj(old, new)
+                new.flush()
+                os.fsync(new.fileno())
+                old.close()
+                setattr(self, attr, new)
+                kept.append(new.tell())
+            _sync_dir(self.out_dir)
+        except OSError as exc:
+            raise _folder_error(self.out_dir, exc, "recreate the deleted session record") from None
+        what = "the output folder was deleted" if folder_gone else f"{', '.join(gone)} deleted or replaced"
+        self.notices.append(f"{self.out_dir}: {what} while recording; recreated it with everything recorded so far "
+                            f"({self._count_rows()} rows); the summary and report are written at the end")
+
+    def _count_rows(self) -> int:
+        fh = self._traces
+        fh.flush()
+        pos = fh.tell()
+        fh.seek(0)
+        n = sum(block.count(b"\n") for block in iter(lambda: fh.read(1 << 20), b""))
+        fh.seek(pos)
+        return max(0, n - 1)
+
+    def take_notices(self) -> list[str]:
+        """The :attr:`notices` not taken yet."""
+        out, self.notices = self.notices, []
+        return out
 
     def maybe_flush(self) -> None:
         """Force the record to the disk if the last forced write is about a second old (call it when idle)."""
@@ -356,7 +489,8 @@ class SessionRecord:
             raise _folder_error(self.out_dir, exc, "write the session record") from None
 
     def close(self) -> None:
-        """Flush and close the files (idempotent)."""
+        """Flush and close the files and release the record's lock (idempotent). Raises :class:`QcmonError` if
+        the last rows could not be written; the files are closed and the lock released all the same."""
         if self._closed:
             return
         try:
@@ -365,8 +499,11 @@ class SessionRecord:
             raise _folder_error(self.out_dir, exc, "write the session record") from None
         finally:
             self._closed = True
-            self._traces.close()
-            self._events.close()
+            for fh in (self._traces, self._events, self._lock):
+                try:
+                    fh.close()
+                except OSError:  # what could not be written (full disk) was reported by the write itself
+                    pass
 
     def __enter__(self) -> "SessionRecord":
         return self
@@ -386,6 +523,33 @@ class SessionRecord:
     def read_events(self, path: str | os.PathLike | None = None) -> list[Event]:
         """Events of this record's ``events.jsonl`` (or of ``path``); see :func:`read_events`."""
         return read_events(self.events_path if path is None else path)
+
+
+def _lock_record(out_dir: Path):
+    """Lock ``out_dir``'s record for this process (:data:`LOCK_FILE`) or raise QcmonError naming the holder."""
+    path = out_dir / LOCK_FILE
+    try:
+        fh = open(path, "a+")
+    except OSError as exc:
+        raise _folder_error(out_dir, exc, "write the session record") from None
+    try:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError as exc:
+        fh.seek(0)
+        holder = fh.read(40).strip()
+        fh.close()
+        if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+            who = f"qcmon process {holder}" if holder.isdigit() else "another qcmon process"
+            raise QcmonError(f"{out_dir}: {who} is already writing this record (two would mix their rows); "
+                             "wait for it to end, or give another output folder with --out") from None
+        raise _folder_error(out_dir, exc, "lock the session record") from None
+    try:
+        fh.truncate(0)
+        fh.write(f"{os.getpid()}\n")
+        fh.flush()
+    except OSError:
+        pass  # the lock holds without the process id
+    return fh
 
 
 def _json_default(obj):

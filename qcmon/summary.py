@@ -462,14 +462,15 @@ def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events:
     dict
         The summary.
     """
-    from qcmon.record import EXCLUDE_FILE, SUMMARY_FILE, write_atomic
-    from qcmon.report import write_report
+    from qcmon.record import EXCLUDE_FILE, REPORT_FILE, SUMMARY_FILE, write_atomic_set
+    from qcmon.report import report_html
 
     out_dir = Path(out_dir)
     summary = summarize_traces(traces, events, facts=facts, profile=profile, extra=extra)
-    write_atomic(out_dir / SUMMARY_FILE, summary_json(summary))
-    write_atomic(out_dir / EXCLUDE_FILE, exclude_csv(exclude_ranges(traces, events, profile)))
-    write_report(out_dir, summary, traces, events, profile, facts or {})
+    write_atomic_set(out_dir, {  # one set: all new, or all as they were
+        SUMMARY_FILE: summary_json(summary),
+        EXCLUDE_FILE: exclude_csv(exclude_ranges(traces, events, profile)),
+        REPORT_FILE: report_html(summary, traces, events, profile, facts or {})})
     return summary
 
 

@@ -68,6 +68,7 @@ def test_kill_mid_line_then_resume_keeps_complete_rows(tmp_path):
     path, epath = tmp_path / "traces.csv", tmp_path / "events.jsonl"
     rec._traces.close()
     rec._events.close()
+    rec._lock.close()  # the kernel releases the record's lock of a killed process
     with open(path, "ab") as fh:
         fh.write(b"60,0,0,6.0,0.31")
     with open(epath, "ab") as fh:
