@@ -246,6 +246,10 @@ class SessionSource:
                     except StopIteration as end:
                         stop = end.value
                         break
+                    except PermissionError as exc:  # will not change by waiting: said once, frames behind go on
+                        stop = FrameError(f"cannot be opened: {exc.strerror or exc} (qcmon's user may not read it); "
+                                          "not read", path=path)
+                        break
                     except OSError as exc:  # opening the file (reading errors are in ``stop``)
                         stop = NotReadyError(f"cannot be opened: {exc.strerror or exc}")
                         unopened = True

@@ -13,10 +13,16 @@ pixels are decoded). Pages whose fingerprint equals that of the last fully parse
 :class:`tifffile.TiffPage` and checked again.
 
 The file is opened read-only for one batch of pages and closed again; nothing is ever written, renamed or locked.
+
+tifffile reports what it tolerates (an invalid tag it skips, a count it corrects) through :mod:`logging`, which
+without a handler prints to the terminal, over the dashboard. qcmon decides itself what is a problem (a page that
+cannot be measured is reported as one, naming file and page), so these messages go to qcmon's own logger
+``qcmon.reader`` at DEBUG level and are never printed raw.
 """
 
 from __future__ import annotations
 
+import logging
 import os
 import struct
 from dataclasses import dataclass
@@ -25,6 +31,23 @@ import tifffile
 
 from qcmon.errors import FrameError, NotReadyError
 from qcmon.sources._drain import drain
+
+
+class _LibraryMessages(logging.Handler):
+    """Passes tifffile's log records to ``qcmon.reader`` at DEBUG level (see the module docstring)."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        logging.getLogger("qcmon.reader").debug("tifffile: %s", record.getMessage())
+
+
+def _route_library_logging() -> None:
+    lib = logging.getLogger("tifffile")
+    if not any(isinstance(h, _LibraryMessages) for h in lib.handlers):
+        lib.addHandler(_LibraryMessages())
+    lib.propagate = False
+
+
+_route_library_logging()
 
 #: Size in bytes of one value of each TIFF field type (TIFF 6.0 section 2; BigTIFF adds 16, 17, 18).
 _TYPE_SIZES = {1: 1, 2: 1, 3: 2, 4: 4, 5: 8, 6: 1, 7: 1, 8: 2, 9: 4, 10: 8, 11: 4, 12: 8, 13: 4, 16: 8, 17: 8, 18: 8}
@@ -211,6 +234,10 @@ def page_problem(page: tifffile.TiffPage) -> str | None:
                 f"{getattr(page.photometric, 'name', page.photometric)}); one monochrome sample per pixel expected")
     if not isinstance(page.compression, tifffile.COMPRESSION):
         return f"unknown compression {page.compression!r}, cannot be decoded"
+    if page.compression != 1 and page.compression not in tifffile.TIFF.DECOMPRESSORS:
+        # decoding would fail the same way every time: not a page still being written
+        return (f"{page.compression.name} compression, for which no decoder is installed (the imagecodecs "
+                "package provides most); cannot be decoded")
     dtype = page.dtype
     if dtype is None or dtype.kind != "u" or dtype.itemsize > 4:
         return (f"pixel type {dtype} ({page.bitspersample} bits, sample format "
@@ -242,6 +269,7 @@ class TiffStream:
         self.signature: tuple[int, int] | None = None  # (size, mtime_ns) when last read to the end
         self.meta = None  # metadata of the file (set by the session on first open)
         self.header: TiffHeader | None = None
+        self.identity: tuple[int, int, bytes] | None = None  # (device, inode, first bytes) when first read
 
     def read(self, limit: int, *, give_up: bool = False, on_open=None):
         """Read up to ``limit`` new complete pages.
@@ -278,7 +306,14 @@ class TiffStream:
         with open(self.path, "rb") as fh:  # read-only, closed at the end or when the generator is closed
             st = os.fstat(fh.fileno())  # taken before reading: a change after this is seen next time
             size = st.st_size
+            head = fh.read(16)
+            fh.seek(0)
             try:
+                replaced = self._replaced(st, head)
+                if replaced:
+                    return FrameError(f"replaced by another file of the same name while being read ({replaced}); "
+                                      "the new file is not read, so that pages of two files are not mixed",
+                                      path=self.path, page=self.pages_done)
                 if self.header is None:
                     self.header = read_header(fh, size, self.path)
                     self.pointer = self.header.first_pointer
@@ -291,9 +326,25 @@ class TiffStream:
                 if exc.path is None:
                     exc = FrameError(exc.reason, path=self.path, page=self.pages_done)
                 return exc
+            finally:
+                # taken once a page was read: some writers fill in the header's first page pointer only then
+                if self.identity is None and self.pages_done:
+                    self.identity = (st.st_dev, st.st_ino, head)
         # only a file read to the end of its chain of pages may be passed over while unchanged
         self.signature = (st.st_size, st.st_mtime_ns) if at_end else None
         return None
+
+    def _replaced(self, st, head: bytes) -> str:
+        """Why the file (``os.fstat`` result ``st``, first 16 bytes ``head``) is not the one read before ('' when
+        it is): another inode, or other first bytes (header and first page pointer: a file rewritten in place)."""
+        if self.identity is None:
+            return ""
+        dev, ino, first = self.identity
+        if (st.st_dev, st.st_ino) != (dev, ino):
+            return "another inode"
+        if head[: len(first)] != first[: len(head)]:
+            return "its first bytes changed"
+        return ""
 
     def _pages(self, fh, size, limit, give_up, on_open):
         """Generator of the pages as ``(page, data)``; returns whether the end of the chain was reached."""
