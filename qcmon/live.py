@@ -269,7 +269,8 @@ class Monitor:
                 self._collect_split(run, source, record, listeners)
             self._handle_commands(run, record, listeners)
             for ev in run.tracker.close(run.last_row):
-                self._emit(ev, record, listeners)
+                if _event_key(ev) not in run.recorded:  # a resumed record that had already ended here
+                    self._emit(ev, record, listeners)
             run.status.paused_reason = "session ended"
             self._update_status(run, source, listeners)
             record.flush()
