@@ -18,7 +18,6 @@ import shlex
 import shutil
 import signal
 import subprocess
-import sys
 import threading
 import time
 from contextlib import contextmanager
@@ -287,8 +286,7 @@ class Monitor:
             self._reap_alarm_commands(wait=True)
 
     def _take_record_notices(self, record: SessionRecord) -> None:
-        for msg in record.take_notices():
-            print(f"qcmon: {msg}", file=sys.stderr, flush=True)
+        for msg in record.take_notices():  # a problem event: on the console, the dashboard and in the record
             self._report(QcmonError(msg))
 
     def _start_plots(self) -> None:

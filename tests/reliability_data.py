@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -69,3 +70,25 @@ def run_qcmon(*args: str, timeout: float = 60.0) -> subprocess.CompletedProcess:
     """Run ``qcmon ARGS`` to its end (text output captured)."""
     return subprocess.run(qcmon_cmd(*args), capture_output=True, text=True, timeout=timeout,
                           stdin=subprocess.DEVNULL)
+
+
+def as_unprivileged() -> list[str]:
+    """The prefix that runs a command as the unprivileged user ``nobody`` (uid/gid 65534) when the tests run as
+    root — root reads any file and writes into read-only folders, which would hide a permission failure (the CI
+    runs as root) — and nothing otherwise. Raises ``RuntimeError`` when root cannot drop privileges here."""
+    if os.geteuid() != 0:
+        return []
+    if shutil.which("setpriv") is None:
+        raise RuntimeError("running as root without setpriv (util-linux): cannot test a permission failure")
+    prefix = ["setpriv", "--reuid=65534", "--regid=65534", "--clear-groups"]
+    probe = subprocess.run(prefix + [sys.executable, "-c", "import qcmon"], capture_output=True, text=True,
+                           cwd="/", timeout=60)
+    if probe.returncode:
+        raise RuntimeError("the user nobody cannot run this Python with qcmon (the checkout, the virtual "
+                           f"environment or the interpreter is not readable by all users): {probe.stderr[-300:]}")
+    return prefix
+
+
+def unprivileged_env(home: os.PathLike) -> dict[str, str]:
+    """Environment for :func:`as_unprivileged` commands: a home and a matplotlib folder that user may write."""
+    return dict(os.environ, HOME=str(home), MPLCONFIGDIR=str(Path(home) / ".mpl"))

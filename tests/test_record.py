@@ -6,6 +6,8 @@ import errno
 import json
 import math
 import os
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -17,6 +19,7 @@ from qcmon.events import Event
 from qcmon.record import SessionRecord, read_events, read_traces, rows_to_traces, write_atomic
 from qcmon.summary import exclude_ranges, fit_bleaching, rebuild, summarize_traces, summary_json
 from qcmon.thresholds import ThresholdTracker, load_profile
+from reliability_data import as_unprivileged, unprivileged_env
 
 FPS = 10.0
 
@@ -153,16 +156,16 @@ def test_full_disk_while_appending_names_folder(tmp_path):
     assert len(read_traces(tmp_path)["frame"]) == 10
 
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="root writes into read-only folders")
-def test_read_only_folder(tmp_path):
-    d = tmp_path / "ro"
+def test_read_only_folder(open_dir):
+    # root writes into read-only folders: as root (the CI), the record is opened by the user nobody
+    d = open_dir / "ro"
     d.mkdir()
-    d.chmod(0o500)
-    try:
-        with pytest.raises(QcmonError, match="read-only"):
-            SessionRecord(d)
-    finally:
-        d.chmod(0o700)
+    d.chmod(0o555)
+    code = "import sys; from qcmon.record import SessionRecord; SessionRecord(sys.argv[1])"
+    res = subprocess.run(as_unprivileged() + [sys.executable, "-c", code, str(d)], capture_output=True, text=True,
+                         env=unprivileged_env(open_dir), timeout=60)
+    assert res.returncode == 1 and "QcmonError" in res.stderr and "read-only" in res.stderr, res.stderr
+    assert str(d) in res.stderr and os.listdir(d) == []
 
 
 def test_bleach_fit_matches_truth_and_scipy():

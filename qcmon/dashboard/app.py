@@ -327,13 +327,14 @@ def run_dashboard(monitor, *, title: str | None = None) -> int:
     Returns
     -------
     int
-        0 after a normal end, 1 when the watch failed, 130 when interrupted.
+        0 after a normal end, 2 when the record could not be written (a QcmonError), 1 when the watch failed
+        otherwise, 130 when aborted (a second Ctrl-C: no summary set).
     """
     app = QcmonApp(monitor, title=title)
     try:
         result = app.run()
-    except KeyboardInterrupt:
-        monitor.stop()
+    except KeyboardInterrupt:  # outside the app's own keys: abort like a second Ctrl-C (no summary set)
+        monitor.abort()
         app.wait_for_watch()
         return 130
     if app.watch_running:  # left without a normal quit: let the watch finish writing
@@ -341,7 +342,9 @@ def run_dashboard(monitor, *, title: str | None = None) -> int:
         app.wait_for_watch()
     if app.error is not None:
         print(f"qcmon: the watch stopped with an error: {app.error}", file=sys.stderr)
-        return 1
+        from qcmon.errors import QcmonError
+
+        return 2 if isinstance(app.error, QcmonError) else 1  # README: 2 when the record cannot be written
     result = result or app.result or {}
     for key, path in result.items():  # summary, report, out_dir, ...: where the record was written
         if path:
