@@ -166,38 +166,63 @@ def test_a_second_watcher_on_the_same_record_refuses_and_a_dead_ones_lock_does_n
 
 
 # ----------------------------------------------------------------------------------------------------------- 4
-@pytest.fixture
-def small_disk(tmp_path):
-    """A folder on a tmpfs of 1 MiB (a real full disk: ENOSPC from the kernel), unmounted afterwards."""
+class _Disk:
+    """A nearly full disk for the record: a real one (a 1 MiB tmpfs: ENOSPC from the kernel; needs root, as in the
+    CI) or, where nothing can be mounted, qcmon run through ``full_disk_layer.py`` with the same free space."""
+
+    def __init__(self, path: Path, layered: bool):
+        self.path, self.layered, self.quota = path, layered, 1 << 20
+
+    def fill(self, leave: int) -> None:
+        """Leave ``leave`` bytes free."""
+        if self.layered:
+            used = sum(p.stat().st_size for p in self.path.rglob("*") if p.is_file())
+            self.quota = used + leave
+            return
+        st = os.statvfs(self.path)
+        with open(self.path / "filler", "wb") as fh:
+            fh.write(b"\0" * max(0, st.f_bavail * st.f_frsize - leave))
+
+    def empty(self) -> None:
+        if self.layered:
+            self.quota = 1 << 40
+        else:
+            (self.path / "filler").unlink()
+
+    def run(self, *args) -> subprocess.CompletedProcess:
+        if not self.layered:
+            return run_qcmon(*args, timeout=120)
+        layer = Path(__file__).with_name("full_disk_layer.py")
+        return subprocess.run([sys.executable, str(layer), str(self.path), str(self.quota), *map(str, args)],
+                              capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL)
+
+
+@pytest.fixture(params=["tmpfs", "layer"])
+def small_disk(request, tmp_path):
     mnt = tmp_path / "disk"
     mnt.mkdir()
+    if request.param == "layer":
+        yield _Disk(mnt, layered=True)
+        return
     res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True)
     if res.returncode:
-        pytest.skip("mounting a tmpfs needs root (the CI runs as root; see .ci/run)")
+        pytest.skip("mounting a tmpfs needs root (the CI runs as root; see .ci/run); the 'layer' case stands in")
     try:
-        yield mnt
+        yield _Disk(mnt, layered=False)
     finally:
         subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
 
 
-def _fill(folder: Path, leave: int) -> None:
-    """Fill the file system of ``folder`` up to ``leave`` free bytes."""
-    st = os.statvfs(folder)
-    free = st.f_bavail * st.f_frsize
-    with open(folder / "filler", "wb") as fh:
-        fh.write(b"\0" * max(0, free - leave))
-
-
 def test_disk_full_mid_session_exits_2_without_traceback_and_keeps_complete_rows(tmp_path, small_disk):
     frames = tmp_path / "frames"
-    _write_frames(frames, good_pages(300))
-    out = small_disk / "record"
-    _fill(small_disk, leave=48 * 1024)  # room for about 150 rows, not 300
-    res = run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=120)
+    _write_frames(frames, good_pages(600))
+    out = small_disk.path / "record"
+    small_disk.fill(leave=150 * 1024)  # room for some 400 rows (rows are appended 256 at a time), not 600
+    res = small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out)
     assert res.returncode == 2, (res.returncode, res.stderr)  # README: 2 on an input or output error
     assert "Traceback" not in res.stderr and "disk is full" in res.stderr and str(out) in res.stderr, res.stderr
     rows = read_traces(out)["frame"]  # the complete rows written before the disk filled (a partial line ignored)
-    assert 0 < len(rows) < 300
+    assert 0 < len(rows) < 600
     np.testing.assert_array_equal(rows, np.arange(len(rows)))
     assert not (out / "summary.json").exists() and not [p for p in os.listdir(out) if p.endswith(".tmp")]
 
@@ -206,21 +231,21 @@ def test_disk_full_at_the_end_keeps_the_old_set_of_final_files(tmp_path, small_d
     frames = tmp_path / "frames"
     pages = good_pages(300)
     _write_frames(frames, pages[:200])
-    out = small_disk / "record"
-    assert run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=120).returncode == 0
+    out = small_disk.path / "record"
+    assert small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out).returncode == 0
     final = ("summary.json", "report.html", "exclude.csv", "reference.tif")
     before = {name: (out / name).read_bytes() for name in final}
     _write_frames(frames, pages[200:], start=200)
     # room for the 100 new rows, the summary, exclude list and reference image, but not the report as well
-    _fill(small_disk, leave=128 * 1024)
+    small_disk.fill(leave=128 * 1024)
     assert len(before["report.html"]) > 128 * 1024, "the report must not fit: make the free space smaller"
-    res = run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=120)
+    res = small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out)
     assert res.returncode == 2 and "disk is full" in res.stderr and "Traceback" not in res.stderr, res.stderr
     assert {name: (out / name).read_bytes() for name in final} == before  # the old set, whole
     assert not [p for p in os.listdir(out) if p.endswith(".tmp")]
     np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(300))  # the rows are kept
-    (small_disk / "filler").unlink()
-    assert run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=120).returncode == 0
+    small_disk.empty()
+    assert small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out).returncode == 0
     assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["frames"] == 300
 
 
