@@ -167,6 +167,7 @@ class SessionSource:
         self._frontier: tuple | None = None  # natural key of the latest file that was read from
         self._stall: dict[str, tuple[tuple[int, int], float]] = {}
         self._sizes: dict[str, int] = {}  # size of each queued file when last read (a shrinking file is rewritten)
+        self._inodes: dict[str, tuple[int, int]] = {}  # (device, inode) of each queued file (another: replaced)
         self._count = 0  # pages met, in acquisition order (bad pages included: they hold a channel/plane slot)
         self._layout: tuple[int, int, bool] | None = None  # (channels, planes, plane_fastest)
         self._facts: AcquisitionFacts | None = None
@@ -227,6 +228,12 @@ class SessionSource:
                 if is_last:
                     break  # nothing new
                 self._finish()
+                continue
+            ident = self._inodes.setdefault(name, (st.st_dev, st.st_ino))
+            if ident != (st.st_dev, st.st_ino):
+                self._give_up(FrameError("replaced by another file of the same name while being read (another "
+                                         "inode); the new file is not read, so that pages of two files are not "
+                                         "mixed", path=path, page=stream.pages_done))
                 continue
             seen = self._sizes.get(name, 0)
             if st.st_size < seen and stream.kind != "array":  # (a Zarr store is a folder: its size says nothing)
@@ -413,6 +420,7 @@ class SessionSource:
         into[name] = stream.pages_done + stream.skip
         self._stall.pop(name, None)
         self._sizes.pop(name, None)
+        self._inodes.pop(name, None)
         self._frontier = key if self._frontier is None else max(self._frontier, key)
 
     def _problem(self, err: FrameError) -> None:
