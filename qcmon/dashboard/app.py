@@ -140,6 +140,8 @@ class QcmonApp(App[dict | None]):
             result = self.monitor.run(self._listener)
         except Exception as exc:  # shown to the user; the app stays usable to read what was measured
             self.post_message(WatchFailed(exc))
+        except KeyboardInterrupt:  # Monitor.abort: ended without the summary set, as asked
+            pass
         else:
             self.post_message(WatchFinished(dict(result or {})))
         finally:
