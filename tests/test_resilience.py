@@ -102,7 +102,7 @@ def _alarm_logger(log: Path) -> str:
 # -------------------------------------------------------------------------------------------------------- 1, 2
 def test_kill_9_during_an_alarm_then_resume_equals_an_uninterrupted_run(tmp_path):
     frames, out, ref = tmp_path / "frames", tmp_path / "record", tmp_path / "uninterrupted"
-    pages = _saturating_pages(400, [(60, 120), (170, 330)])
+    pages = _saturating_pages(300, [(60, 120), (170, 260)])
     _write_frames(frames, pages[:200])
     (frames / "f_0050x.tif").write_bytes(b"not a TIFF at all")  # one bad file: one problem, whatever the restarts
     log = tmp_path / "alarms.jsonl"
@@ -128,7 +128,7 @@ def test_kill_9_during_an_alarm_then_resume_equals_an_uninterrupted_run(tmp_path
     unbroken = run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", ref, timeout=120)
     assert unbroken.returncode == 0, unbroken.stderr
 
-    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(400))
+    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(300))
     assert _threshold_events(out) == _threshold_events(ref)
     s, r = (json.loads((d / "summary.json").read_text(encoding="utf-8")) for d in (out, ref))
     assert s["events"] == r["events"] and s["events"]["alarms"] >= 2, (s["events"], r["events"])
@@ -197,56 +197,73 @@ class _Disk:
                               capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL)
 
 
-@pytest.fixture(params=["tmpfs", "layer"])
-def small_disk(request, tmp_path):
+def _disk(tmp_path: Path, kind: str):
     mnt = tmp_path / "disk"
     mnt.mkdir()
-    if request.param == "layer":
-        yield _Disk(mnt, layered=True)
-        return
-    res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True)
-    if res.returncode:
+    if kind == "tmpfs":
+        res = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=1m", "tmpfs", str(mnt)], capture_output=True)
+        if res.returncode == 0:
+            try:
+                yield _Disk(mnt, layered=False)
+            finally:
+                subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+            return
         pytest.skip("mounting a tmpfs needs root (the CI runs as root; see .ci/run); the 'layer' case stands in")
-    try:
-        yield _Disk(mnt, layered=False)
-    finally:
+    yield _Disk(mnt, layered=True)
+
+
+@pytest.fixture(params=["tmpfs", "layer"])
+def small_disk(request, tmp_path):
+    """Both kinds of full disk (the layer is checked against the real one here)."""
+    yield from _disk(tmp_path, request.param)
+
+
+@pytest.fixture
+def one_small_disk(tmp_path):
+    """A real full disk where it can be mounted, else the layer."""
+    mnt = tmp_path / "probe"
+    mnt.mkdir()
+    ok = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(mnt)], capture_output=True)
+    if ok.returncode == 0:
         subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+    yield from _disk(tmp_path, "tmpfs" if ok.returncode == 0 else "layer")
 
 
 def test_disk_full_mid_session_exits_2_without_traceback_and_keeps_complete_rows(tmp_path, small_disk):
     frames = tmp_path / "frames"
-    _write_frames(frames, good_pages(600))
+    _write_frames(frames, good_pages(300))
     out = small_disk.path / "record"
-    small_disk.fill(leave=150 * 1024)  # room for some 400 rows (rows are appended 256 at a time), not 600
+    small_disk.fill(leave=96 * 1024)  # room for the first 256 rows (appended at once), not for 300 (~100 kB)
     res = small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out)
     assert res.returncode == 2, (res.returncode, res.stderr)  # README: 2 on an input or output error
     assert "Traceback" not in res.stderr and "disk is full" in res.stderr and str(out) in res.stderr, res.stderr
     rows = read_traces(out)["frame"]  # the complete rows written before the disk filled (a partial line ignored)
-    assert 0 < len(rows) < 600
+    assert 0 < len(rows) < 300
     np.testing.assert_array_equal(rows, np.arange(len(rows)))
     assert not (out / "summary.json").exists() and not [p for p in os.listdir(out) if p.endswith(".tmp")]
 
 
-def test_disk_full_at_the_end_keeps_the_old_set_of_final_files(tmp_path, small_disk):
+def test_disk_full_at_the_end_keeps_the_old_set_of_final_files(tmp_path, one_small_disk):
+    small_disk = one_small_disk
     frames = tmp_path / "frames"
-    pages = good_pages(300)
-    _write_frames(frames, pages[:200])
+    pages = good_pages(120)
+    _write_frames(frames, pages[:80])
     out = small_disk.path / "record"
     assert small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out).returncode == 0
     final = ("summary.json", "report.html", "exclude.csv", "reference.tif")
     before = {name: (out / name).read_bytes() for name in final}
-    _write_frames(frames, pages[200:], start=200)
-    # room for the 100 new rows, the summary, exclude list and reference image, but not the report as well
+    _write_frames(frames, pages[80:], start=80)
+    # room for the 40 new rows, the summary, exclude list and reference image, but not the report as well
     small_disk.fill(leave=128 * 1024)
     assert len(before["report.html"]) > 128 * 1024, "the report must not fit: make the free space smaller"
     res = small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out)
     assert res.returncode == 2 and "disk is full" in res.stderr and "Traceback" not in res.stderr, res.stderr
     assert {name: (out / name).read_bytes() for name in final} == before  # the old set, whole
     assert not [p for p in os.listdir(out) if p.endswith(".tmp")]
-    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(300))  # the rows are kept
+    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(120))  # the rows are kept
     small_disk.empty()
     assert small_disk.run("summarize", frames, "--frame-rate", RATE, "--out", out).returncode == 0
-    assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["frames"] == 300
+    assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["frames"] == 120
 
 
 # ----------------------------------------------------------------------------------------------------------- 5
@@ -447,11 +464,11 @@ def test_the_tiff_librarys_log_messages_are_not_printed(tmp_path):
 # ---------------------------------------------------------------------------------------------------------- 16
 def test_second_ctrl_c_aborts_without_the_summary_and_keeps_the_rows(tmp_path):
     frames, out = tmp_path / "frames", tmp_path / "record"
-    _write_frames(frames, _saturating_pages(200, [(60, 120)]))
+    _write_frames(frames, _saturating_pages(100, [(40, 80)]))
     watch = _Proc("watch", frames, "--plain", "--until-idle", 60, "--frame-rate", RATE, "--out", out)
     try:
         watch.wait_started()
-        assert _wait(lambda: _rows(out) == 200, 60)
+        assert _wait(lambda: _rows(out) == 100, 60)
         watch.proc.send_signal(signal.SIGINT)  # the first Ctrl-C: the watch ends and writes the summary set,
         time.sleep(0.5)  # which takes a second or more (the report's plots) ...
         watch.proc.send_signal(signal.SIGINT)  # ... when the second comes
@@ -462,7 +479,7 @@ def test_second_ctrl_c_aborts_without_the_summary_and_keeps_the_rows(tmp_path):
     assert "Traceback" not in stderr and "no summary" in stderr, stderr
     written = [n for n in ("summary.json", "report.html", "exclude.csv", "reference.tif") if (out / n).exists()]
     assert written == [], f"an abort wrote {written}"
-    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(200))
+    np.testing.assert_array_equal(read_traces(out)["frame"], np.arange(100))
     # the record is whole: the next run resumes it and writes the summary
     res = run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=60)
     assert res.returncode == 0 and (out / "summary.json").exists(), res.stderr
