@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import argparse
+import math
 import signal
 import sys
 import threading
 from pathlib import Path
 
 from qcmon import __version__
-from qcmon.errors import QcmonError
+from qcmon.errors import QcmonError, display_path
 
 #: Exit statuses (documented in the README).
 EXIT_OK, EXIT_FLAGGED, EXIT_ERROR, EXIT_INTERRUPTED = 0, 1, 2, 130
@@ -23,8 +24,31 @@ def _positive(kind):
             raise argparse.ArgumentTypeError(f"expected a {kind.__name__}, got {text!r}") from None
         if not v > 0:
             raise argparse.ArgumentTypeError(f"must be greater than 0, got {text!r}")
+        if not math.isfinite(v):
+            raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
         return v
     return parse
+
+
+def _finite(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not math.isfinite(v):
+        raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
+    return v
+
+
+def _raw_dtype(text: str) -> str:
+    """An unsigned-integer pixel type, checked when the options are read (not at the first raw file)."""
+    from qcmon.sources.raw import parse_dtype
+
+    try:
+        parse_dtype(text, what="--raw-dtype")
+    except ValueError as err:
+        raise argparse.ArgumentTypeError(str(err).removeprefix("--raw-dtype: ")) from None
+    return text
 
 
 def _add_acquisition(p: argparse.ArgumentParser) -> None:
@@ -33,7 +57,7 @@ def _add_acquisition(p: argparse.ArgumentParser) -> None:
     g.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
     g.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N",
                    help="detector bit depth (8..16); the saturation level is 2^N − 1 (default: from the dtype)")
-    g.add_argument("--dark-level", type=float, metavar="DN",
+    g.add_argument("--dark-level", type=_finite, metavar="DN",
                    help="detector offset in DN (default: estimated by photon transfer)")
     g.add_argument("--zstack", type=Path, metavar="FILE", help="reference z-stack TIFF, superficial → deep")
     g.add_argument("--z-step", type=_positive(float), metavar="UM", help="plane spacing of the z-stack in µm")
@@ -41,7 +65,7 @@ def _add_acquisition(p: argparse.ArgumentParser) -> None:
     g.add_argument("--planes", type=_positive(int), metavar="N", help="planes interleaved page by page")
     g.add_argument("--motion-channel", type=int, metavar="C",
                    help="measure motion on channel C and apply it to the others")
-    g.add_argument("--raw-dtype", metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
+    g.add_argument("--raw-dtype", type=_raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
     g.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
     g.add_argument("--dataset", metavar="PATH",
                    help="the image series to read in an HDF5, NWB or Zarr file (a dataset path or NWB series name); "
@@ -171,8 +195,9 @@ def cmd_summarize(args) -> int:
 
     paths = mon.run(_Problems())
     if "earlier" in paths:
-        print(f"earlier record moved to {paths['earlier']}")
-    print(f"summary: {paths['summary']}\nreport:  {paths['report']}\ntraces:  {Path(paths['out_dir']) / 'traces.csv'}")
+        print(f"earlier record moved to {display_path(paths['earlier'])}")
+    print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}\n"
+          f"traces:  {display_path(Path(paths['out_dir']) / 'traces.csv')}")
     return EXIT_OK
 
 
@@ -219,7 +244,7 @@ def run_watch(monitor, *, plain: bool) -> int:
     from qcmon.console import PlainConsole
 
     console = PlainConsole()
-    print(f"qcmon {__version__}: watching {monitor.path} → record in {monitor.out_dir} "
+    print(f"qcmon {__version__}: watching {display_path(monitor.path)} → record in {display_path(monitor.out_dir)} "
           f"(profile {monitor.profile.name})", flush=True)
     if monitor.profile.caution:
         print(f"caution: {monitor.profile.caution}", flush=True)
@@ -228,8 +253,8 @@ def run_watch(monitor, *, plain: bool) -> int:
         threading.Thread(target=_read_commands, args=(monitor, sys.stdin), daemon=True).start()
     paths = monitor.run(console)
     if "earlier" in paths:
-        print(f"earlier record moved to {paths['earlier']}", flush=True)
-    print(f"summary: {paths['summary']}\nreport:  {paths['report']}", flush=True)
+        print(f"earlier record moved to {display_path(paths['earlier'])}", flush=True)
+    print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}", flush=True)
     return EXIT_OK
 
 

@@ -31,14 +31,15 @@ from threadpoolctl import threadpool_limits
 
 from qcmon._memory import keep_freed_memory
 from qcmon.engine import Engine, EngineSettings
-from qcmon.errors import FrameError, QcmonError
+from qcmon.errors import FrameError, QcmonError, display_path
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record import (EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE, SUMMARY_FILE, SessionRecord,
                           write_atomic_set)
 from qcmon.report import PanelDrawing, PlotWorkers, report_html
 from qcmon.sources.arrays import container_kind
-from qcmon.sources.session import SessionSource
+from qcmon.sources.raw import RAW_SUFFIXES
+from qcmon.sources.session import TIFF_SUFFIXES, SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
 from qcmon.summary import exclude_ranges, summarize_traces
@@ -132,15 +133,21 @@ class Monitor:
         self._shared_plots = plots  # the caller's plot processes, kept open for its next runs
         self.path = Path(options.path)
         if not self.path.exists():
-            raise QcmonError(f"{self.path}: no such file or folder")
+            raise QcmonError(f"{display_path(self.path)}: no such file or folder")
         if options.dataset is not None and container_kind(str(self.path)) is None:
-            raise QcmonError(f"--dataset {options.dataset}: {self.path} is not an HDF5, NWB or Zarr file; a dataset "
-                             "cannot be chosen in it")
+            raise QcmonError(f"--dataset {options.dataset}: {display_path(self.path)} is not an HDF5, NWB or Zarr "
+                             "file; a dataset cannot be chosen in it")
+        if (self.path.is_file() and self.path.suffix.lower() not in TIFF_SUFFIXES + RAW_SUFFIXES
+                and container_kind(str(self.path)) is None):
+            raise QcmonError(f"{display_path(self.path)}: not a frame file: qcmon reads TIFF files "
+                             f"({', '.join(TIFF_SUFFIXES)}), raw streams ({', '.join(RAW_SUFFIXES)}) with a "
+                             "sidecar TOML, HDF5, NWB and Zarr image series, or a folder of them")
         if options.follow:
             _check_watchable(self.path)
         self.out_dir = Path(options.out_dir) if options.out_dir else default_out_dir(self.path, options.dataset)
-        if self.path.is_dir() and self.out_dir.resolve() == self.path.resolve():
-            raise QcmonError(f"--out {self.out_dir}: the record cannot go into the session folder it reads")
+        if self.path.is_dir() and self.out_dir.resolve().is_relative_to(self.path.resolve()):
+            raise QcmonError(f"--out {display_path(self.out_dir)}: the record cannot go into the session folder it reads "
+                             "(nor into a folder inside it)")
         self.profile: Profile = load_profile(options.profile)
         self._alarm_argv = check_on_alarm(options.on_alarm) if options.on_alarm else None
         self._stop = threading.Event()
@@ -190,6 +197,8 @@ class Monitor:
     def _run(self, listener: Listener | None) -> dict:
         o = self.options
         listeners = [listener] if listener is not None else []
+        if not o.follow:
+            self._check_measurable()  # an input error is said at once, and no record is started for it
         record = SessionRecord(self.out_dir, resume=o.resume, set_aside=not o.resume)
         try:
             return self._run_record(record, listeners)
@@ -206,7 +215,7 @@ class Monitor:
         o = self.options
         self.earlier_record = record.set_aside_to  # --restart over an earlier record: where it went
         run = _RunState(done=record.last_frames() if o.resume else {},
-                        status=Status(folder=str(self.path), out_dir=str(self.out_dir)),
+                        status=Status(folder=display_path(self.path), out_dir=display_path(self.out_dir)),
                         tracker=ThresholdTracker(self.profile))
         self._report = self._problem_to(record, listeners)
         if o.resume:
@@ -288,6 +297,26 @@ class Monitor:
     def _take_record_notices(self, record: SessionRecord) -> None:
         for msg in record.take_notices():  # a problem event: on the console, the dashboard and in the record
             self._report(QcmonError(msg))
+
+    def _check_measurable(self) -> None:
+        """A finished session must give at least one frame; else a :class:`QcmonError` naming what was found."""
+        o = self.options
+        probe = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
+                              raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz, pixel_size_um=o.pixel_size_um,
+                              dataset=o.dataset)
+        frames = probe.frames(final=True, max_frames=1)
+        try:
+            first = next(frames, None)
+        finally:
+            frames.close()
+        if first is not None:
+            return
+        if probe.problems:
+            shown = "; ".join(str(p) for p in probe.problems[:3])
+            more = f" (and {len(probe.problems) - 3} more)" if len(probe.problems) > 3 else ""
+            raise QcmonError(f"{display_path(self.path)}: nothing measurable: {shown}{more}")
+        raise QcmonError(f"{display_path(self.path)}: nothing measurable: no TIFF ({', '.join(TIFF_SUFFIXES)}) "
+                         f"or raw stream ({', '.join(RAW_SUFFIXES)}) with frames in it")
 
     def _start_plots(self) -> None:
         """Start the report's plot processes (``plot_processes``), so that they load matplotlib meanwhile."""
@@ -476,7 +505,16 @@ class Monitor:
         status.backlog_frames = _BATCH if run.behind else 0
         status.states = {k: dict(v) for k, v in tracker.states.items()}
         status.overall = tracker.overall
+        if engine is None and not status.paused_reason.startswith(("resuming", "session ended")):
+            # a watched folder where nothing readable appears says so (and how many files were refused)
+            problems = len(source.problems)
+            status.paused_reason = (f"no readable frame yet: {problems} file problem{'s' if problems != 1 else ''}"
+                                    if problems else "no frame file yet")
+        elif engine is None and status.paused_reason == "session ended":
+            status.paused_reason = f"session ended without a readable frame ({len(source.problems)} file problems)"
         if engine is not None:
+            if status.paused_reason.startswith(("no readable frame yet", "no frame file yet")):
+                status.paused_reason = ""
             status.streams = engine.streams
             loss = self.options.forecast_loss_pct
             forecast = run.split.continuity.forecast_min if run.split is not None else engine.forecast_min
@@ -575,7 +613,7 @@ class Monitor:
         facts = source.facts.as_dict()
         summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
         summary["problems"] = list(self.problems)
-        summary["session"] = str(self.path)
+        summary["session"] = display_path(self.path)
         paths = {"out_dir": str(self.out_dir)}
         if self.earlier_record is not None:
             paths["earlier"] = str(self.earlier_record)

@@ -87,6 +87,20 @@ def _folder_error(folder: Path, exc: OSError, doing: str) -> QcmonError:
                       "(the files already written there are left as they were)")
 
 
+def _umask() -> int:
+    """The process's file-mode creation mask (read from /proc where it is shown, else set and restored)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def write_atomic(path: str | os.PathLike, data: str | bytes) -> Path:
     """Replace ``path`` with ``data`` all at once: a reader sees the old file or the new one, never a mixture.
 
@@ -111,10 +125,12 @@ def write_atomic(path: str | os.PathLike, data: str | bytes) -> Path:
     """
     path = Path(path)
     folder = path.parent
-    payload = data.encode("utf-8") if isinstance(data, str) else bytes(data)
+    payload = data.encode("utf-8", "backslashreplace") if isinstance(data, str) else bytes(data)
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+        # mkstemp makes the file 0600; the record's files follow the umask like those opened with open()
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as fh:
             fh.write(payload)
             fh.flush()
@@ -400,7 +416,7 @@ class SessionRecord:
         if self._closed:
             raise QcmonError(f"{self.out_dir}: the session record is closed")
         try:
-            fh.write(text.encode("utf-8"))
+            fh.write(text.encode("utf-8", "backslashreplace"))  # never lose a row over one odd character
             fh.flush()
             self._sync()
         except OSError as exc:

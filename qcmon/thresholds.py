@@ -75,6 +75,12 @@ _TOP_KEYS = ("description", "caution", "extends", "limits")
 _LIMIT_KEYS = ("warn", "alarm", "direction", "persist_s", "label", "unit", "enabled")
 _REQUIRED_LIMIT_KEYS = ("warn", "alarm", "direction", "persist_s")
 _ENV = "QCMON_THRESHOLDS"
+#: Levels a metric can reach at all (fractions 0..1, correlations −1..1); any other level beyond ±_MAX_LEVEL of
+#: its unit (µm, px, %, %/min, DN, photons) is taken for a typing error, as is persistence beyond a day.
+_LEVEL_RANGES = {"saturated_frac": (0.0, 1.0), "clipped_frac": (0.0, 1.0), "reg_corr": (-1.0, 1.0),
+                 "z_corr": (-1.0, 1.0), "focus_corr": (-1.0, 1.0)}
+_MAX_LEVEL = 1e6
+_MAX_PERSIST_S = 86400.0
 _RANK = {s: i for i, s in enumerate(STATES)}
 
 
@@ -233,6 +239,9 @@ def _load(path: Path, chain: tuple[Path, ...]) -> Profile:
             doc = tomllib.load(fh)
     except tomllib.TOMLDecodeError as exc:
         raise ProfileError(f"{path}: not valid TOML: {exc}") from None
+    except UnicodeDecodeError as exc:
+        raise ProfileError(f"{path}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at byte {exc.start}); "
+                           "TOML files are UTF-8: save the profile as UTF-8") from None
     except OSError as exc:
         raise ProfileError(f"{path}: cannot read threshold profile: {exc.strerror or exc}") from None
 
@@ -289,6 +298,14 @@ def _load(path: Path, chain: tuple[Path, ...]) -> Profile:
             raise err(where, f"direction 'below' needs alarm <= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
         if direction == "abs_above" and not 0 <= warn <= alarm:
             raise err(where, f"direction 'abs_above' needs 0 <= warn <= alarm (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        low, high = _LEVEL_RANGES.get(metric, (-_MAX_LEVEL, _MAX_LEVEL))
+        for key, value in (("warn", warn), ("alarm", alarm)):
+            if not low <= value <= high:
+                raise err(f"{where}.{key}", f"{_fmt(value)} is outside the values {metric} can take or a user "
+                                            f"would set ({_fmt(low)} .. {_fmt(high)})")
+        if float(fields["persist_s"]) > _MAX_PERSIST_S:
+            raise err(f"{where}.persist_s", f"{_fmt(float(fields['persist_s']))} s is longer than a day "
+                                            f"(at most {_fmt(_MAX_PERSIST_S)} s)")
         column = BY_NAME[metric]
         limits[metric] = Limit(
             metric=metric,

@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 from qcmon.audit._chronic import SAME_FIELD_CORR
-from qcmon.cli import _positive
+from qcmon.cli import _finite, _positive, _raw_dtype
 from qcmon.errors import QcmonError
 
 
@@ -56,13 +56,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     a.add_argument("--frame-rate", type=_positive(float), metavar="HZ", help="time points per second")
     a.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
     a.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N", help="detector bit depth (8..16)")
-    a.add_argument("--dark-level", type=float, metavar="DN", help="detector offset in DN")
+    a.add_argument("--dark-level", type=_finite, metavar="DN", help="detector offset in DN")
     a.add_argument("--z-step", type=_positive(float), metavar="UM",
                    help="plane spacing of the sessions' zstack*.tif files in µm")
     a.add_argument("--no-zstack", action="store_true", help="ignore zstack*.tif files beside the sessions")
     a.add_argument("--channels", type=_positive(int), metavar="N", help="channels interleaved page by page")
     a.add_argument("--planes", type=_positive(int), metavar="N", help="planes interleaved page by page")
-    a.add_argument("--raw-dtype", metavar="DTYPE", help="pixel type of raw streams without a sidecar")
+    a.add_argument("--raw-dtype", type=_raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar")
     a.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
 
 

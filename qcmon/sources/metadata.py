@@ -56,6 +56,9 @@ class FileMetadata:
         ``(channel, plane, time point) -> seconds`` from OME ``Plane/@DeltaT``.
     notes : list of str
         Metadata that was present but could not be used (says why).
+    declared_pages : int or None
+        Pages the file says it holds (ImageJ ``images``; OME ``TiffData/@PlaneCount`` of a one-file dataset, else
+        ``SizeC × SizeZ × SizeT``); None when it does not say or the dataset spans several files.
     """
 
     facts: dict[str, tuple[object, str]] = field(default_factory=dict)
@@ -63,6 +66,17 @@ class FileMetadata:
     sizes: tuple[int, int, int] | None = None
     delta_t: dict[tuple[int, int, int], float] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    declared_pages: int | None = None
+
+    def drop_layout(self, why: str) -> None:
+        """Forget the channels and planes the file declares (they contradict the file): one of each, noted."""
+        dropped = [f"{self.facts.pop(k)[0]} {k}" for k in ("channels", "planes")
+                   if k in self.facts and self.facts[k][1] != "option"]
+        self.sizes = None
+        self.delta_t.clear()
+        self.declared_pages = None
+        self.notes.append(f"{why}; its layout ({', '.join(dropped) or 'sizes'}) is not used: one channel and one "
+                          "plane per page unless --channels/--planes say otherwise")
 
     def put(self, key: str, value, origin: str) -> None:
         if value is not None and key not in self.facts:
@@ -152,14 +166,32 @@ def _read_ome(xml: str | None, meta: FileMetadata) -> None:
     increment = _time_s(a.get("TimeIncrement"), a.get("TimeIncrementUnit"))
     if increment is not None and increment > 0:
         meta.put("frame_rate_hz", 1.0 / increment, OME)
+    elif a.get("TimeIncrement") is not None:
+        meta.notes.append(f"OME TimeIncrement={a.get('TimeIncrement')!r} is not a positive time; not used as the "
+                          "frame interval")
     try:
         sizes = tuple(int(a.get(k, "1")) for k in ("SizeC", "SizeZ", "SizeT"))
     except ValueError:
         sizes = None
-    if sizes is not None and min(sizes) >= 1:
+        meta.notes.append("OME SizeC/SizeZ/SizeT are not whole numbers; not used")
+    if sizes is not None and min(sizes) < 1:
+        meta.notes.append(f"OME SizeC/SizeZ/SizeT = {sizes} are not all positive; not used")
+        sizes = None
+    if sizes is not None:
         meta.sizes = sizes
         meta.put("channels", sizes[0], OME)
         meta.put("planes", sizes[1], OME)
+        meta.declared_pages = _ome_pages(pixels, sizes)
+        if meta.declared_pages is not None and meta.declared_pages != sizes[0] * sizes[1] * sizes[2]:
+            meta.drop_layout(f"OME SizeC={sizes[0]} × SizeZ={sizes[1]} × SizeT={sizes[2]} is not the "
+                             f"{meta.declared_pages} pages its TiffData elements list")
+        spp = [int(el.attrib.get("SamplesPerPixel", "1")) for el in pixels if _local(el.tag) == "Channel"
+               and el.attrib.get("SamplesPerPixel", "1").isdigit()]
+        if meta.sizes is not None and sizes[0] > 1 and spp and max(spp) > 1:
+            # the channels are samples within each page (RGB-like), not pages of their own
+            meta.sizes = (max(1, sizes[0] // max(spp)), sizes[1], sizes[2])
+            meta.facts["channels"] = (meta.sizes[0], OME)
+            meta.declared_pages = None
     if "SignificantBits" in a:
         try:
             meta.put("bit_depth", int(a["SignificantBits"]), OME)
@@ -185,25 +217,44 @@ def _read_ome(xml: str | None, meta: FileMetadata) -> None:
         except ValueError:
             continue
         meta.delta_t[key] = t
+    _check_delta_t(meta)
+
+
+def _ome_pages(pixels, sizes: tuple[int, int, int]) -> int | None:
+    """Pages an OME-TIFF file holds by its own account; None when its dataset spans several files."""
+    tiffdata = [el for el in pixels if _local(el.tag) == "TiffData"]
+    if any(_local(child.tag) == "UUID" for el in tiffdata for child in el):
+        return None  # a dataset over several files: this file holds only part of it
+    counts = [el.attrib.get("PlaneCount") for el in tiffdata]
+    if tiffdata and all(c is not None and c.isdigit() for c in counts):
+        return sum(int(c) for c in counts)
+    return sizes[0] * sizes[1] * sizes[2]
+
+
+def _check_delta_t(meta: FileMetadata) -> None:
+    """OME ``DeltaT`` must increase from one time point to the next of each channel and plane; else none is used."""
+    by_stream: dict[tuple[int, int], list[tuple[int, float]]] = {}
+    for (c, z, t), value in meta.delta_t.items():
+        by_stream.setdefault((c, z), []).append((t, value))
+    for (c, z), pts in by_stream.items():
+        pts.sort()
+        for (t0, v0), (t1, v1) in zip(pts, pts[1:]):
+            if not v1 > v0:
+                meta.notes.append(f"OME Plane DeltaT does not increase with time (channel {c}, plane {z}: "
+                                  f"{v0:g} s at time point {t0}, {v1:g} s at {t1}); no DeltaT is used")
+                meta.delta_t.clear()
+                return
 
 
 def _read_imagej(ij: dict, page, meta: FileMetadata) -> None:
     unit = ij.get("unit")
     scale = LENGTH_UM.get(unit) if isinstance(unit, str) else None
-    spacing = ij.get("spacing")
+    spacing = _number(ij.get("spacing"))
     if spacing is not None and scale is not None:
-        meta.put("z_step_um", float(spacing) * scale, IMAGEJ)
-    finterval = ij.get("finterval")
-    if finterval:
-        meta.put("frame_rate_hz", 1.0 / float(finterval), IMAGEJ)
-    elif ij.get("fps"):
-        meta.put("frame_rate_hz", float(ij["fps"]), IMAGEJ)
-    channels, slices, frames = (int(ij.get(k, 1) or 1) for k in ("channels", "slices", "frames"))
-    meta.put("channels", channels, IMAGEJ)
-    meta.put("planes", slices, IMAGEJ)
-    if meta.sizes is None:
-        meta.sizes = (channels, slices, frames)
-        meta.plane_fastest = False  # ImageJ hyperstacks store channel fastest (czt order)
+        if spacing > 0:
+            meta.put("z_step_um", spacing * scale, IMAGEJ)
+        else:
+            meta.notes.append(f"ImageJ spacing={ij.get('spacing')!r} is not a positive length; not used as z step")
     if scale is not None:
         xres = _rational(page, 282)
         if xres:
@@ -211,6 +262,42 @@ def _read_imagej(ij: dict, page, meta: FileMetadata) -> None:
             yres = _rational(page, 283)
             if yres:
                 meta.put("pixel_size_y_um", scale / yres, RESOLUTION)
+    finterval, fps = _number(ij.get("finterval")), _number(ij.get("fps"))
+    if finterval is not None and finterval > 0:
+        meta.put("frame_rate_hz", 1.0 / finterval, IMAGEJ)
+    elif fps is not None and fps > 0:
+        meta.put("frame_rate_hz", fps, IMAGEJ)
+    for key, value in (("finterval", finterval), ("fps", fps)):
+        if key in ij and not (value is not None and value > 0):
+            meta.notes.append(f"ImageJ {key}={ij[key]!r} is not a positive number; not used for the frame rate")
+    counts = {k: _number(ij.get(k, 1)) for k in ("channels", "slices", "frames", "images")}
+    bad = [k for k, v in counts.items() if k in ij and not (v is not None and v >= 1 and v == int(v))]
+    if bad:
+        meta.notes.append("ImageJ " + ", ".join(f"{k}={ij[k]!r}" for k in bad) + " not a positive whole number; "
+                          "the file's channels and slices are not used")
+        return
+    channels, slices, frames = (int(counts[k]) for k in ("channels", "slices", "frames"))
+    meta.put("channels", channels, IMAGEJ)
+    meta.put("planes", slices, IMAGEJ)
+    if "images" in ij and channels * slices > 1:
+        meta.declared_pages = int(counts["images"])
+        if (channels * slices * frames != meta.declared_pages if "frames" in ij
+                else meta.declared_pages % (channels * slices)):
+            meta.drop_layout(f"ImageJ channels={channels} × slices={slices} × frames={frames} is not "
+                             f"images={meta.declared_pages}")
+            return
+    if meta.sizes is None:
+        meta.sizes = (channels, slices, frames)
+        meta.plane_fastest = False  # ImageJ hyperstacks store channel fastest (czt order)
+
+
+def _number(value) -> float | None:
+    """A finite number from an ImageJ value (number or text), else None."""
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return None
+    return number if math.isfinite(number) else None
 
 
 def _rational(page, code: int) -> float | None:

@@ -42,7 +42,7 @@ from collections.abc import Callable, Generator, Iterator
 
 import numpy as np
 
-from qcmon.errors import FrameError, NotReadyError, QcmonError
+from qcmon.errors import FrameError, NotReadyError, QcmonError, display_path
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.sources.arrays import ArrayStream, container_kind
 from qcmon.sources.metadata import FileMetadata, read_file_metadata
@@ -160,6 +160,9 @@ class SessionSource:
         #: Metadata present in the files that could not be used, with the reason.
         self.notes: list[str] = []
         self._reported: set[tuple[str, str]] = set()
+        self._final_read = False
+        self._layout_checked = False
+        self._names: dict[str, str] = {}  # file path -> the name shown in the record
         self._queue: list[tuple[tuple, str]] = []  # unfinished files in natural order
         self._streams: dict[str, TiffStream | RawStream | ArrayStream] = {}
         self._done: dict[str, int] = {}  # finished files -> pages consumed
@@ -211,6 +214,7 @@ class SessionSource:
         if max_frames is not None and max_frames < 1:
             raise ValueError(f"max_frames: must be >= 1, got {max_frames!r}")
         limit = math.inf if max_frames is None else max_frames
+        self._final_read = final
         self._scan()
         given = 0
         while self._queue and given < limit:
@@ -292,6 +296,20 @@ class SessionSource:
             if is_last:
                 break
             self._finish()
+        if final and given < limit and not self._layout_checked and self._layout is not None:  # read through
+            self._layout_checked = True
+            n_c, n_z, _ = self._layout
+            if n_c * n_z > 1 and self._count % (n_c * n_z):
+                self._note(FrameError(
+                    f"{self._count} pages do not divide into {n_c} channel(s) × {n_z} plane(s): the last time "
+                    f"point is incomplete ({self._count % (n_c * n_z)} page(s) of it)", path=self.path))
+
+    def _shown(self, path: str) -> str:
+        """The file's name as the record shows it (:func:`~qcmon.errors.display_path`), worked out once a file."""
+        shown = self._names.get(path)
+        if shown is None:
+            shown = self._names[path] = display_path(path)
+        return shown
 
     def _passed_over(self, stream) -> None:
         """Count the frames ``stream`` passed over without decoding (``skip_frames``): they hold their slots."""
@@ -432,6 +450,17 @@ class SessionSource:
         if self._on_problem is not None:
             self._on_problem(err)
 
+    def _note(self, err: FrameError) -> None:
+        """Metadata that was not used, or disagrees with an option: said once, in :attr:`notes` and to
+        ``on_problem``; reading goes on (not a bad file: not in :attr:`problems`)."""
+        tag = (err.path or "", err.reason)
+        if tag in self._reported:
+            return
+        self._reported.add(tag)
+        self.notes.append(str(err))
+        if self._on_problem is not None:
+            self._on_problem(err)
+
     def _opened(self, stream, tif) -> None:
         if stream.meta is not None:
             return
@@ -444,10 +473,21 @@ class SessionSource:
                 stream.meta = read_file_metadata(tif)
             except Exception as exc:  # noqa: BLE001 - metadata is optional; never stop reading for it
                 stream.meta = FileMetadata(notes=[f"metadata cannot be read: {exc}"])
-        for note in stream.meta.notes:
-            self.notes.append(f"{stream.path}: {note}")
+        meta = stream.meta
+        if self._facts is None and tif is not None and meta.declared_pages is not None and self._final_read:
+            # a finished file: the pages it holds must be those its metadata declare, else its layout is a guess
+            try:
+                n_pages = len(tif.pages)
+            except Exception:  # noqa: BLE001 - a corrupt chain is reported when its page is read
+                n_pages = None
+            if n_pages is not None and n_pages != meta.declared_pages:
+                meta.drop_layout(f"the metadata declare {meta.declared_pages} pages but the file holds {n_pages}")
+        for note in meta.notes:
+            self._note(FrameError(f"metadata not used: {note}", path=stream.path))
         if self._facts is None:
             self._facts = self._merge_facts(stream.meta.facts)
+            for conflict in self.conflicts:
+                self._note(FrameError(conflict, path=stream.path))
             self._plane_fastest = bool(stream.meta.plane_fastest)
 
     def _merge_facts(self, file_facts: dict) -> AcquisitionFacts:
@@ -459,7 +499,7 @@ class SessionSource:
         for key, (value, origin) in file_facts.items():
             if key in options and not self._override and not _same(options[key], value):
                 self.conflicts.append(f"option {key}={options[key]!r} differs from {origin} {value!r}; "
-                                      f"the file's value is used (override=True to use the option)")
+                                      f"the file's value is used")
             facts.set(key, value, origin)
         for key, value in options.items():
             facts.set(key, value, OPTION)
@@ -501,7 +541,7 @@ class SessionSource:
                 if self._t0 is None:
                     self._t0 = stamp
                 time_s = stamp - self._t0
-        return Frame(data, index, channel=channel, plane=plane, time_s=time_s, source=stream.path, page=page)
+        return Frame(data, index, channel=channel, plane=plane, time_s=time_s, source=self._shown(stream.path), page=page)
 
 
 def _same(a, b) -> bool:
