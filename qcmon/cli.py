@@ -11,6 +11,7 @@ from pathlib import Path
 
 from qcmon import __version__
 from qcmon.errors import QcmonError, display_path
+from qcmon.frames import RATE_UNKNOWN
 
 #: Exit statuses (documented in the README).
 EXIT_OK, EXIT_FLAGGED, EXIT_ERROR, EXIT_INTERRUPTED = 0, 1, 2, 130
@@ -194,6 +195,9 @@ def cmd_summarize(args) -> int:
                 print(format_event(ev), file=sys.stderr)
 
     paths = mon.run(_Problems())
+    if "frame_rate_hz" not in mon.facts.facts and not mon.timed:
+        print(f"qcmon: {RATE_UNKNOWN}: times, durations and per-minute values (bleaching) are blank",
+              file=sys.stderr)
     if "earlier" in paths:
         print(f"earlier record moved to {display_path(paths['earlier'])}")
     print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}\n"
@@ -252,6 +256,8 @@ def run_watch(monitor, *, plain: bool) -> int:
         print("commands: r = new reference, n TEXT = add a note, q = end the watch", flush=True)
         threading.Thread(target=_read_commands, args=(monitor, sys.stdin), daemon=True).start()
     paths = monitor.run(console)
+    if "frame_rate_hz" not in monitor.facts.facts and not monitor.timed:
+        print(f"qcmon: {RATE_UNKNOWN}: times, durations and per-minute values (bleaching) are blank", flush=True)
     if "earlier" in paths:
         print(f"earlier record moved to {display_path(paths['earlier'])}", flush=True)
     print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}", flush=True)

@@ -9,6 +9,7 @@ import time
 from typing import TextIO
 
 from qcmon.events import SYMBOLS, Event
+from qcmon.frames import RATE_UNKNOWN
 from qcmon.status import Status
 
 
@@ -54,9 +55,10 @@ def format_event(ev: Event) -> str:
 
 
 def format_status(st: Status, latest: dict[tuple[int, int], dict]) -> str:
-    rate = f"{st.frame_rate_hz:.3g} Hz ({st.frame_rate_origin})" if math.isfinite(st.frame_rate_hz) else "rate ?"
+    rate = (f"{st.frame_rate_hz:.3g} Hz ({st.frame_rate_origin})" if math.isfinite(st.frame_rate_hz)
+            else st.frame_rate_origin or RATE_UNKNOWN.upper())
     parts = [f"status {SYMBOLS.get(st.overall, '?')} {st.overall}", f"frames {st.frames_measured}",
-             f"t {st.elapsed_s:.1f} s", rate]
+             f"t {st.elapsed_s:.1f} s" if math.isfinite(st.elapsed_s) else "t –", rate]
     if st.backlog_frames:
         parts.append(f"backlog {st.backlog_frames}")
     if latest:

@@ -26,7 +26,7 @@ import numpy as np
 
 from qcmon.columns import NAMES
 from qcmon.errors import FrameError
-from qcmon.frames import Frame
+from qcmon.frames import UNTIMED_FRAMES_PER_S, Frame
 from qcmon.metrics.brightness import BrightnessTracker
 from qcmon.metrics._imageops import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
@@ -55,7 +55,9 @@ class EngineSettings:
     Attributes
     ----------
     frame_rate_hz : float or None
-        Time points per second; used for ``time_s`` when frames carry no timestamp.
+        Time points per second; used for ``time_s`` when frames carry no timestamp. Without it (and without
+        timestamps) ``time_s`` and every per-minute value are blank; it may be given later
+        (:meth:`Engine.set_frame_rate`, e.g. once estimated while watching).
     pixel_size_um : float or None
         Pixel size; ``displacement_um`` is blank without it.
     bit_depth : int or None
@@ -156,6 +158,8 @@ class _Stream:
     last_line_offset: float = NAN
     t0: float = NAN
     new_reference_requested: bool = False
+    untimed: bool | None = None  # True: the brightness tracker runs on frames (no time when the stream began)
+    last_brightness: object = None
 
 
 class Engine:
@@ -207,6 +211,20 @@ class Engine:
             del self._waiting[key]
         return rows
 
+    def set_frame_rate(self, hz: float) -> None:
+        """Use ``hz`` time points per second from now on (rows measured before keep a blank ``time_s``)."""
+        hz = float(hz)
+        if not (math.isfinite(hz) and hz > 0):
+            raise ValueError(f"frame rate must be a positive number, got {hz!r}")
+        self.settings.frame_rate_hz = hz
+
+    def _per_min_scale(self, st: _Stream) -> float:
+        """Factor from the stream's brightness-tracker units to per minute (NaN without a frame rate)."""
+        if not st.untimed:
+            return 1.0
+        rate = self.settings.frame_rate_hz
+        return rate / UNTIMED_FRAMES_PER_S if rate else NAN
+
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
         """Take a new reference from the next frames (after the experimenter refocused)."""
         for (c, p), st in self._streams.items():
@@ -231,7 +249,8 @@ class Engine:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore", UserWarning)  # too short a session: NaN fit
                     fit = st.brightness.session_fit()
-                info.update(bleach_slope_pct_per_min=fit.slope_pct_per_min, bleach_tau_min=fit.tau_min,
+                scale = self._per_min_scale(st)  # a tracker on frames: its "minute" is 60 × 30 frames
+                info.update(bleach_slope_pct_per_min=fit.slope_pct_per_min * scale, bleach_tau_min=fit.tau_min / scale,
                             bleach_r2=fit.r2)
             if st.zest is not None:
                 info["z_start_um"] = st.zest.start_um
@@ -249,7 +268,7 @@ class Engine:
             return NAN
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # no bleach rate yet: NaN
-            return st.brightness.forecast_min(loss_pct)
+            return st.brightness.forecast_min(loss_pct) / self._per_min_scale(st)  # NaN without a frame rate
 
     # ----------------------------------------------------------------- private
     def _stream(self, frame: Frame) -> _Stream:
@@ -373,11 +392,17 @@ class Engine:
         row.update(frame=frame.index, channel=frame.channel, plane=frame.plane, source=frame.source,
                    page=frame.page)
         t = frame.time_s
-        if not math.isfinite(t):
-            t = frame.index / s.frame_rate_hz if s.frame_rate_hz else float(frame.index)
+        if not math.isfinite(t) and s.frame_rate_hz:
+            t = frame.index / s.frame_rate_hz
+        if st.untimed is None:  # the stream's first measured frame decides the brightness tracker's clock
+            st.untimed = not math.isfinite(t)
         if not math.isfinite(st.t0):
             st.t0 = t
-        row["time_s"] = t
+        row["time_s"] = t  # blank (NaN) without a timestamp or a frame rate: never an assumed rate
+        # The brightness tracker's clock: seconds, or without a time base frames (UNTIMED_FRAMES_PER_S a "second",
+        # so that its windows hold as many frames as at a typical rate); its per-minute values are then converted
+        # with the frame rate once one is known, and blank until then.
+        track_t = frame.index / UNTIMED_FRAMES_PER_S if st.untimed else t
 
         # The metrics that read the frame's pixels come first, one after the other, while the pixels are in the
         # processor's caches. The frame binned as for the registration serves the running mean of focus and z;
@@ -438,9 +463,13 @@ class Engine:
             # photometry
             mean_f = mean_raw - st.dark_level
             row["mean_f"] = mean_f
-            b = st.brightness.update(t, mean_f)
-            row.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
-                       bleach_pct_per_min=b.bleach_pct_per_min)
+            if math.isfinite(track_t):
+                b = st.last_brightness = st.brightness.update(track_t, mean_f)
+            else:  # a frame without a timestamp in a session timed by timestamps: the tracker waits
+                b = st.last_brightness
+            if b is not None:
+                row.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
+                           bleach_pct_per_min=b.bleach_pct_per_min * self._per_min_scale(st))
             row.update(saturated_frac=sat, clipped_frac=clip)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN

@@ -8,6 +8,15 @@ from dataclasses import dataclass, field
 import numpy as np
 
 
+#: Without a frame rate, windows and persistence are counted in frames: this many frames stand for one second of
+#: them (typical two-photon and camera rates are 15–60 Hz: common practice, no source). Never used for a time or
+#: a per-minute value that is shown or recorded: those are blank without a frame rate.
+UNTIMED_FRAMES_PER_S = 30.0
+
+#: Said wherever a time or a per-minute value is blank because the frame rate is unknown.
+RATE_UNKNOWN = "frame rate unknown: give --frame-rate"
+
+
 @dataclass(frozen=True, slots=True)
 class Frame:
     """One image as acquired.
@@ -21,7 +30,8 @@ class Frame:
     channel, plane : int
         Channel and plane (0-based) when the session interleaves several.
     time_s : float
-        Seconds from the session's first frame; NaN when unknown (the engine then uses the frame rate).
+        Seconds from the session's first frame; NaN when unknown (the engine then uses the frame rate, and leaves
+        times blank without one).
     source : str
         File the frame was read from ("" for in-memory frames).
     page : int

@@ -162,6 +162,8 @@ class Monitor:
         self._plots: PlotWorkers | None = None
         self.earlier_record: Path | None = None
         self._blank: tuple[str, ...] = ()  # columns left blank for every row (lossy compression)
+        #: After :meth:`run`: the rows have times (timestamps or a frame rate).
+        self.timed = False
 
     # ---------------------------------------------------------------- controls
     def stop(self) -> None:
@@ -246,6 +248,8 @@ class Monitor:
         try:
             while True:
                 n = self._ingest(run, source, self._frames(source, final=not o.follow), record, listeners)
+                run.behind = n == _BATCH and not (run.split is not None and run.split.reading_done)
+                self._watch_pace(run, source, n)
                 self.facts = source.facts
                 if n:
                     idle_since = time.monotonic()
@@ -258,7 +262,6 @@ class Monitor:
                 self._take_record_notices(record)
                 if self._alarm_procs:
                     self._reap_alarm_commands(wait=False)
-                run.behind = n == _BATCH and not (run.split is not None and run.split.reading_done)
                 if run.behind:
                     continue  # more is waiting on disk: no pause, and no end yet
                 if not o.follow or self._stop.is_set():
@@ -284,6 +287,7 @@ class Monitor:
             record.flush()
             self._take_record_notices(record)
             self._reap_alarm_commands(wait=True)  # their failures go into the record before the summary
+            self.timed = run.engine is not None and not run.untimed
             return self._finish(record, source, run.engine, run.split)
         finally:
             if self._plots is not None and self._plots is not self._shared_plots:
@@ -346,6 +350,8 @@ class Monitor:
                 n += 1
                 if run.engine is None:
                     self._start_engine(run, source, fr)
+                if run.untimed and source.facts.get("frame_rate_hz"):  # estimated meanwhile (file times)
+                    self._use_rate(run, source)
                 sp = run.split
                 if sp is not None and sp.stop is not None and fr.index >= sp.stop:
                     sp.reading_done = True  # the rest is measured by the workers
@@ -367,6 +373,23 @@ class Monitor:
         self._deliver(run, rows, record, listeners)
         return n
 
+    def _use_rate(self, run: "_RunState", source: SessionSource) -> None:
+        """A frame rate became known after the engine started (estimated): rows from now on are timed."""
+        run.untimed = False
+        run.engine.set_frame_rate(float(source.facts.get("frame_rate_hz")))
+
+    def _watch_pace(self, run: "_RunState", source: SessionSource, n: int) -> None:
+        """While watching without a frame rate: estimate it from the pace at which time points arrive."""
+        if not (run.untimed and self.options.follow and n and not run.behind):
+            return
+        layout = source.position["layout"] or (1, 1)
+        points = source.position["pages"] / max(1, int(layout[0]) * int(layout[1]))
+        est = run.pace.add(time.monotonic(), points)
+        if est is not None:
+            hz, origin = est
+            source.set_estimated_rate(hz, origin)
+            self._use_rate(run, source)
+
     def _start_engine(self, run: "_RunState", source: SessionSource, first: Frame) -> None:
         run.engine = Engine(self._settings(source.facts, first))
         compression = str(source.facts.get("compression", ""))
@@ -381,6 +404,7 @@ class Monitor:
                 f"frames are stored with {compression} compression, which may be lossy (the file does not say): if "
                 f"it is, {', '.join(NOISE_COLUMNS)} and the photon-transfer figures describe the codec, not the "
                 "detector")
+        run.untimed = not run.engine.settings.frame_rate_hz and not math.isfinite(first.time_s)
         o = self.options
         if not o.follow and o.workers > 1:  # a finished session: later chunks go to other processes
             n_c, n_z = (source.position["layout"] or (1, 1))[:2]
@@ -501,6 +525,8 @@ class Monitor:
         rate = facts.facts.get("frame_rate_hz")
         if rate is not None:
             status.frame_rate_hz, status.frame_rate_origin = float(rate.value), rate.origin
+        elif engine is not None and not run.untimed:
+            status.frame_rate_origin = "no rate; times from the frames' timestamps"
         # a full batch means at least one more batch was already complete on disk
         status.backlog_frames = _BATCH if run.behind else 0
         status.states = {k: dict(v) for k, v in tracker.states.items()}
@@ -706,6 +732,46 @@ class _RunState:
     behind: bool = False
     split: "SplitRun | None" = None
     notices: list = field(default_factory=list)  # problems found when the engine starts, recorded with its rows
+    untimed: bool = False  # the engine runs without a frame rate (and the frames carry no timestamps)
+    pace: "PaceEstimate" = field(default_factory=lambda: PaceEstimate())
+
+
+class PaceEstimate:
+    """The frame rate from the pace at which time points arrive while watching, once it is steady.
+
+    Each look that found new frames (and did not leave a backlog) adds ``(clock time, time points read)``; the
+    first look's frames were written before the watch began and only start the count. The estimate is
+    the least-squares slope of time points against clock time over at least ``min_s`` seconds and ``min_points`` time points, given only when
+    both halves of that span agree within ``tolerance`` (a pause or burst makes them disagree: no estimate until
+    the pace is steady again over a later span). Common practice, no source.
+    """
+
+    def __init__(self, *, min_s: float = 10.0, min_points: int = 20, tolerance: float = 0.1):
+        self.min_s, self.min_points, self.tolerance = float(min_s), int(min_points), float(tolerance)
+        self._seen: list[tuple[float, float]] = []
+
+    def add(self, now: float, points: float) -> tuple[float, str] | None:
+        seen = self._seen
+        seen.append((float(now), float(points)))
+        if len(seen) < 3:
+            return None
+        t0, n0 = seen[0]
+        t1, n1 = seen[-1]
+        span, count = t1 - t0, n1 - n0
+        if span < self.min_s or count < self.min_points:
+            return None
+        mid = t0 + span / 2
+        tm, nm = min(seen, key=lambda p: abs(p[0] - mid))
+        if not (t0 < tm < t1):
+            return None
+        pts = np.asarray(seen)
+        rate = float(np.polyfit(pts[:, 0] - t0, pts[:, 1] - n0, 1)[0])  # least squares over every look
+        halves = ((nm - n0) / (tm - t0), (n1 - nm) / (t1 - tm))
+        if any(abs(h - rate) > self.tolerance * rate for h in halves):
+            del seen[:max(1, len(seen) // 2)]  # not steady: look again over a later span
+            return None
+        return rate, (f"estimated from the pace frames arrived at while watching ({count:.0f} time points in "
+                      f"{span:.1f} s)")
 
 
 def _exclude_csv(ranges) -> str:

@@ -14,6 +14,7 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from qcmon.events import SYMBOLS, Event
+from qcmon.frames import RATE_UNKNOWN
 from qcmon.summary import GROUPS, _periods, _streams
 from qcmon.thresholds import Profile
 
@@ -110,6 +111,9 @@ def _panel(traces, streams, events, profile: Profile, title, columns, scale, uni
     fig.subplots_adjust(left=0.075, right=0.99, bottom=0.21, top=0.95)  # fixed margins: no layout solver per plot
     ax = fig.add_subplot()
     t_all = np.asarray(traces["time_s"], float)
+    x_label = "time (s)"
+    if not np.isfinite(t_all).any():  # no timestamps and no frame rate: the frame counts time, said on the axis
+        t_all, x_label = np.asarray(traces["frame"], float), f"frame ({RATE_UNKNOWN})"
     values = np.asarray(traces[col], float) * scale
     for n, (key, idx) in enumerate(streams.items()):
         x, lo, hi, mean = envelope(t_all[idx], values[idx])
@@ -131,7 +135,7 @@ def _panel(traces, streams, events, profile: Profile, title, columns, scale, uni
                 ax.axhline(lv * scale, linestyle=style, color=color, linewidth=1)
         ax.plot([], [], "--", color="#c80", label=f"warning {lim.warn * scale:g}")
         ax.plot([], [], "-", color="#c22", label=f"alarm {lim.alarm * scale:g}")
-    ax.set_xlabel("time (s)")
+    ax.set_xlabel(x_label)
     ax.set_ylabel(f"{col.replace('_', ' ')}" + (f" ({unit})" if unit else ""), fontsize=8)
     ax.grid(True, alpha=0.3)
     if ax.get_legend_handles_labels()[0]:
@@ -255,12 +259,15 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
     facts = dict(facts if facts is not None else summary.get("facts", {}))
     overall = summary.get("verdict", "unknown")
     overall = overall if overall in _VERDICT_WORD else "unknown"
+    rate_unknown = (summary.get("frame_rate") or {}).get("message") == RATE_UNKNOWN
     parts = [
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
         f"<title>qcmon report: {e(_VERDICT_WORD[overall])}</title>", f"<style>{_CSS}</style></head><body>",
         "<h1>Imaging session quality report</h1>",
         f'<p><span class="verdict {overall}">{_VERDICT_SYMBOL[overall]} Overall: {_VERDICT_WORD[overall]}</span></p>',
-        f"<p>{summary.get('frames', 0)} frames over {_fmt(summary.get('duration_s'))} s; "
+        f"<p>{summary.get('frames', 0)} frames over {_fmt(summary.get('duration_s'))} s; " if not rate_unknown else
+        f"<p>{summary.get('frames', 0)} frames; <b class=\"verdict fail\">{e(RATE_UNKNOWN)}</b> (times, durations "
+        "and per-minute values are blank); "
         f"threshold profile <b>{e(profile.name)}</b> ({e(profile.description)}); "
         f"qcmon {e(str(summary.get('qcmon_version', '')))}.</p>",
         f'<div class="caution"><b>Caution.</b> {e(profile.caution)}</div>',

@@ -29,6 +29,7 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, field
 
 from qcmon.errors import FrameError
+from qcmon.frames import UNTIMED_FRAMES_PER_S
 from qcmon.metrics.brightness import BrightnessTracker
 
 __all__ = ["WARM_UP", "MIN_CHUNK", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
@@ -142,19 +143,27 @@ class RowContinuity:
         self.window_s = float(window_s)
         self._trackers: dict[tuple[int, int], BrightnessTracker] = {}
         self._rows: dict[tuple[int, int], int] = {}
+        self._untimed: dict[tuple[int, int], bool] = {}  # no time base: the tracker runs on frames (as the engine)
 
     def apply(self, rows: list[dict]) -> list[dict]:
         for r in rows:
             key = (int(r["channel"]), int(r["plane"]))
             tr = self._trackers.get(key)
+            t = float(r["time_s"])
             if tr is None:
                 tr = self._trackers[key] = BrightnessTracker(window_s=self.window_s)
+                self._untimed[key] = not math.isfinite(t)
+            untimed = self._untimed[key]
+            if untimed:
+                t = int(r["frame"]) / UNTIMED_FRAMES_PER_S
+            self._rows[key] = self._rows.get(key, 0) + 1
+            if not math.isfinite(t):
+                continue  # a row without a timestamp in a session timed by timestamps: the tracker waits
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
-                b = tr.update(float(r["time_s"]), float(r["mean_f"]))
+                b = tr.update(t, float(r["mean_f"]))
             r.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
-                     bleach_pct_per_min=b.bleach_pct_per_min)
-            self._rows[key] = self._rows.get(key, 0) + 1
+                     bleach_pct_per_min=math.nan if untimed else b.bleach_pct_per_min)
         return rows
 
     def stream_info(self) -> dict[tuple[int, int], dict]:
@@ -165,14 +174,16 @@ class RowContinuity:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
                 fit = tr.session_fit()
-            out[key] = {"frames": self._rows.get(key, 0), "bleach_slope_pct_per_min": fit.slope_pct_per_min,
-                        "bleach_tau_min": fit.tau_min, "bleach_r2": fit.r2}
+            untimed = self._untimed.get(key, False)  # per minute needs a frame rate
+            out[key] = {"frames": self._rows.get(key, 0),
+                        "bleach_slope_pct_per_min": math.nan if untimed else fit.slope_pct_per_min,
+                        "bleach_tau_min": math.nan if untimed else fit.tau_min, "bleach_r2": fit.r2}
         return out
 
     def forecast_min(self, channel: int, plane: int, loss_pct: float) -> float:
         """Minutes until the baseline has fallen by ``loss_pct`` at the current rate (NaN when unknown)."""
         tr = self._trackers.get((channel, plane))
-        if tr is None:
+        if tr is None or self._untimed.get((channel, plane)):
             return math.nan
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # no bleach rate yet: NaN

@@ -14,6 +14,10 @@ key                                unit       meaning
 ``duration_s``                     s          last ``time_s`` − first ``time_s``
 ``profile``                                   ``{"name", "path", "description", "caution"}``
 ``facts``                                     acquisition facts ``{key: {"value", "origin"}}``
+``frame_rate``                                ``{"hz", "origin", "message"}``: the rate the times rest on and
+                                              where it came from (option, metadata, "estimated from …");
+                                              ``message`` is "frame rate unknown: give --frame-rate" when
+                                              there is none (times, durations, per-minute values are then null)
 ``verdict``                                   worst metric verdict: ``"pass"``, ``"warning"``, ``"fail"``
                                               (``"unknown"`` when no metric could be checked)
 ``events``                                    counts: ``warnings``, ``alarms``, ``notes``, ``problems``
@@ -71,6 +75,7 @@ import numpy as np
 
 import qcmon
 from qcmon.events import Event
+from qcmon.frames import RATE_UNKNOWN
 from qcmon.thresholds import Profile, load_profile
 
 __all__ = [
@@ -257,7 +262,8 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
                    and np.isfinite(np.asarray(traces[m], dtype=float)[idx]).any()]
         spans = {s: _periods(events, key, metrics, s, last_frame, last_time) for s in ("warning", "alarm")}
         for s in ("warning", "alarm"):
-            g[f"{s}_s"] = float(sum(e - b for _, _, b, e in spans[s] if math.isfinite(e - b)))
+            g[f"{s}_s"] = (float(sum(e - b for _, _, b, e in spans[s] if math.isfinite(e - b))) if tf.size
+                           else math.nan)  # no times (frame rate unknown): no durations
         if spans["alarm"]:
             g["verdict"] = "fail"
         elif spans["warning"]:
@@ -268,6 +274,26 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
             worst = g["verdict"]
     out["verdict"] = worst
     return out
+
+
+def _timed(traces: Mapping[str, np.ndarray], facts: Mapping | None) -> tuple[Mapping[str, np.ndarray], dict]:
+    """The traces with ``time_s`` filled in as frame ÷ frame rate where a row has none but the rate became known
+    later (estimated while watching), and the ``frame_rate`` entry of the summary: ``hz``, ``origin``,
+    ``message`` (:data:`~qcmon.frames.RATE_UNKNOWN` when neither a rate nor timestamps are known)."""
+    fact = (facts or {}).get("frame_rate_hz") or {}
+    hz = fact.get("value") if isinstance(fact, Mapping) else None
+    hz = float(hz) if isinstance(hz, (int, float)) and math.isfinite(hz) and hz > 0 else math.nan
+    t = np.asarray(traces["time_s"], dtype=float)
+    entry = {"hz": hz, "origin": fact.get("origin", "") if math.isfinite(hz) else "", "message": ""}
+    if math.isfinite(hz) and t.size and not np.isfinite(t).all():
+        t = np.where(np.isfinite(t), t, np.asarray(traces["frame"], dtype=float) / hz)
+        traces = {**traces, "time_s": t}
+    if not math.isfinite(hz):
+        if t.size and np.isfinite(t).all():
+            entry["origin"] = "no rate; times are the frames' timestamps"
+        else:
+            entry["message"] = RATE_UNKNOWN
+    return traces, entry
 
 
 def _worst_final(values: list[float], *, prefer: str) -> float:
@@ -321,6 +347,10 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
         raise ValueError(f"profile must be a Profile, got {type(profile).__name__}")
     events = list(events)
     notes: list[str] = []
+    traces, frame_rate = _timed(traces, facts)
+    if not math.isfinite(frame_rate["hz"]) and not np.isfinite(np.asarray(traces["time_s"], float)).any():
+        notes.append(f"{RATE_UNKNOWN}: times, durations (duration_s, warning_s, alarm_s) and per-minute values "
+                     "(bleaching) are blank; frames count time (column frame)")
     streams = _streams(traces)
     per = [_stream_summary(traces, idx, events, key, profile, notes) for key, idx in streams.items()]
     t = _finite(traces["time_s"])
@@ -332,6 +362,7 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
         "profile": {"name": profile.name, "path": str(profile.path), "description": profile.description,
                     "caution": profile.caution},
         "facts": dict(facts or {}),
+        "frame_rate": frame_rate,
         "verdict": "unknown",
         "events": {
             "warnings": sum(1 for e in events if e.kind == "start" and e.state == "warning"),
@@ -361,7 +392,7 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
         verdicts = [s[group]["verdict"] for s in per]
         g["verdict"] = max(verdicts, key=_VERDICT_RANK.__getitem__) if verdicts else "unknown"
         for s in ("warning_s", "alarm_s"):
-            g[s] = float(sum(p[group][s] for p in per))
+            g[s] = float(sum(p[group][s] for p in per))  # NaN when a stream has no times
         if _VERDICT_RANK[g["verdict"]] > _VERDICT_RANK[worst]:
             worst = g["verdict"]
     summary["verdict"] = worst

@@ -28,8 +28,11 @@ The tracker's rule (per channel, plane and metric, on session time ``time_s``):
   new state is then the instantaneous state of the current value;
 * a change of state is an ``end`` event of the old state followed by a ``start`` event of the new one
   (warning → alarm: end of warning + start of alarm; alarm → warning: end of alarm + start of warning);
-* unknown values (NaN, a missing column, or an unknown ``time_s``) keep the current state, never start one, and
-  break any persistence count in progress (an excursion or a recovery must be seen without gaps).
+* unknown values (NaN or a missing column) keep the current state, never start one, and break any persistence
+  count in progress (an excursion or a recovery must be seen without gaps);
+* without a time (``time_s`` blank: no timestamps and no frame rate) persistence is counted in frames,
+  :data:`qcmon.frames.UNTIMED_FRAMES_PER_S` frames for each second of ``persist_s``; the events then carry no
+  time and their messages count frames.
 """
 
 from __future__ import annotations
@@ -51,6 +54,7 @@ import qcmon
 from qcmon.columns import BY_NAME
 from qcmon.errors import ProfileError
 from qcmon.events import STATES, Event
+from qcmon.frames import RATE_UNKNOWN, UNTIMED_FRAMES_PER_S
 
 __all__ = [
     "DIRECTIONS",
@@ -386,6 +390,7 @@ class ThresholdTracker:
         self.profile = profile
         self._state: dict[tuple[int, int], dict[str, _MetricState]] = {}
         self._last_row: dict[tuple[int, int], Mapping[str, object]] = {}
+        self._timed: dict[tuple[int, int], bool] = {}
 
     @property
     def states(self) -> dict[tuple[int, int], dict[str, str]]:
@@ -417,11 +422,21 @@ class ThresholdTracker:
         self._last_row[key] = row
         frame = int(row.get("frame", -1))
         t = _as_float(row.get("time_s"))
+        # Without a time (no timestamp, no frame rate) persistence is counted in frames (UNTIMED_FRAMES_PER_S a
+        # second); events then carry no time. When the stream's time base changes (a rate estimated later), the
+        # runs in progress start again on the new clock.
+        timed = math.isfinite(t)
+        clock = t if timed else frame / UNTIMED_FRAMES_PER_S
+        if self._timed.setdefault(key, timed) != timed:
+            self._timed[key] = timed
+            for ms in per.values():
+                ms.onset.clear()
+                ms.recovery = None
         events: list[Event] = []
         for metric, lim in self.profile.limits.items():
             ms = per[metric]
             value = _as_float(row.get(metric))
-            now = lim.state_of(value) if math.isfinite(t) else "unknown"
+            now = lim.state_of(value) if frame >= 0 or timed else "unknown"
             if now == "unknown":
                 ms.onset.clear()
                 ms.recovery = None
@@ -430,21 +445,21 @@ class ThresholdTracker:
             # persistence of runs at or beyond each level
             for level in ("warning", "alarm"):
                 if rank >= _RANK[level]:
-                    ms.onset.setdefault(level, (frame, t))
+                    ms.onset.setdefault(level, (frame, clock))
                 else:
                     ms.onset.pop(level, None)
             cur = _RANK[ms.state]
             target = ms.state
             # escalation: the most severe level whose run has lasted persist_s
             for level in ("alarm", "warning"):
-                if _RANK[level] > cur and level in ms.onset and t - ms.onset[level][1] >= lim.persist_s:
+                if _RANK[level] > cur and level in ms.onset and clock - ms.onset[level][1] >= lim.persist_s:
                     target = level
                     break
             if target == ms.state and cur > 0:
                 if rank < cur:
                     if ms.recovery is None:
-                        ms.recovery = (frame, t)
-                    if t - ms.recovery[1] >= lim.persist_s:
+                        ms.recovery = (frame, clock)
+                    if clock - ms.recovery[1] >= lim.persist_s:
                         target = now
                 else:
                     ms.recovery = None
@@ -490,20 +505,25 @@ class ThresholdTracker:
         events = []
         if ms.state != "normal":
             lasted = t - ms.started_time_s
+            # without a time base, durations are said in frames (never in assumed seconds)
+            took = f"{lasted:.1f} s" if math.isfinite(lasted) else f"{frame - ms.started_frame} frames"
+            hold = (f"{_fmt(lim.persist_s)} s" if math.isfinite(t)
+                    else f"{_fmt(lim.persist_s * UNTIMED_FRAMES_PER_S)} frames ({RATE_UNKNOWN})")
             if by_session_end:
-                msg = (f"{lim.label} {ms.state} ended by the session end after {lasted:.1f} s, "
+                msg = (f"{lim.label} {ms.state} ended by the session end after {took}, "
                        f"still {lim.describe(ms.state)}; last value {_fmt(value)}{unit}{where}")
             else:
-                msg = (f"{lim.label} back from {ms.state} after {lasted:.1f} s: {_fmt(value)}{unit}, no longer "
-                       f"{lim.describe(ms.state)} for {_fmt(lim.persist_s)} s{where}")
+                msg = (f"{lim.label} back from {ms.state} after {took}: {_fmt(value)}{unit}, no longer "
+                       f"{lim.describe(ms.state)} for {hold}{where}")
             events.append(Event(kind="end", metric=lim.metric, state=ms.state, value=value,
                                 limit=lim.level(ms.state), frame=frame, time_s=t, started_frame=ms.started_frame,
                                 started_time_s=ms.started_time_s, channel=channel, plane=plane, message=msg,
                                 wall_time=_now()))
         if target != "normal":
             onset = ms.onset.get(target, (frame, t))
-            msg = (f"{lim.label} {target}: {_fmt(value)}{unit}, {lim.describe(target)} since "
-                   f"t={onset[1]:.2f} s (frame {onset[0]}){where}")
+            since = (f"t={onset[1]:.2f} s (frame {onset[0]})" if math.isfinite(t)
+                     else f"frame {onset[0]} ({RATE_UNKNOWN})")
+            msg = f"{lim.label} {target}: {_fmt(value)}{unit}, {lim.describe(target)} since {since}{where}"
             events.append(Event(kind="start", metric=lim.metric, state=target, value=value,
                                 limit=lim.level(target), frame=frame, time_s=t, started_frame=frame,
                                 started_time_s=t, channel=channel, plane=plane, message=msg, wall_time=_now()))

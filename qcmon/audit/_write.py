@@ -23,7 +23,7 @@ AUDIT_COLUMNS: tuple[str, ...] = (
     "motion_max_px", "motion_rms_px", "motion_max_um", "motion_rms_um", "z_max_abs_um", "bleach_pct_per_min",
     "brightness_min_pct", "brightness_above_dark_dn", "saturated_max_frac", "clipped_max_frac", "snr_median",
     "photons_per_px_median", "gain_dn_per_photon", "dark_level_dn", "pixel_size_um", "frame_rate_hz",
-    "warnings", "alarms", "problems", "report", "error",
+    "frame_rate_origin", "warnings", "alarms", "problems", "report", "error",
 )
 
 #: Columns of ``chronic.csv``.
@@ -87,6 +87,8 @@ def session_row(outcome: Mapping, *, out_dir: Path, date: datetime | None, date_
         row[col] = _num((s.get(g) or {}).get(k))
     row["pixel_size_um"] = _fact(s, "pixel_size_um")
     row["frame_rate_hz"] = _fact(s, "frame_rate_hz")
+    rate = s.get("frame_rate") or {}  # where the rate came from, or "frame rate unknown: give --frame-rate"
+    row["frame_rate_origin"] = rate.get("message") or rate.get("origin") or ""
     ev = s.get("events") or {}
     row["warnings"], row["alarms"], row["problems"] = ev.get("warnings", 0), ev.get("alarms", 0), ev.get("problems", 0)
     if traces is not None:

@@ -10,6 +10,8 @@ import math
 
 import numpy as np
 
+from qcmon.frames import UNTIMED_FRAMES_PER_S
+
 #: Columns of ``traces.csv`` that the panels show.
 SHOWN_COLUMNS: tuple[str, ...] = (
     "displacement_um",
@@ -55,6 +57,7 @@ class StreamHistory:
         self._stop = 0
         self.latest: dict = {}
         self.seen_finite: set[str] = set()
+        self._untimed: bool | None = None
 
     def __len__(self) -> int:
         return self._stop - self._start
@@ -62,8 +65,12 @@ class StreamHistory:
     def append(self, row: dict) -> None:
         """Add one row (a dict keyed by column name, NaN for unknown)."""
         t = _as_float(row.get("time_s"))
-        if not math.isfinite(t):
-            t = self._t[self._stop - 1] if len(self) else 0.0
+        if self._untimed is None:
+            self._untimed = not math.isfinite(t)
+        if self._untimed or not math.isfinite(t):  # no time base at the start: the frame counts throughout
+            frame = _as_float(row.get("frame"))  # (the plots have no time axis; a rate found later keeps it)
+            t = (frame / UNTIMED_FRAMES_PER_S if math.isfinite(frame)
+                 else self._t[self._stop - 1] if len(self) else 0.0)
         if self._stop == len(self._t):
             self._make_room()
         self._t[self._stop] = t

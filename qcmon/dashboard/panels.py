@@ -18,6 +18,7 @@ from qcmon.columns import BY_NAME
 from qcmon.dashboard.history import StreamHistory
 from qcmon.dashboard.plot import Level, TrendPlot
 from qcmon.events import STATES, SYMBOLS, Event
+from qcmon.frames import RATE_UNKNOWN
 from qcmon.status import Status
 
 _DIRECTION_SIGN = {"above": "> ", "below": "< ", "abs_above": "±"}
@@ -263,8 +264,9 @@ class SessionHeader(Widget):
             facts.update(Text(f"waiting for the watch to start …\n{stream_text} · window {window_min} min", no_wrap=True))
             return
         rate = status.frame_rate_hz
-        rate_text = f"{rate:.3g} Hz" if isinstance(rate, float) and math.isfinite(rate) else "rate unknown"
-        if status.frame_rate_origin:
+        known = isinstance(rate, float) and math.isfinite(rate)
+        rate_text = f"{rate:.3g} Hz" if known else status.frame_rate_origin or RATE_UNKNOWN
+        if known and status.frame_rate_origin:
             rate_text += f" ({status.frame_rate_origin})"
         first = Text(no_wrap=True, overflow="ellipsis")
         flags = flags or status.paused_reason  # ours first (PAUSED, stopping), else the watch's ("waiting …")
@@ -276,7 +278,10 @@ class SessionHeader(Widget):
         first.append("  file ")
         first.append(shorten_path(status.current_file or "—", max(width - len(flags) - len(folder) - 8, 8)))
         second = Text(no_wrap=True, overflow="ellipsis")
-        second.append(f"{status.frames_measured} frames · {rate_text} · elapsed {format_clock(status.elapsed_s)}")
+        second.append(f"{status.frames_measured} frames · ")
+        # without a frame rate the header says so loudly: times and per-minute values are blank
+        second.append(rate_text, style="bold reverse" if rate_text == RATE_UNKNOWN else "")
+        second.append(f" · elapsed {format_clock(status.elapsed_s)}")
         if status.backlog_frames:
             second.append(f" · behind by {status.backlog_frames} frames", style="bold reverse")
         second.append(f" · {stream_text} · {window_min}-min plots")

@@ -50,6 +50,10 @@ from qcmon.sources.raw import RAW_SUFFIXES, RawStream, parse_dtype
 from qcmon.sources.tiffpages import TiffStream
 
 TIFF_SUFFIXES = (".tif", ".tiff")
+#: Intervals between one-frame files needed before their modification times give a frame rate.
+RATE_MIN_FILES = 20
+#: Frame rates an estimate may give (Hz); outside, the estimate is not used (a copy of the files, a slide scan).
+RATE_RANGE_HZ = (1e-3, 1e4)
 POSITION_FORMAT = "qcmon-position"
 POSITION_VERSION = 1
 OPTION = "option"
@@ -161,6 +165,8 @@ class SessionSource:
         self.notes: list[str] = []
         self._reported: set[tuple[str, str]] = set()
         self._final_read = False
+        #: (pages, modification time in ns) of each finished file, in order, while they may time the session
+        self._file_times: list[tuple[int, int]] | None = []
         self._layout_checked = False
         self._names: dict[str, str] = {}  # file path -> the name shown in the record
         self._queue: list[tuple[tuple, str]] = []  # unfinished files in natural order
@@ -436,6 +442,12 @@ class SessionSource:
         key, name = self._queue.pop(0)
         stream = self._streams.pop(name)
         into[name] = stream.pages_done + stream.skip
+        if self._file_times is not None:
+            if into is self._done and stream.signature is not None and not stream.skip:
+                self._file_times.append((stream.pages_done, stream.signature[1]))
+                self._estimate_rate()
+            else:  # a gap in the files: their times no longer count the time points
+                self._file_times = None
         self._stall.pop(name, None)
         self._sizes.pop(name, None)
         self._inodes.pop(name, None)
@@ -449,6 +461,53 @@ class SessionSource:
         self.problems.append(err)
         if self._on_problem is not None:
             self._on_problem(err)
+
+    def _estimate_rate(self) -> None:
+        """The frame rate from the modification times of files of one time point each, once trustworthy.
+
+        Used only when neither the files nor the options give a rate. Each file must hold exactly one time point
+        (channels × planes pages); the intervals between consecutive files' modification times must be regular
+        (at least 90 % within ±25 % of their median, none before its predecessor) over at least
+        :data:`RATE_MIN_FILES` intervals, and long against the clock's resolution (a copy that set every time
+        anew, or a writer that saves in bursts, is not regular and gives no estimate). The rate is the inverse
+        of the mean of the intervals within that band. Common practice, no source.
+        """
+        times = self._file_times
+        if times is None or self._layout is None or len(times) < RATE_MIN_FILES + 1:
+            return
+        facts = self.facts
+        if "frame_rate_hz" in facts.facts:
+            self._file_times = None
+            return
+        per_point = self._layout[0] * self._layout[1]
+        if any(n != per_point for n, _ in times):
+            self._file_times = None  # files of several time points: their times do not count time points
+            return
+        ns = np.array([t for _, t in times], dtype=np.int64)
+        steps = np.diff(ns).astype(float)
+        median = float(np.median(steps))
+        resolution = 1e9 if not (ns % 10**9).any() else 1e6 if not (ns % 10**6).any() else 1.0
+        band = np.abs(steps - median) <= 0.25 * median
+        if (steps <= 0).any() or median < 10 * resolution or band.mean() < 0.9:
+            if len(times) >= 4 * RATE_MIN_FILES:
+                self._file_times = None  # long enough to say they are not regular: stop looking
+            return
+        interval_s = float(steps[band].mean()) / 1e9
+        hz = 1.0 / interval_s
+        if not RATE_RANGE_HZ[0] <= hz <= RATE_RANGE_HZ[1]:
+            self._file_times = None
+            return
+        spread = float(np.std(steps[band])) / 1e6
+        self.set_estimated_rate(hz, f"estimated from the modification times of {len(times)} one-frame files "
+                                    f"(interval {interval_s * 1e3:.4g} ms, s.d. {spread:.2g} ms)")
+        self._file_times = None
+
+    def set_estimated_rate(self, hz: float, origin: str) -> None:
+        """Record a frame rate that was estimated (``origin`` says how); used only when none is known."""
+        facts = self.facts
+        if "frame_rate_hz" not in facts.facts:
+            facts.set("frame_rate_hz", float(hz), origin)
+            self._facts = facts
 
     def _note(self, err: FrameError) -> None:
         """Metadata that was not used, or disagrees with an option: said once, in :attr:`notes` and to
