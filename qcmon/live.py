@@ -199,11 +199,16 @@ class Monitor:
     def _run(self, listener: Listener | None) -> dict:
         o = self.options
         listeners = [listener] if listener is not None else []
-        if not o.follow:
-            self._check_measurable()  # an input error is said at once, and no record is started for it
-        record = SessionRecord(self.out_dir, resume=o.resume, set_aside=not o.resume)
+        early: list[Exception] = []  # problems met before the record exists
+        self._report = early.append
+        source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
+                               raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
+                               pixel_size_um=o.pixel_size_um, dataset=o.dataset,
+                               on_problem=lambda err: self._report(err))
+        first = self._first_frame(source) if not o.follow else None  # an input error is said at once,
+        record = SessionRecord(self.out_dir, resume=o.resume, set_aside=not o.resume)  # before any record
         try:
-            return self._run_record(record, listeners)
+            return self._run_record(record, listeners, source, first, early)
         except BaseException:
             try:
                 record.close()
@@ -213,7 +218,8 @@ class Monitor:
         finally:
             record.close()
 
-    def _run_record(self, record: SessionRecord, listeners: list) -> dict:
+    def _run_record(self, record: SessionRecord, listeners: list, source: SessionSource, first: Frame | None,
+                    early: list[Exception]) -> dict:
         o = self.options
         self.earlier_record = record.set_aside_to  # --restart over an earlier record: where it went
         run = _RunState(done=record.last_frames() if o.resume else {},
@@ -231,9 +237,8 @@ class Monitor:
                     self.problems.append(ev.message)
         if run.done:
             run.status.paused_reason = "resuming: replaying the frames already recorded"
-        source = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
-                               raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
-                               pixel_size_um=o.pixel_size_um, dataset=o.dataset, on_problem=self._report)
+        for err in early:  # met while reading the first frame, before the record existed
+            self._report(err)
         watcher = None
         if o.follow:
             from qcmon.sources.watcher import FolderWatcher
@@ -247,7 +252,9 @@ class Monitor:
         self._start_plots()
         try:
             while True:
-                n = self._ingest(run, source, self._frames(source, final=not o.follow), record, listeners)
+                frames = self._frames(source, final=not o.follow, first=first)
+                first = None
+                n = self._ingest(run, source, frames, record, listeners)
                 run.behind = n == _BATCH and not (run.split is not None and run.split.reading_done)
                 self._watch_pace(run, source, n)
                 self.facts = source.facts
@@ -302,22 +309,18 @@ class Monitor:
         for msg in record.take_notices():  # a problem event: on the console, the dashboard and in the record
             self._report(QcmonError(msg))
 
-    def _check_measurable(self) -> None:
-        """A finished session must give at least one frame; else a :class:`QcmonError` naming what was found."""
-        o = self.options
-        probe = SessionSource(self.path, channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
-                              raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz, pixel_size_um=o.pixel_size_um,
-                              dataset=o.dataset)
-        frames = probe.frames(final=True, max_frames=1)
+    def _first_frame(self, source: SessionSource) -> Frame:
+        """A finished session's first frame; without one, a :class:`QcmonError` naming what was found."""
+        frames = source.frames(final=True, max_frames=1)
         try:
             first = next(frames, None)
         finally:
             frames.close()
         if first is not None:
-            return
-        if probe.problems:
-            shown = "; ".join(str(p) for p in probe.problems[:3])
-            more = f" (and {len(probe.problems) - 3} more)" if len(probe.problems) > 3 else ""
+            return first
+        if source.problems:
+            shown = "; ".join(str(p) for p in source.problems[:3])
+            more = f" (and {len(source.problems) - 3} more)" if len(source.problems) > 3 else ""
             raise QcmonError(f"{display_path(self.path)}: nothing measurable: {shown}{more}")
         raise QcmonError(f"{display_path(self.path)}: nothing measurable: no TIFF ({', '.join(TIFF_SUFFIXES)}) "
                          f"or raw stream ({', '.join(RAW_SUFFIXES)}) with frames in it")
@@ -330,7 +333,8 @@ class Monitor:
             except Exception:  # noqa: BLE001 - no processes to spare: the plots are drawn here at the end
                 self._plots = None
 
-    def _frames(self, source: SessionSource, *, final: bool) -> Generator[Frame, None, None]:
+    def _frames(self, source: SessionSource, *, final: bool, first: Frame | None = None
+                ) -> Generator[Frame, None, None]:
         """The next batch of frames. A finished session: each read as it is measured (``SessionSource.frames``:
         still in the cache when measured; its file stays open, read-only, for the batch). While the microscope
         writes: the whole batch read first (``poll``), so that its file is open only while it is read — on some
@@ -338,7 +342,9 @@ class Monitor:
         if self.options.follow:
             yield from source.poll(final=final, max_frames=_BATCH)
         else:
-            yield from source.frames(final=final, max_frames=_BATCH)
+            if first is not None:  # read ahead of the record (_first_frame): the batch is one frame shorter
+                yield first
+            yield from source.frames(final=final, max_frames=_BATCH - (first is not None))
 
     def _ingest(self, run: "_RunState", source: SessionSource, frames: Generator[Frame, None, None], record,
                 listeners) -> int:

@@ -296,12 +296,6 @@ def _load(path: Path, chain: tuple[Path, ...]) -> Profile:
             if key not in fields:
                 raise err(f"{where}.{key}", "missing; every metric needs " + ", ".join(_REQUIRED_LIMIT_KEYS))
         warn, alarm, direction = float(fields["warn"]), float(fields["alarm"]), fields["direction"]
-        if direction == "above" and alarm < warn:
-            raise err(where, f"direction 'above' needs alarm >= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
-        if direction == "below" and alarm > warn:
-            raise err(where, f"direction 'below' needs alarm <= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
-        if direction == "abs_above" and not 0 <= warn <= alarm:
-            raise err(where, f"direction 'abs_above' needs 0 <= warn <= alarm (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
         low, high = _LEVEL_RANGES.get(metric, (-_MAX_LEVEL, _MAX_LEVEL))
         for key, value in (("warn", warn), ("alarm", alarm)):
             if not low <= value <= high:
@@ -310,6 +304,12 @@ def _load(path: Path, chain: tuple[Path, ...]) -> Profile:
         if float(fields["persist_s"]) > _MAX_PERSIST_S:
             raise err(f"{where}.persist_s", f"{_fmt(float(fields['persist_s']))} s is longer than a day "
                                             f"(at most {_fmt(_MAX_PERSIST_S)} s)")
+        if direction == "above" and alarm < warn:
+            raise err(where, f"direction 'above' needs alarm >= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        if direction == "below" and alarm > warn:
+            raise err(where, f"direction 'below' needs alarm <= warn (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
+        if direction == "abs_above" and not 0 <= warn <= alarm:
+            raise err(where, f"direction 'abs_above' needs 0 <= warn <= alarm (warn={_fmt(warn)}, alarm={_fmt(alarm)})")
         column = BY_NAME[metric]
         limits[metric] = Limit(
             metric=metric,

@@ -467,7 +467,8 @@ class SessionSource:
 
         Used only when neither the files nor the options give a rate. Each file must hold exactly one time point
         (channels × planes pages); the intervals between consecutive files' modification times must be regular
-        (at least 90 % within ±25 % of their median, none before its predecessor) over at least
+        (at least 90 % within ±25 % of their median, none before its predecessor, and their mean within 10 % of
+        the mean of those within the band: a writer that saves in bursts fails this) over at least
         :data:`RATE_MIN_FILES` intervals, and long against the clock's resolution (a copy that set every time
         anew, or a writer that saves in bursts, is not regular and gives no estimate). The rate is the inverse
         of the mean of the intervals within that band. Common practice, no source.
@@ -493,6 +494,10 @@ class SessionSource:
                 self._file_times = None  # long enough to say they are not regular: stop looking
             return
         interval_s = float(steps[band].mean()) / 1e9
+        if abs(float(steps.mean()) / 1e9 / interval_s - 1.0) > 0.1:  # the whole span must count the files too
+            if len(times) >= 4 * RATE_MIN_FILES:
+                self._file_times = None
+            return
         hz = 1.0 / interval_s
         if not RATE_RANGE_HZ[0] <= hz <= RATE_RANGE_HZ[1]:
             self._file_times = None
