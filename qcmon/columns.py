@@ -17,7 +17,8 @@ COLUMNS: tuple[Column, ...] = (
     Column("frame", "", "time-point index of the frame within its channel and plane, from 0", "int"),
     Column("channel", "", "channel index, from 0", "int"),
     Column("plane", "", "plane index, from 0", "int"),
-    Column("time_s", "s", "time from the session's first frame (metadata, else frame / frame rate)"),
+    Column("time_s", "s", "time from the session's first frame (timestamps in the files, else frame / frame rate); "
+           "blank when neither is known"),
     Column("dx_px", "px", "shift of the frame's content against the reference, + toward increasing column"),
     Column("dy_px", "px", "shift of the frame's content against the reference, + toward increasing row"),
     Column("displacement_um", "µm", "hypot(dx, dy) × pixel size; blank when the pixel size is unknown"),
