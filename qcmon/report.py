@@ -265,9 +265,9 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         f"<title>qcmon report: {e(_VERDICT_WORD[overall])}</title>", f"<style>{_CSS}</style></head><body>",
         "<h1>Imaging session quality report</h1>",
         f'<p><span class="verdict {overall}">{_VERDICT_SYMBOL[overall]} Overall: {_VERDICT_WORD[overall]}</span></p>',
-        f"<p>{summary.get('frames', 0)} frames over {_fmt(summary.get('duration_s'))} s; " if not rate_unknown else
-        f"<p>{summary.get('frames', 0)} frames; <b class=\"verdict fail\">{e(RATE_UNKNOWN)}</b> (times, durations "
-        "and per-minute values are blank); "
+        (f"<p>{summary.get('frames', 0)} frames over {_fmt(summary.get('duration_s'))} s; " if not rate_unknown else
+         f"<p>{summary.get('frames', 0)} frames; <b class=\"verdict fail\">{e(RATE_UNKNOWN)}</b> (times, durations "
+         "and per-minute values are blank); ") +
         f"threshold profile <b>{e(profile.name)}</b> ({e(profile.description)}); "
         f"qcmon {e(str(summary.get('qcmon_version', '')))}.</p>",
         f'<div class="caution"><b>Caution.</b> {e(profile.caution)}</div>',
