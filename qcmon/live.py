@@ -322,8 +322,8 @@ class Monitor:
             shown = "; ".join(str(p) for p in source.problems[:3])
             more = f" (and {len(source.problems) - 3} more)" if len(source.problems) > 3 else ""
             raise QcmonError(f"{display_path(self.path)}: nothing measurable: {shown}{more}")
-        raise QcmonError(f"{display_path(self.path)}: nothing measurable: no TIFF ({', '.join(TIFF_SUFFIXES)}) "
-                         f"or raw stream ({', '.join(RAW_SUFFIXES)}) with frames in it")
+        raise QcmonError(f"{display_path(self.path)}: nothing measurable: no TIFF ({', '.join(TIFF_SUFFIXES)}), "
+                         f"raw stream ({', '.join(RAW_SUFFIXES)}) or image series with frames in it")
 
     def _start_plots(self) -> None:
         """Start the report's plot processes (``plot_processes``), so that they load matplotlib meanwhile."""
