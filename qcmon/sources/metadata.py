@@ -106,7 +106,8 @@ def read_file_metadata(tif) -> FileMetadata:
     if tif.is_imagej:
         _read_imagej(tif.imagej_metadata or {}, page, meta)
     _read_resolution(page, meta)
-    meta.put("dtype", str(page.dtype), "TIFF tags")
+    if page.dtype is not None:  # a corrupt page may have no pixel type; it is reported when read
+        meta.put("dtype", str(page.dtype), "TIFF tags")
     meta.put("compression", getattr(page.compression, "name", str(page.compression)), "TIFF tags")
     meta.put("shape", tuple(int(n) for n in page.shape), "TIFF tags")
     return meta

@@ -568,7 +568,10 @@ class SessionSource:
         for key, value in options.items():
             facts.set(key, value, OPTION)
         if "bit_depth" not in facts.facts and "dtype" in facts.facts:
-            facts.set("bit_depth", np.dtype(facts.get("dtype")).itemsize * 8, "dtype")
+            try:
+                facts.set("bit_depth", np.dtype(facts.get("dtype")).itemsize * 8, "dtype")
+            except TypeError:  # a corrupt first page without a pixel type: its pages are reported when read
+                pass
         return facts
 
     def _emit(self, stream, page: int, data) -> Frame | None:
