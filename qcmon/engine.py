@@ -26,6 +26,7 @@ import numpy as np
 
 from qcmon.columns import NAMES
 from qcmon.errors import FrameError
+from qcmon.events import Event
 from qcmon.frames import Frame
 from qcmon.metrics.brightness import BrightnessTracker
 from qcmon.metrics._imageops import bin_image
@@ -34,7 +35,7 @@ from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
 from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level
 from qcmon.metrics.registration import ShiftEstimator, build_reference
-from qcmon.metrics.saturation import detector_max, saturation_fractions
+from qcmon.metrics.saturation import RangeFinder
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
 
 NAN = math.nan
@@ -59,7 +60,10 @@ class EngineSettings:
     pixel_size_um : float or None
         Pixel size; ``displacement_um`` is blank without it.
     bit_depth : int or None
-        Detector bit depth; the saturation level is ``2**bit_depth - 1``. Default: from the dtype.
+        Detector bit depth; the saturation level is ``2**bit_depth - 1``. Default: the level the data pile up at
+        (:class:`~qcmon.metrics.saturation.RangeFinder`), else the dtype's maximum.
+    bit_depth_origin : str
+        Where ``bit_depth`` came from ("option" or "metadata"), for the record.
     dark_level : float or None
         Detector offset in DN. Default: estimated from the first frames (photon-transfer intercept, falling back
         to a low percentile).
@@ -93,6 +97,7 @@ class EngineSettings:
     frame_rate_hz: float | None = None
     pixel_size_um: float | None = None
     bit_depth: int | None = None
+    bit_depth_origin: str = "option"
     dark_level: float | None = None
     zstack: np.ndarray | None = None
     z_step_um: float | None = None
@@ -143,6 +148,7 @@ class _Stream:
     dark_origin: str = ""
     gain: float = NAN
     max_value: float = NAN
+    range: RangeFinder | None = None
     prev: np.ndarray | None = None
     prev_shift: tuple[int, int] = (0, 0)
     n_measured: int = 0
@@ -178,6 +184,7 @@ class Engine:
         self._shared_motion: dict[tuple[int, int], tuple[float, float, float]] = {}
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
+        self._events: list[Event] = []
 
     # ------------------------------------------------------------------ public
     @property
@@ -207,6 +214,11 @@ class Engine:
             del self._waiting[key]
         return rows
 
+    def take_events(self) -> list[Event]:
+        """Events the engine raised since the last call (a detector level found or withdrawn), oldest first."""
+        out, self._events = self._events, []
+        return out
+
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
         """Take a new reference from the next frames (after the experimenter refocused)."""
         for (c, p), st in self._streams.items():
@@ -219,6 +231,11 @@ class Engine:
         for key, st in self._streams.items():
             info: dict = {"dark_level_dn": st.dark_level, "dark_level_origin": st.dark_origin,
                           "saturation_level_dn": st.max_value, "frames": st.n_measured}
+            if st.range is not None:
+                info.update(saturation_level_origin=st.range.ceiling.origin,
+                            saturation_level_text=st.range.ceiling.text, floor_level_dn=st.range.floor.value,
+                            floor_level_origin=st.range.floor.origin, floor_level_text=st.range.floor.text,
+                            floor_is_clip=st.range.clip_floor)
             if st.ptc is not None:
                 try:
                     res = st.ptc.result()
@@ -237,6 +254,15 @@ class Engine:
                 info["z_start_um"] = st.zest.start_um
             out[key] = info
         return out
+
+    def range_text(self, channel: int, plane: int) -> str:
+        """Short words for the stream's saturation level and its origin ("" before the stream started)."""
+        st = self._streams.get((channel, plane))
+        if st is None or st.range is None:
+            return ""
+        c = st.range.ceiling
+        words = {"option": "--bit-depth", "metadata": "metadata", "inferred": "inferred", "dtype": "dtype"}
+        return f"saturates at {c.value:g} ({words.get(c.origin, c.origin)})"
 
     def reference_image(self, channel: int, plane: int) -> np.ndarray | None:
         """The current reference of a stream (float32, rows × columns), or None before it is built."""
@@ -281,9 +307,15 @@ class Engine:
         stack = np.stack([f.data for f in frames]).astype(np.float32, copy=False)
         s = self.settings
         if st.shift is None:  # first start: detector facts
-            st.max_value = float(detector_max(frames[0].data.dtype, s.bit_depth))
+            if st.range is None:
+                st.range = RangeFinder(frames[0].data.dtype, bit_depth=s.bit_depth,
+                                       bit_depth_origin=s.bit_depth_origin)
+            for fr in frames:  # the detector's range from the start-up frames, before anything is measured
+                self._observe_range(st, fr)
+            st.max_value = st.range.ceiling.value
             # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
-            st.ptc = PhotonTransfer(max_value=st.max_value, pair_step=1)
+            st.ptc = PhotonTransfer(max_value=_finite(st.max_value), floor=_finite(st.range.floor.value),
+                                    pair_step=1)
             for a, b in zip(stack[1:], stack[:-1]):
                 st.ptc.update(a, b)
             st.ptc.pair_step = s.photon_transfer_every
@@ -325,6 +357,28 @@ class Engine:
         for fr in frames:
             rows.extend(self._measure_or_wait(st, fr))
         return rows
+
+    def _observe_range(self, st: _Stream, frame: Frame) -> tuple[float, float]:
+        """Hand the frame's extremes to the range finder; record a level found or withdrawn. (min, max)."""
+        a = frame.data
+        if a.dtype.kind == "f":  # NaN pixels are ignored (fmin/fmax); all NaN gives NaN
+            fmin, fmax = float(np.fmin.reduce(a, axis=None)), float(np.fmax.reduce(a, axis=None))
+        else:
+            fmin, fmax = float(a.min()), float(a.max())
+        notes = st.range.observe(a, fmin, fmax)
+        if notes:
+            st.max_value = st.range.ceiling.value
+            if st.ptc is not None:
+                st.ptc.max_value = _finite(st.max_value)
+                st.ptc.floor = _finite(st.range.floor.value)
+            t = frame.time_s
+            if not math.isfinite(t) and self.settings.frame_rate_hz:
+                t = frame.index / self.settings.frame_rate_hz
+            for note in notes:
+                self._events.append(Event(kind="detector", frame=frame.index, time_s=t, started_frame=frame.index,
+                                          started_time_s=t, channel=frame.channel, plane=frame.plane,
+                                          message=f"{note}; applies from frame {frame.index} on"))
+        return fmin, fmax
 
     def _set_dark_level(self, st: _Stream, stack: np.ndarray) -> None:
         s = self.settings
@@ -385,21 +439,40 @@ class Engine:
         # also serves the registration and gives the exact frame mean.
         factor = st.shift.bin_factor
         binned = bin_image(img, factor)
-        sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
-        sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
+        # Saturated and floor-clipped pixels: counted, then given zero weight in every linear measurement (the
+        # mask is made only on frames that reach a limit; the floor only when it is a demonstrated clip).
+        fmin, fmax = self._observe_range(st, frame)
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        n_sat = int(np.count_nonzero(data >= hi)) if fmax >= hi else 0
+        n_clip = int(np.count_nonzero(data <= lo)) if fmin <= lo else 0
+        sat, clip = n_sat / data.size, n_clip / data.size
+        valid = None
+        if n_sat or (n_clip and st.range.clip_floor):
+            valid = data < hi if n_sat else np.ones(data.shape, bool)
+            if n_clip and st.range.clip_floor:
+                valid &= data > lo
+        sigma = immerkaer_sigma(img, row_step=st.noise_row_step, valid=valid)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
             mean_binned = None
-            if st.exact_binning:
+            if valid is not None:
+                n_valid = int(np.count_nonzero(valid))
+                mean_raw = (float(np.add.reduce(img[valid], axis=None, dtype=np.float64)) / n_valid
+                            if n_valid else NAN)
+                # bins holding a clipped pixel take the mean of the usable pixels in the running means
+                full = bin_image(valid.view(np.uint8), factor) >= factor * factor
+                binned_clean = np.where(full, binned, np.float32(mean_raw * factor * factor)
+                                        if n_valid else np.float32(0))
+            elif st.exact_binning:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw, mean_binned = total / img.size, total / binned.size
             else:
                 mean_raw = float(np.add.reduce(img, axis=None, dtype=np.float64)) / img.size
             if motion is None:
                 if img.dtype.kind in "ui" or np.isfinite(binned).all():
-                    res = st.shift.estimate_binned(binned, mean=mean_binned)
+                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
-                    res = st.shift.estimate(img)
+                    res = st.shift.estimate(img, valid=valid)
             if motion is None:
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if s.motion_channel is not None:
@@ -415,7 +488,7 @@ class Engine:
             # focus, z and line offset from the motion-corrected running means, when a block of z_every frames is
             # complete (and at each of the first z_every frames)
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
-            st.running.push(binned, dy / factor, dx / factor)
+            st.running.push(binned if valid is None else binned_clean, dy / factor, dx / factor)
             st.line_mean.push(img, dy, dx)
             if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
                 mean_img = st.running.mean
@@ -463,6 +536,11 @@ class Engine:
         self._shared_order.append(key)
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
+
+
+def _finite(v: float) -> float:
+    """A limit for the photon-transfer accumulator, which needs finite ones (float data have none)."""
+    return v if math.isfinite(v) else math.copysign(float(np.finfo(np.float64).max), v)
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

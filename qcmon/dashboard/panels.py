@@ -277,6 +277,8 @@ class SessionHeader(Widget):
         first.append(shorten_path(status.current_file or "—", max(width - len(flags) - len(folder) - 8, 8)))
         second = Text(no_wrap=True, overflow="ellipsis")
         second.append(f"{status.frames_measured} frames · {rate_text} · elapsed {format_clock(status.elapsed_s)}")
+        if status.range_text:
+            second.append(f" · {status.range_text}")
         if status.backlog_frames:
             second.append(f" · behind by {status.backlog_frames} frames", style="bold reverse")
         second.append(f" · {stream_text} · {window_min}-min plots")
@@ -290,6 +292,7 @@ _KIND_TEXT = {
     "note": "✎ note",
     "reference": "⟲ reference",
     "problem": "✗ problem",
+    "detector": "▣ detector",
 }
 
 
