@@ -125,8 +125,10 @@ def find_pileup(frame, *, top: bool, extreme: float | None = None) -> tuple[floa
     ``c > 3 p + 5 √(p + 1)``: for a Poisson count of mean ``p`` that bound lies more than 5 standard deviations
     out. A histogram that rises steeply toward ``v`` (``r1 > 0 = r2``, e.g. the zero-photon peak of
     photon-counting data at the floor) gives no decision (None): a steep natural peak and a clip cannot be told
-    apart there. A constant frame gives None (nothing to compare with). The rule and its constants are our own
-    choice (no published source); they are tested on n-bit camera-model data and on smooth tails.
+    apart there. A constant frame gives None (nothing to compare with), except at a ceiling of 2ⁿ − 1
+    (n = 8…16): a digitiser clipped over the whole field (2ⁿ − 1: common practice, no source). The rule and its
+    constants are our own choice (no published source); they are tested on n-bit camera-model data and on smooth
+    tails.
 
     Float frames: bands of 1/256 of the frame's range instead of 8 values.
     """
@@ -137,6 +139,10 @@ def find_pileup(frame, *, top: bool, extreme: float | None = None) -> tuple[floa
             return None
     lo_v, hi_v = float(a.min()), float(a.max())
     if lo_v == hi_v:
+        # a constant frame: a ceiling only at a digitiser's 2^n - 1 (n = 8..16), the whole frame clipped there
+        n = math.log2(hi_v + 1) if hi_v > 0 else 0.0
+        if top and a.size >= PILEUP_MIN_PIXELS and n == int(n) and 8 <= n <= 16:
+            return hi_v, int(a.size)
         return None
     v = (hi_v if top else lo_v) if extreme is None else float(extreme)
     c = int(np.count_nonzero(a == v))
