@@ -29,7 +29,7 @@ from qcmon.errors import FrameError
 from qcmon.events import Event
 from qcmon.frames import Frame
 from qcmon.metrics.brightness import BrightnessTracker
-from qcmon.metrics._imageops import bin_image
+from qcmon.metrics._imageops import auto_bin, bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
@@ -381,6 +381,29 @@ class Engine:
             return False
         return float(np.dot(prev, st.prev_cells)) > 5.0 / math.sqrt(cells.size)
 
+    def _clean_reference(self, st: _Stream, reference: np.ndarray, stack: np.ndarray) -> np.ndarray:
+        """The reference with its clipped parts given zero weight, as every frame's are in the registration.
+
+        A pixel clipped in at least half of the reference's frames (and its neighbours: 1 px) is unusable; the
+        reference is drawn to its mean there, over a soft edge as wide as a registration bin, so that a frame
+        whose clipped pixels are left out (a hole at its mean) meets a reference with the same hole rather than a
+        bright blob — moving saturated cells then still register by their surroundings.
+        """
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        bad = (stack >= hi).mean(axis=0) >= 0.5
+        if st.range.clip_floor:
+            bad |= (stack <= lo).mean(axis=0) >= 0.5
+        if not bad.any() or bad.mean() > 0.95:
+            return reference
+        from scipy import ndimage
+
+        b = auto_bin(reference.shape) if self.settings.bin_factor is None else self.settings.bin_factor
+        good = ~ndimage.binary_dilation(bad)
+        weight = ndimage.uniform_filter(good.astype(np.float32), size=2 * b + 1) * good
+        weight *= weight
+        m = float(reference[good].mean())
+        return (m + (reference - m) * weight).astype(np.float32)
+
     def _measure_early(self, st: _Stream, frame: Frame) -> list[dict]:
         """The row of a frame without structure before any reference exists: no motion, focus or z."""
         if st.ptc is None:
@@ -483,7 +506,7 @@ class Engine:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
             try:
-                reference = build_reference(stack, upsample=s.upsample)
+                reference = self._clean_reference(st, build_reference(stack, upsample=s.upsample), stack)
                 max_shift = s.max_shift_px or min(reference.shape) / 4
                 shift = ShiftEstimator(reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                        max_shift_px=max_shift)

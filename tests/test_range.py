@@ -159,3 +159,27 @@ def test_stationary_saturated_patch_does_not_capture_the_shift():
     assert abs(np.median(sig[20:]) / np.median(sig[10:20]) - 1) < 0.05
     mf = np.array([r["mean_f"] for r in rows])
     assert abs(np.median(mf[20:]) / np.median(mf[10:20]) - 1) < 0.1
+
+
+def test_simulated_rig_start_through_the_engine():
+    # qcmon's simulator (not an outside check; the outside ones are above): closed shutter, 13 bits in 16-bit
+    # pages without the bit depth given, saturating cells and a stationary saturated patch, all at once
+    from qcmon.simulate import simulate
+    from qcmon.simulate.scenarios import scenario_config
+
+    cfg = scenario_config("rig_start", n_frames=80, height=64, width=64)
+    res = simulate(cfg)
+    rows, eng = _run(list(res.pages))
+    t = res.truth
+    got = np.array([r["saturated_frac"] for r in rows])
+    assert np.max(np.abs(got - t["saturated_frac"])) < 0.005
+    assert eng.stream_info()[(0, 0)]["saturation_level_dn"] == 2 ** 13 - 1
+    dark = t["time_s"] < cfg.shutter_closed_s
+    assert all(math.isnan(r["dx_px"]) for r, d in zip(rows, dark) if d)
+    ev = [e for e in eng.take_events() if e.kind == "blank"]
+    assert ev and ev[0].started_frame == 0 and ev[0].frame == int(dark.sum()) - 1
+    lit = ~dark
+    ex = np.array([r["dx_px"] for r in rows])[lit] - t["dx_px"][lit]
+    ey = np.array([r["dy_px"] for r in rows])[lit] - t["dy_px"][lit]
+    ex, ey = ex - np.median(ex), ey - np.median(ey)  # the reference sits where its frames were on average
+    assert math.sqrt(np.mean(ex ** 2 + ey ** 2)) < 0.3
