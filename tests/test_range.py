@@ -183,3 +183,17 @@ def test_simulated_rig_start_through_the_engine():
     ey = np.array([r["dy_px"] for r in rows])[lit] - t["dy_px"][lit]
     ex, ey = ex - np.median(ex), ey - np.median(ey)  # the reference sits where its frames were on average
     assert math.sqrt(np.mean(ex ** 2 + ey ** 2)) < 0.3
+
+
+def test_level_and_origin_reach_console_status():
+    from qcmon.console import format_status
+    from qcmon.status import Status
+
+    rng = np.random.default_rng(4)
+    spec = specimen_crop(_specimen(1.0), SHAPE, 0.0, 0.0)
+    frames = [detect(spec * 3000, rng, gain=3.0, offset=100.0, read_noise_dn=8.0, bits=12) for _ in range(12)]
+    rows, eng = _run(frames)
+    text = eng.range_text(0, 0)
+    assert text == "saturates at 4095 (inferred)"
+    line = format_status(Status(range_text=text), {(0, 0): rows[-1]})
+    assert "saturated" in line and "4095 (inferred)" in line

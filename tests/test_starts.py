@@ -109,17 +109,20 @@ def _check(out: Path, name: str, cases: dict) -> None:
         assert all(r["dx_px"] != "" for r in rows[5:]) and rows[5]["source"].endswith("a_001.tif")
 
 
-@pytest.mark.parametrize("name", ["dark_zero", "constant", "shutter_closed", "saturated", "mostly_saturated",
-                                  "all_dark", "one_frame", "two_frames", "tiny_frames", "signed", "first_file_size"])
-def test_summarize_any_start(sessions, tmp_path, name):
+@pytest.mark.parametrize("name", ["dark_zero", "saturated", "one_frame"])
+def test_summarize_any_start(sessions, tmp_path, capsys, name):
+    # the command line's entry point in this process (the imports are paid once; warnings are errors here, so a
+    # warning leaking to the console fails too); watch and audit below run as separate processes
+    from qcmon.cli import main
+
     root, cases = sessions
-    res = _qcmon("summarize", root / name, "--frame-rate", "30", "--out", tmp_path / "o")
-    assert res.returncode == 0, res.stderr
-    assert "Traceback" not in res.stderr and "Warning" not in res.stderr, res.stderr
+    assert main(["summarize", str(root / name), "--frame-rate", "30", "--out", str(tmp_path / "o")]) == 0
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and "Warning" not in err, err
     _check(tmp_path / "o", name, cases)
 
 
-@pytest.mark.parametrize("name", ["shutter_closed", "saturated", "first_file_size", "one_frame"])
+@pytest.mark.parametrize("name", ["shutter_closed", "first_file_size"])
 def test_watch_any_start(sessions, tmp_path, name):
     root, cases = sessions
     res = _qcmon("watch", root / name, "--plain", "--until-idle", "1", "--frame-rate", "30", "--out", tmp_path / "o")
@@ -141,3 +144,5 @@ def test_audit_any_start(sessions, tmp_path):
         assert r["status"] == "measured" and int(r["frames"]) == len(cases[name][0]), r
     assert rows["saturated"]["saturation_level_dn"] == "4095"
     assert "piled up" in rows["saturated"]["saturation_level_origin"]
+    for name in cases:  # each session's own record, as summarize would write it
+        _check(tmp_path / "a" / "sessions" / f"{name}.qcmon", name, cases)
