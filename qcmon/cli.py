@@ -57,7 +57,8 @@ def _add_acquisition(p: argparse.ArgumentParser) -> None:
     g.add_argument("--frame-rate", type=_positive(float), metavar="HZ", help="time points per second")
     g.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
     g.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N",
-                   help="detector bit depth (8..16); the saturation level is 2^N − 1 (default: from the dtype)")
+                   help="detector bit depth (8..16); the saturation level is 2^N − 1 (default: where the data pile up, "
+                        "else the dtype's maximum)")
     g.add_argument("--dark-level", type=_finite, metavar="DN",
                    help="detector offset in DN (default: estimated by photon transfer)")
     g.add_argument("--zstack", type=Path, metavar="FILE", help="reference z-stack TIFF, superficial → deep")

@@ -75,7 +75,8 @@ def format_status(st: Status, latest: dict[tuple[int, int], dict]) -> str:
         if math.isfinite(r.get("brightness_pct", math.nan)):
             parts.append(f"brightness {r['brightness_pct']:.1f} %")
         if math.isfinite(r.get("saturated_frac", math.nan)):
-            parts.append(f"saturated {100 * r['saturated_frac']:.2f} %")
+            parts.append(f"saturated {100 * r['saturated_frac']:.2f} %"
+                         + (f" ({st.range_text})" if st.range_text else ""))
         if math.isfinite(r.get("snr", math.nan)):
             parts.append(f"SNR {r['snr']:.2f}")
     if st.paused_reason:

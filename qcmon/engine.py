@@ -26,15 +26,16 @@ import numpy as np
 
 from qcmon.columns import NAMES
 from qcmon.errors import FrameError
+from qcmon.events import Event
 from qcmon.frames import UNTIMED_FRAMES_PER_S, Frame
 from qcmon.metrics.brightness import BrightnessTracker
-from qcmon.metrics._imageops import bin_image
+from qcmon.metrics._imageops import auto_bin, bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
 from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level
 from qcmon.metrics.registration import ShiftEstimator, build_reference
-from qcmon.metrics.saturation import detector_max, saturation_fractions
+from qcmon.metrics.saturation import RangeFinder
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
 
 NAN = math.nan
@@ -61,7 +62,10 @@ class EngineSettings:
     pixel_size_um : float or None
         Pixel size; ``displacement_um`` is blank without it.
     bit_depth : int or None
-        Detector bit depth; the saturation level is ``2**bit_depth - 1``. Default: from the dtype.
+        Detector bit depth; the saturation level is ``2**bit_depth - 1``. Default: the level the data pile up at
+        (:class:`~qcmon.metrics.saturation.RangeFinder`), else the dtype's maximum.
+    bit_depth_origin : str
+        Where ``bit_depth`` came from ("option" or "metadata"), for the record.
     dark_level : float or None
         Detector offset in DN. Default: estimated from the first frames (photon-transfer intercept, falling back
         to a low percentile).
@@ -95,6 +99,7 @@ class EngineSettings:
     frame_rate_hz: float | None = None
     pixel_size_um: float | None = None
     bit_depth: int | None = None
+    bit_depth_origin: str = "option"
     dark_level: float | None = None
     zstack: np.ndarray | None = None
     z_step_um: float | None = None
@@ -134,6 +139,12 @@ class _Stream:
     shape: tuple[int, int] | None = None
     dtype: np.dtype | None = None
     pending: list[Frame] = field(default_factory=list)
+    pending_structured: int = 0
+    pending_flags: list[bool] = field(default_factory=list)  # per held-back frame: shows structure
+    prev_cells: np.ndarray | None = None  # cell means of the last frame tested for structure (before a reference)
+    blank_since: tuple[int, float] | None = None  # first frame (index, time) of a run of frames without structure
+    blank_reason: str = ""
+    blank_last: tuple | None = None
     shift: ShiftEstimator | None = None
     reference: np.ndarray | None = None
     running: RunningMean | None = None
@@ -145,6 +156,7 @@ class _Stream:
     dark_origin: str = ""
     gain: float = NAN
     max_value: float = NAN
+    range: RangeFinder | None = None
     prev: np.ndarray | None = None
     prev_shift: tuple[int, int] = (0, 0)
     n_measured: int = 0
@@ -182,6 +194,7 @@ class Engine:
         self._shared_motion: dict[tuple[int, int], tuple[float, float, float]] = {}
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
+        self._events: list[Event] = []
 
     # ------------------------------------------------------------------ public
     @property
@@ -191,13 +204,31 @@ class Engine:
     def process(self, frame: Frame) -> list[dict]:
         """Measure one frame (or hold it back); return the rows that are ready."""
         st = self._stream(frame)
-        self._check(st, frame)
+        rows = self._check(st, frame)
+        st = self._stream(frame)  # a new one if the frame size changed
+        if st.range is None:
+            st.range = RangeFinder(frame.data.dtype, bit_depth=self.settings.bit_depth,
+                                   bit_depth_origin=self.settings.bit_depth_origin)
         if st.shift is None or st.new_reference_requested:
+            # The reference waits for frames with structure (a closed shutter, a flat or saturated field has none):
+            # frames without structure ahead of the first one with structure are measured without motion (or
+            # against the old reference). The last frame is always held: it shows structure if the next shares it.
+            structured = self._structured(st, frame)
+            if structured and st.pending and not st.pending_flags[-1]:
+                st.pending_flags[-1] = True  # the previous frame shares this one's structure
+                st.pending_structured += 1
+            if not structured and not st.pending_structured:
+                held, st.pending, st.pending_flags = st.pending, [], []
+                for fr in held:
+                    rows.extend(self._measure_early(st, fr) if st.shift is None else self._measure_or_wait(st, fr))
             st.pending.append(frame)
-            if len(st.pending) < self.settings.reference_frames:
-                return []
-            return self._start(st)
-        return self._measure_or_wait(st, frame)
+            st.pending_flags.append(structured)
+            st.pending_structured += structured
+            n = self.settings.reference_frames
+            if st.pending_structured >= n or len(st.pending) >= 4 * n:
+                rows.extend(self._start(st))
+            return rows
+        return rows + self._measure_or_wait(st, frame)
 
     def flush(self) -> list[dict]:
         """Measure every frame still held back (end of session)."""
@@ -205,6 +236,7 @@ class Engine:
         for st in list(self._streams.values()):
             if st.pending:
                 rows.extend(self._start(st))
+            self._end_blank(st)
         for key, frames in list(self._waiting.items()):
             for fr in frames:
                 rows.extend(self._measure(self._streams[(fr.channel, fr.plane)], fr, None))
@@ -224,6 +256,10 @@ class Engine:
             return 1.0
         rate = self.settings.frame_rate_hz
         return rate / UNTIMED_FRAMES_PER_S if rate else NAN
+    def take_events(self) -> list[Event]:
+        """Events the engine raised since the last call (a detector level found or withdrawn), oldest first."""
+        out, self._events = self._events, []
+        return out
 
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
         """Take a new reference from the next frames (after the experimenter refocused)."""
@@ -237,9 +273,16 @@ class Engine:
         for key, st in self._streams.items():
             info: dict = {"dark_level_dn": st.dark_level, "dark_level_origin": st.dark_origin,
                           "saturation_level_dn": st.max_value, "frames": st.n_measured}
+            if st.range is not None:
+                info.update(saturation_level_origin=st.range.ceiling.origin,
+                            saturation_level_text=st.range.ceiling.text, floor_level_dn=st.range.floor.value,
+                            floor_level_origin=st.range.floor.origin, floor_level_text=st.range.floor.text,
+                            floor_is_clip=st.range.clip_floor)
             if st.ptc is not None:
                 try:
-                    res = st.ptc.result()
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore", UserWarning)  # undefined (too few pairs): NaN in the summary
+                        res = st.ptc.result()
                 except Exception:  # pragma: no cover - never lose the summary over a failed fit
                     res = None
                 if res is not None:
@@ -256,6 +299,15 @@ class Engine:
                 info["z_start_um"] = st.zest.start_um
             out[key] = info
         return out
+
+    def range_text(self, channel: int, plane: int) -> str:
+        """Short words for the stream's saturation level and its origin ("" before the stream started)."""
+        st = self._streams.get((channel, plane))
+        if st is None or st.range is None:
+            return ""
+        c = st.range.ceiling
+        words = {"option": "--bit-depth", "metadata": "metadata", "inferred": "inferred", "dtype": "dtype"}
+        return f"saturates at {c.value:g} ({words.get(c.origin, c.origin)})"
 
     def reference_image(self, channel: int, plane: int) -> np.ndarray | None:
         """The current reference of a stream (float32, rows × columns), or None before it is built."""
@@ -286,34 +338,202 @@ class Engine:
         if data.dtype.kind not in "uif":
             raise FrameError(f"unsupported pixel type {data.dtype}", path=frame.source or None,
                              page=frame.page if frame.page >= 0 else None)
+        rows: list[dict] = []
         if st.shape is None:
             st.shape, st.dtype = data.shape, data.dtype
         elif data.shape != st.shape or data.dtype != st.dtype:
-            raise FrameError(
-                f"frame of {data.shape[0]}×{data.shape[1]} {data.dtype} in a session of "
-                f"{st.shape[0]}×{st.shape[1]} {st.dtype} (channel {st.channel}, plane {st.plane}); frame skipped",
-                path=frame.source or None, page=frame.page if frame.page >= 0 else None)
+            # the source lets a new size through only where a session really changes it (after a first file of
+            # another size): what is held back is measured, then the stream starts anew
+            if st.pending:
+                rows.extend(self._start(st))
+            self._end_blank(st)
+            old = st
+            st = self._streams[(frame.channel, frame.plane)] = _Stream(frame.channel, frame.plane)
+            st.shape, st.dtype = data.shape, data.dtype
+            t = self._time(frame)
+            self._events.append(Event(
+                kind="reference", frame=frame.index, time_s=t, started_frame=frame.index, started_time_s=t,
+                channel=frame.channel, plane=frame.plane,
+                message=f"frames change from {old.shape[0]}×{old.shape[1]} {old.dtype} to {data.shape[0]}×"
+                        f"{data.shape[1]} {data.dtype} at {frame.source or 'frame'} page {frame.page}: measured anew "
+                        "from here (new reference, detector range and brightness baseline)"))
+        return rows
+
+    def _time(self, frame: Frame) -> float:
+        t = frame.time_s
+        if not math.isfinite(t):
+            t = frame.index / self.settings.frame_rate_hz if self.settings.frame_rate_hz else float(frame.index)
+        return t
+
+    def _structured(self, st: _Stream, frame: Frame) -> bool:
+        """Whether a frame shares structure with the frame before it (tested before a reference exists).
+
+        The frame is cut into cells (8 × 8 px from 128 px on, 4 × 4 from 32, else 2 × 2) and the Pearson
+        correlation ``r`` of its cell sums with the previous frame's is taken. Noise is independent from frame to
+        frame, the specimen is not: with no common structure (closed shutter, flat field with shot and read
+        noise) ``r`` is normal with mean 0 and standard deviation 1/√n over n cells (Fisher 1915, large n); the
+        frame shows structure when ``r > 5/√n`` (5 standard deviations) — the spatial variance that both
+        frames share, beyond their temporal noise. A constant frame, one with more than half of its pixels at a
+        detector limit, or one of fewer than 16 cells has none. The first frame is decided with the second.
+        """
+        data = frame.data
+        prev, st.prev_cells = st.prev_cells, None
+        h, w = data.shape
+        side = 8 if min(h, w) >= 128 else 4 if min(h, w) >= 32 else 2
+        if (h // side) * (w // side) < 16:
+            return False
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        clipped = np.count_nonzero(data >= hi) + (np.count_nonzero(data <= lo) if st.range.clip_floor else 0)
+        if clipped > data.size / 2:
+            return False
+        img = data if data.dtype.kind in "ui" and data.dtype.itemsize <= 2 else data.astype(np.float32, copy=False)
+        cells = bin_image(img, side).astype(np.float64).ravel()
+        if not np.isfinite(cells).all():
+            return False
+        cells -= cells.mean()
+        norm = float(np.dot(cells, cells))
+        if norm <= 0:
+            return False
+        st.prev_cells = cells / math.sqrt(norm)
+        if prev is None or prev.shape != st.prev_cells.shape:
+            return False
+        return float(np.dot(prev, st.prev_cells)) > 5.0 / math.sqrt(cells.size)
+
+    def _clean_reference(self, st: _Stream, reference: np.ndarray, stack: np.ndarray) -> np.ndarray:
+        """The reference with its clipped parts given zero weight, as every frame's are in the registration.
+
+        A pixel clipped in at least half of the reference's frames (and its neighbours: 1 px) is unusable; the
+        reference is drawn to its mean there, over a soft edge as wide as a registration bin, so that a frame
+        whose clipped pixels are left out (a hole at its mean) meets a reference with the same hole rather than a
+        bright blob — moving saturated cells then still register by their surroundings.
+        """
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        bad = (stack >= hi).mean(axis=0) >= 0.5
+        if st.range.clip_floor:
+            bad |= (stack <= lo).mean(axis=0) >= 0.5
+        if not bad.any() or bad.mean() > 0.95:
+            return reference
+        from scipy import ndimage
+
+        b = auto_bin(reference.shape) if self.settings.bin_factor is None else self.settings.bin_factor
+        good = ~ndimage.binary_dilation(bad)
+        weight = ndimage.uniform_filter(good.astype(np.float32), size=2 * b + 1) * good
+        weight *= weight
+        m = float(reference[good].mean())
+        return (m + (reference - m) * weight).astype(np.float32)
+
+    def _measure_early(self, st: _Stream, frame: Frame) -> list[dict]:
+        """The row of a frame without structure before any reference exists: no motion, focus or z."""
+        if st.ptc is None:
+            self._init_detector(st, [frame])
+        self._observe_range(st, frame)
+        data = frame.data
+        img = data if data.dtype.kind in "ui" and data.dtype.itemsize <= 2 else data.astype(np.float32, copy=False)
+        row = dict.fromkeys(NAMES, NAN)
+        row.update(frame=frame.index, channel=frame.channel, plane=frame.plane, source=frame.source,
+                   page=frame.page, time_s=self._time(frame))
+        sat, clip, valid = self._clipped(st, data)
+        row.update(saturated_frac=sat, clipped_frac=clip)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            sigma = immerkaer_sigma(img, valid=valid) if min(img.shape) >= 3 else NAN
+            row["noise_sigma"] = sigma
+            vals = img if valid is None else img[valid]
+            mean_raw = float(np.mean(vals, dtype=np.float64)) if vals.size else NAN
+            mean_f = mean_raw - st.dark_level
+            row["mean_f"] = mean_f
+            row["snr"] = mean_f / sigma if sigma > 0 else NAN
+            if math.isfinite(st.gain) and st.gain > 0:
+                row["photons_per_px"] = mean_f / st.gain
+        if st.prev is not None and st.prev.shape == img.shape:
+            st.ptc.update(img, st.prev)
+        st.prev, st.prev_shift = img, (0, 0)
+        self._note_blank(st, frame, "before any reference: dark, flat or clipped frames, or fewer than two frames "
+                                    "with structure")
+        st.n_measured += 1
+        return [row]
+
+    def _note_blank(self, st: _Stream, frame: Frame, reason: str) -> None:
+        if st.blank_since is None:
+            st.blank_since, st.blank_reason = (frame.index, self._time(frame)), reason
+        st.blank_last = (frame.index, self._time(frame), frame.channel, frame.plane)
+
+    def _end_blank(self, st: _Stream) -> None:
+        """Close a run of frames without structure: one event says which frames and why values are blank."""
+        if st.blank_since is None:
+            return
+        (f0, t0), (f1, t1, c, p) = st.blank_since, st.blank_last
+        self._events.append(Event(
+            kind="blank", frame=f1, time_s=t1, started_frame=f0, started_time_s=t0, channel=c, plane=p,
+            message=f"frames {f0}–{f1} without structure to measure ({st.blank_reason}): displacement, "
+                    "registration, focus and z are blank there"))
+        st.blank_since = None
+
+    def _clipped(self, st: _Stream, data: np.ndarray) -> tuple[float, float, np.ndarray | None]:
+        """Saturated and clipped fractions, and the mask of usable pixels (None when every pixel is)."""
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        n_sat = int(np.count_nonzero(data >= hi))
+        n_clip = int(np.count_nonzero(data <= lo))
+        valid = None
+        if n_sat or (n_clip and st.range.clip_floor):
+            valid = data < hi if n_sat else np.ones(data.shape, bool)
+            if n_clip and st.range.clip_floor:
+                valid &= data > lo
+        return n_sat / data.size, n_clip / data.size, valid
+
+    def _init_detector(self, st: _Stream, frames: list[Frame]) -> None:
+        """Detector facts on the first frames measured: range, photon-transfer accumulator, dark level."""
+        s = self.settings
+        stack = np.stack([f.data for f in frames]).astype(np.float32, copy=False)
+        for fr in frames:  # the detector's range from the start-up frames, before anything is measured
+            self._observe_range(st, fr)
+        st.max_value = st.range.ceiling.value
+        # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
+        st.ptc = PhotonTransfer(max_value=_finite(st.max_value), floor=_finite(st.range.floor.value),
+                                pair_step=1)
+        for a, b in zip(stack[1:], stack[:-1]):
+            st.ptc.update(a, b)
+        st.ptc.pair_step = s.photon_transfer_every
+        self._set_dark_level(st, stack)
+        st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
 
     def _start(self, st: _Stream) -> list[dict]:
-        """Build the reference (and the dark level, on first start) from the held-back frames, then measure them."""
+        """Build the reference (and the dark level, on first start) from the held-back frames with structure, then
+        measure every held-back frame. Without two such frames (or a reference that holds nothing to register to)
+        the frames are measured without motion."""
         frames, st.pending = st.pending, []
-        stack = np.stack([f.data for f in frames]).astype(np.float32, copy=False)
+        flags, st.pending_flags = st.pending_flags, []
+        st.pending_structured = 0
+        st.prev_cells = None
         s = self.settings
-        if st.shift is None:  # first start: detector facts
-            st.max_value = float(detector_max(frames[0].data.dtype, s.bit_depth))
-            # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
-            st.ptc = PhotonTransfer(max_value=st.max_value, pair_step=1)
-            for a, b in zip(stack[1:], stack[:-1]):
-                st.ptc.update(a, b)
-            st.ptc.pair_step = s.photon_transfer_every
-            self._set_dark_level(st, stack)
-            st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
+        first = st.shift is None
+        if first and st.ptc is None:
+            self._init_detector(st, frames)
+        elif first:  # frames without structure came first: the dark level again, now from frames with structure
+            for fr in frames:
+                self._observe_range(st, fr)
+            if s.dark_level is None:
+                self._set_dark_level(st, np.stack([f.data for f in frames]).astype(np.float32, copy=False))
+        use = [f for f, ok in zip(frames, flags) if ok]
+        if len(use) < 2:  # one frame is no reference for itself: its shift would be 0 by construction
+            if first:
+                return [r for fr in frames for r in self._measure_early(st, fr)]
+            st.new_reference_requested = False  # nothing to build a new one on: keep the old reference
+            return [r for fr in frames for r in self._measure_or_wait(st, fr)]
+        stack = np.stack([f.data for f in use]).astype(np.float32, copy=False)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
-            st.reference = build_reference(stack, upsample=s.upsample)
-            max_shift = s.max_shift_px or min(st.reference.shape) / 4
-            st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
-                                      max_shift_px=max_shift)
+            try:
+                reference = self._clean_reference(st, build_reference(stack, upsample=s.upsample), stack)
+                max_shift = s.max_shift_px or min(reference.shape) / 4
+                shift = ShiftEstimator(reference, upsample=s.upsample, bin_factor=s.bin_factor,
+                                       max_shift_px=max_shift)
+            except ValueError:  # nothing to register to (e.g. frames too small for the registration)
+                if first:
+                    return [r for fr in frames for r in self._measure_early(st, fr)]
+                st.new_reference_requested = False
+                return [r for fr in frames for r in self._measure_or_wait(st, fr)]
+        st.reference, st.shift = reference, shift
         # Two running means in block sums of gcd(running_mean_frames, z_every) frames (at every estimate each is
         # over exactly the last running_mean_frames frames): the frame binned as for the registration, for focus
         # and z, which need no finer sampling (their correlations bin further; the sharpness is of cell-sized
@@ -345,6 +565,28 @@ class Engine:
             rows.extend(self._measure_or_wait(st, fr))
         return rows
 
+    def _observe_range(self, st: _Stream, frame: Frame) -> tuple[float, float]:  # noqa: D401
+        """Hand the frame's extremes to the range finder; record a level found or withdrawn. (min, max)."""
+        a = frame.data
+        if a.dtype.kind == "f":  # NaN pixels are ignored (fmin/fmax); all NaN gives NaN
+            fmin, fmax = float(np.fmin.reduce(a, axis=None)), float(np.fmax.reduce(a, axis=None))
+        else:
+            fmin, fmax = float(a.min()), float(a.max())
+        notes = st.range.observe(a, fmin, fmax)
+        if notes:
+            st.max_value = st.range.ceiling.value
+            if st.ptc is not None:
+                st.ptc.max_value = _finite(st.max_value)
+                st.ptc.floor = _finite(st.range.floor.value)
+            t = frame.time_s
+            if not math.isfinite(t) and self.settings.frame_rate_hz:
+                t = frame.index / self.settings.frame_rate_hz
+            for note in notes:
+                self._events.append(Event(kind="detector", frame=frame.index, time_s=t, started_frame=frame.index,
+                                          started_time_s=t, channel=frame.channel, plane=frame.plane,
+                                          message=f"{note}; applies from frame {frame.index} on"))
+        return fmin, fmax
+
     def _set_dark_level(self, st: _Stream, stack: np.ndarray) -> None:
         s = self.settings
         if s.dark_level is not None:
@@ -352,7 +594,9 @@ class Engine:
             return
         res = None
         try:
-            res = st.ptc.result()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)  # too few pairs (e.g. dark frames): the fallback below
+                res = st.ptc.result()
         except Exception:
             res = None
         if res is not None and math.isfinite(res.dark_level_dn) and math.isfinite(res.gain_dn_per_photon) \
@@ -410,22 +654,50 @@ class Engine:
         # also serves the registration and gives the exact frame mean.
         factor = st.shift.bin_factor
         binned = bin_image(img, factor)
-        sat, clip = saturation_fractions(frame.data, max_value=st.max_value)
-        sigma = immerkaer_sigma(img, row_step=st.noise_row_step)
+        # Saturated and floor-clipped pixels: counted, then given zero weight in every linear measurement (the
+        # mask is made only on frames that reach a limit; the floor only when it is a demonstrated clip).
+        fmin, fmax = self._observe_range(st, frame)
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        if fmax >= hi or fmin <= lo:  # most frames reach neither limit: two reductions, no counting
+            sat, clip, valid = self._clipped(st, data)
+        else:
+            sat, clip, valid = 0.0, 0.0, None
+        sigma = immerkaer_sigma(img, row_step=st.noise_row_step, valid=valid)
+        # a constant frame or one mostly at a detector limit has no motion, focus or z to measure (a dark frame
+        # with noise is left to the registration, whose correlation then says it found nothing)
+        structured = fmax > fmin and sat + (clip if st.range.clip_floor else 0.0) <= 0.5
+        if structured:
+            self._end_blank(st)
+        else:
+            self._note_blank(st, frame, "constant frames, or more than half of the pixels at a detector limit")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
             mean_binned = None
-            if st.exact_binning:
+            if valid is not None:
+                n_valid = int(np.count_nonzero(valid))
+                mean_raw = (float(np.add.reduce(img[valid], axis=None, dtype=np.float64)) / n_valid
+                            if n_valid else NAN)
+                # bins holding a clipped pixel take the mean of the usable pixels in the running means
+                full = bin_image(valid.view(np.uint8), factor) >= factor * factor
+                binned_clean = np.where(full, binned, np.float32(mean_raw * factor * factor)
+                                        if n_valid else np.float32(0))
+            elif st.exact_binning:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw, mean_binned = total / img.size, total / binned.size
             else:
                 mean_raw = float(np.add.reduce(img, axis=None, dtype=np.float64)) / img.size
-            if motion is None:
+            if not structured:
+                res = (NAN, NAN, NAN)
+                if s.motion_channel is not None and motion is None:
+                    self._remember_motion(frame.index, frame.plane, res)
+            elif motion is None:
                 if img.dtype.kind in "ui" or np.isfinite(binned).all():
-                    res = st.shift.estimate_binned(binned, mean=mean_binned)
+                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
-                    res = st.shift.estimate(img)
-            if motion is None:
+                    res = st.shift.estimate(img, valid=valid)
+            if not structured:
+                dy, dx, corr = res
+            elif motion is None:
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if s.motion_channel is not None:
                     self._remember_motion(frame.index, frame.plane, (dy, dx, corr))
@@ -440,25 +712,27 @@ class Engine:
             # focus, z and line offset from the motion-corrected running means, when a block of z_every frames is
             # complete (and at each of the first z_every frames)
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
-            st.running.push(binned, dy / factor, dx / factor)
-            st.line_mean.push(img, dy, dx)
-            if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
-                mean_img = st.running.mean
-                if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
-                    st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin // factor), st.reference_binned),
-                                     focus_measure(mean_img))
-                if st.zest is not None:
-                    zr = st.zest.estimate(mean_img)
-                    st.last_z = (zr.z_um, zr.corr)
-                # Line offset is a property of the scanner, not of one frame: it is measured on the running mean
-                # of the rows it reads, whose frames were moved by whole, even numbers of rows (the two scan
-                # directions' rows stay apart).
-                rows = st.line_mean.mean  # rows above, odd rows, rows below (line_rows), stacked
-                k = rows.shape[0] // 3
-                st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
-            row["focus_corr"], row["focus_measure"] = st.last_focus
-            row["z_um"], row["z_corr"] = st.last_z
-            row["line_offset_px"] = st.last_line_offset
+            if structured:
+                st.running.push(binned if valid is None else binned_clean, dy / factor, dx / factor)
+                st.line_mean.push(img, dy, dx)
+                if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
+                    mean_img = st.running.mean
+                    if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
+                        st.last_focus = (focus_corr(bin_image(mean_img, st.focus_bin // factor), st.reference_binned),
+                                         focus_measure(mean_img))
+                    if st.zest is not None:
+                        zr = st.zest.estimate(mean_img)
+                        st.last_z = (zr.z_um, zr.corr)
+                    # Line offset is a property of the scanner, not of one frame: it is measured on the running mean
+                    # of the rows it reads, whose frames were moved by whole, even numbers of rows (the two scan
+                    # directions' rows stay apart).
+                    rows = st.line_mean.mean  # rows above, odd rows, rows below (line_rows), stacked
+                    k = rows.shape[0] // 3
+                    st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
+            if structured:
+                row["focus_corr"], row["focus_measure"] = st.last_focus
+                row["z_um"], row["z_corr"] = st.last_z
+                row["line_offset_px"] = st.last_line_offset
 
             # photometry
             mean_f = mean_raw - st.dark_level
@@ -492,6 +766,11 @@ class Engine:
         self._shared_order.append(key)
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
+
+
+def _finite(v: float) -> float:
+    """A limit for the photon-transfer accumulator, which needs finite ones (float data have none)."""
+    return v if math.isfinite(v) else math.copysign(float(np.finfo(np.float32).max), v)
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

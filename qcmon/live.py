@@ -428,6 +428,8 @@ class Monitor:
             for msg in res["problems"]:
                 if msg not in self.problems:  # the warm-up overlaps the previous chunk: report once
                     report(QcmonError(msg))
+            for ev in res.get("events", []):
+                self._emit(ev, record, listeners)
             self._deliver(run, res["rows"], record, listeners)
             self._update_status(run, source, listeners)
             record.maybe_flush()
@@ -436,6 +438,10 @@ class Monitor:
 
     def _deliver(self, run: "_RunState", rows: list[dict], record, listeners) -> None:
         """Record rows not recorded before (resume), raise their events and pass them on."""
+        if run.engine is not None:
+            for ev in run.engine.take_events():  # detector levels found late (none for replayed frames)
+                if ev.frame > run.done.get((ev.channel, ev.plane), -1):
+                    self._emit(ev, record, listeners)
         if run.split is not None and rows:
             rows = run.split.continuity.apply(rows)
         if run.done:
@@ -479,10 +485,15 @@ class Monitor:
             z_step = z_step or z_from_file
             if z_step is None:
                 raise QcmonError(f"{o.zstack}: the z-stack carries no plane spacing; give --z-step UM")
+        # the bit depth of the option or the metadata; the dtype's is no evidence (12-bit data in 16-bit pages)
+        bit_fact = facts.facts.get("bit_depth")
+        bit_depth, bit_origin = o.bit_depth, "option"
+        if bit_depth is None and bit_fact is not None and bit_fact.origin != "dtype":
+            bit_depth, bit_origin = int(bit_fact.value), ("option" if bit_fact.origin == "option" else "metadata")
         return EngineSettings(
             frame_rate_hz=facts.get("frame_rate_hz") or o.frame_rate_hz,
             pixel_size_um=facts.get("pixel_size_um") or o.pixel_size_um,
-            bit_depth=o.bit_depth or facts.get("bit_depth"),
+            bit_depth=bit_depth, bit_depth_origin=bit_origin,
             dark_level=o.dark_level,
             zstack=zstack, z_step_um=z_step, motion_channel=o.motion_channel,
             **o.engine_overrides)
@@ -548,6 +559,8 @@ class Monitor:
             if status.paused_reason.startswith(("no readable frame yet", "no frame file yet")):
                 status.paused_reason = ""
             status.streams = engine.streams
+            if engine.streams:
+                status.range_text = engine.range_text(*engine.streams[0])
             loss = self.options.forecast_loss_pct
             forecast = run.split.continuity.forecast_min if run.split is not None else engine.forecast_min
             for c, p in engine.streams:
@@ -636,6 +649,9 @@ class Monitor:
                 "dark_level.used_dn": first.get("dark_level_dn", math.nan),
                 "dark_level.origin": first.get("dark_level_origin", ""),
                 "saturation.level_dn": first.get("saturation_level_dn", math.nan),
+                "saturation.level_origin": first.get("saturation_level_text", ""),
+                "saturation.floor_dn": first.get("floor_level_dn", math.nan),
+                "saturation.floor_origin": first.get("floor_level_text", ""),
                 "z.start_um": first.get("z_start_um", math.nan),
                 "streams": {f"{c},{p}": _jsonable(v) for (c, p), v in info.items()},
             }

@@ -212,12 +212,6 @@ def write_atomic_set(folder: str | os.PathLike, files: Mapping[str, str | bytes]
     return {name: folder / name for name in files}
 
 
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
 def _cut_partial_line(path: Path) -> int:
     """Truncate ``path`` after its last newline; return the number of bytes removed."""
     size = path.stat().st_size

@@ -326,6 +326,12 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         for k, f in facts.items():
             value, origin = (f.get("value"), f.get("origin", "")) if isinstance(f, Mapping) else (f, "")
             parts.append(f"<tr><td>{e(str(k))}</td><td>{e(_fmt(value))}</td><td>{e(str(origin))}</td></tr>")
+        sat = summary.get("saturation") or {}
+        for name, key in (("saturation level (DN)", "level"), ("floor (DN)", "floor")):
+            value = sat.get(f"{key}_dn" if key == "level" else "floor_dn")
+            if value is not None:
+                parts.append(f"<tr><td>{e(name)}</td><td>{e(_fmt(value))}</td>"
+                             f"<td>{e(str(sat.get(f'{key}_origin', '')))}</td></tr>")
         parts.append("</table>")
     else:
         parts.append("<p>No acquisition facts recorded.</p>")

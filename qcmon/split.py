@@ -129,7 +129,8 @@ def measure_chunk(job: ChunkJob) -> dict:
         if job.stop is None:
             rows.extend(engine.flush())
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
-    return {"rows": keep, "problems": problems}
+    events = [e for e in engine.take_events() if e.frame >= job.first and (job.stop is None or e.frame < job.stop)]
+    return {"rows": keep, "problems": problems, "events": events}
 
 
 class RowContinuity:

@@ -42,6 +42,9 @@ class Status:
         Acquisition facts with origins (``AcquisitionFacts.as_dict()``).
     paused_reason : str
         Non-empty while waiting (e.g. "waiting for frames", "building reference").
+    range_text : str
+        The detector's saturation level and where it came from (first stream), e.g. "saturates at 4095
+        (inferred)"; "" before it is known.
     """
 
     folder: str = ""
@@ -58,6 +61,7 @@ class Status:
     forecasts: dict = field(default_factory=dict)
     facts: dict = field(default_factory=dict)
     paused_reason: str = ""
+    range_text: str = ""
 
 
 class Listener(Protocol):

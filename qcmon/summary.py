@@ -39,6 +39,10 @@ key                                unit       meaning
 ``brightness.min_pct``             %          smallest ``brightness_pct``
 ``saturation.max_frac``            0..1       largest ``saturated_frac``
 ``saturation.mean_frac``           0..1       mean ``saturated_frac``
+``saturation.level_dn``            DN         the ceiling ``saturated_frac`` counts at (from the engine)
+``saturation.level_origin``                   where it came from: ``--bit-depth``, metadata, "inferred from N
+                                              pixels piled up at …", or the dtype
+``saturation.floor_dn``            DN         the floor ``clipped_frac`` counts at, and ``floor_origin`` likewise
 ``clipping.max_frac``              0..1       largest ``clipped_frac``
 ``clipping.mean_frac``             0..1       mean ``clipped_frac``
 ``snr.median``                                median ``snr``

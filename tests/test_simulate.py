@@ -171,6 +171,28 @@ def test_gain_change_saturates_and_truth_reports_it():
     assert measured[before].max() == 0.0 and measured[after].mean() > 0.0
 
 
+def test_rig_start_shutter_patch_bright_cells_and_nbit_pages():
+    """What rigs write: closed shutter, n-bit data in 16-bit pages, saturating cells, a stationary patch."""
+    cfg = scenario_config("rig_start", n_frames=60, height=64, width=64)
+    res = simulate(cfg)
+    t, pages = res.truth, res.pages
+    top = 2**13 - 1
+    assert pages.dtype == np.uint16 and pages.max() == top  # 13 significant bits in 16-bit pages
+    dark = t["time_s"] < cfg.shutter_closed_s
+    assert dark.sum() == 6 and np.all(t["mean_photons_per_px"][dark] == 0)
+    # dark frames: dark level plus Gaussian read noise only (EMVA 1288 dark signal; sample sd within 5 %)
+    assert_allclose(pages[dark].mean(), cfg.dark_dn, atol=0.5)
+    assert_allclose(pages[dark].std(), cfg.read_noise_dn, rtol=0.05)
+    start, end = cfg.saturated_patch[:2]
+    patch = (t["time_s"] >= start) & (t["time_s"] < end)
+    r0, c0 = int(0.2 * 64), int(0.55 * 64)
+    assert np.all(pages[patch][:, r0:r0 + 16, c0:c0 + 16] == top)  # stationary: the same pixels every frame
+    assert not np.any(pages[~patch][:, r0:r0 + 16, c0:c0 + 16].min(axis=(1, 2)) == top)
+    lit = ~dark & ~patch
+    assert t["saturated_frac"][lit].min() > 0  # the bright cells saturate on every lit frame
+    assert_allclose(t["saturated_frac"], (pages == top).mean(axis=(1, 2)))
+
+
 # --- motion, line offset, edges ---------------------------------------------------------------------------
 def test_motion_truth_matches_phase_correlation():
     # skimage.registration.phase_cross_correlation returns the shift that registers the moving image onto the
@@ -246,7 +268,9 @@ def test_reproducible_and_iter_pages_equal_simulate():
 
 def test_config_validation_and_round_trip():
     with pytest.raises(ValueError, match="bits"):
-        SimConfig(bits=10)
+        SimConfig(bits=17)  # digitisers of 8 to 16 bits in 16-bit pages
+    with pytest.raises(ValueError, match="saturated_patch"):
+        SimConfig(saturated_patch=(0.0, 1.0, 0.5, 0.5, 2.0, 0.1))
     with pytest.raises(ValueError, match="one value per channel"):
         SimConfig(channels=3)
     with pytest.raises(ValueError, match="margin_px"):

@@ -397,6 +397,7 @@ def test_imagej_metadata(tmp_path):
 # ------------------------------------------------------------------------------------------------ problems
 def test_bad_files_give_one_error_each_and_reading_goes_on(tmp_path):
     good = _stack(2)
+    _imwrite(tmp_path / "f_00.tif", good[0])  # two files of one size: the session's size (not a first file alone)
     _imwrite(tmp_path / "f_01.tif", good[0])
     (tmp_path / "f_02.tif").write_bytes(b"this is not an image file at all")
     (tmp_path / "f_03.tif").write_bytes(b"")
@@ -413,7 +414,7 @@ def test_bad_files_give_one_error_each_and_reading_goes_on(tmp_path):
     before = _digest(tmp_path)
     source = SessionSource(tmp_path, on_problem=seen.append)
     frames = source.poll(final=True)
-    _frames_equal(frames, [good[0], good[1]])
+    _frames_equal(frames, [good[0], good[0], good[1]])
     assert seen == source.problems
     by_file = {os.path.basename(e.path): e for e in source.problems}
     assert sorted(by_file) == [f"f_{k:02d}.tif" for k in range(2, 10)]

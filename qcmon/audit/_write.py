@@ -21,7 +21,8 @@ AUDIT_COLUMNS: tuple[str, ...] = (
     "path", "status", "date", "date_origin", "frames", "duration_s", "verdict",
     *(f"verdict_{g}" for g in GROUPS),
     "motion_max_px", "motion_rms_px", "motion_max_um", "motion_rms_um", "z_max_abs_um", "bleach_pct_per_min",
-    "brightness_min_pct", "brightness_above_dark_dn", "saturated_max_frac", "clipped_max_frac", "snr_median",
+    "brightness_min_pct", "brightness_above_dark_dn", "saturated_max_frac", "clipped_max_frac",
+    "saturation_level_dn", "saturation_level_origin", "snr_median",
     "photons_per_px_median", "gain_dn_per_photon", "dark_level_dn", "pixel_size_um", "frame_rate_hz",
     "frame_rate_origin", "warnings", "alarms", "problems", "report", "error",
 )
@@ -85,6 +86,9 @@ def session_row(outcome: Mapping, *, out_dir: Path, date: datetime | None, date_
         row[f"verdict_{g}"] = (s.get(g) or {}).get("verdict", "unknown")
     for col, (g, k) in _SUMMARY_KEYS.items():
         row[col] = _num((s.get(g) or {}).get(k))
+    sat = s.get("saturation") or {}
+    row["saturation_level_dn"] = _num(sat.get("level_dn"))
+    row["saturation_level_origin"] = str(sat.get("level_origin") or "")
     row["pixel_size_um"] = _fact(s, "pixel_size_um")
     row["frame_rate_hz"] = _fact(s, "frame_rate_hz")
     rate = s.get("frame_rate") or {}  # where the rate came from, or "frame rate unknown: give --frame-rate"

@@ -282,6 +282,8 @@ class SessionHeader(Widget):
         # without a frame rate the header says so loudly: times and per-minute values are blank
         second.append(rate_text, style="bold reverse" if rate_text == RATE_UNKNOWN else "")
         second.append(f" · elapsed {format_clock(status.elapsed_s)}")
+        if status.range_text:
+            second.append(f" · {status.range_text}")
         if status.backlog_frames:
             second.append(f" · behind by {status.backlog_frames} frames", style="bold reverse")
         second.append(f" · {stream_text} · {window_min}-min plots")
@@ -295,6 +297,7 @@ _KIND_TEXT = {
     "note": "✎ note",
     "reference": "⟲ reference",
     "problem": "✗ problem",
+    "detector": "▣ detector",
 }
 
 

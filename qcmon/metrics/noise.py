@@ -14,7 +14,7 @@ __all__ = ["immerkaer_sigma"]
 _SCALE = math.sqrt(math.pi / 2.0) / 6.0
 
 
-def immerkaer_sigma(image, *, row_step: int = 1) -> float:
+def immerkaer_sigma(image, *, row_step: int = 1, valid: np.ndarray | None = None) -> float:
     """Standard deviation of additive white noise in one frame (Immerkær's method).
 
     The frame is filtered with the 3x3 kernel ``N = [[1, -2, 1], [-2, 4, -2], [1, -2, 1]]`` (the difference of
@@ -36,10 +36,15 @@ def immerkaer_sigma(image, *, row_step: int = 1) -> float:
         about 1.1 (Gaussian noise), i.e. about 0.4 % for a 512 x 512 frame with ``row_step=4``. Default 1 (every
         row, as in the paper).
 
+    valid : (M, N) bool ndarray, optional
+        True where a pixel may be used. A filter output whose 3 × 3 neighbourhood holds an unusable pixel
+        (saturated or clipped: flat at the limit, with a step at its edge) is left out of the sum. None: all usable.
+
     Returns
     -------
     sigma : float
-        Noise standard deviation in the image's units (DN). 0 for a frame with no noise (e.g. constant).
+        Noise standard deviation in the image's units (DN). 0 for a frame with no noise (e.g. constant); NaN
+        when no filter output has a fully usable neighbourhood.
 
     Notes
     -----
@@ -76,6 +81,19 @@ def immerkaer_sigma(image, *, row_step: int = 1) -> float:
     e = df[:-2] + df[2:]
     e -= np.multiply(df[1:-1], two)
     np.abs(e, out=e)
+    if valid is not None:
+        v = np.asarray(valid)
+        if v.shape != a.shape or v.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {a.shape}, got {v.dtype} {v.shape}")
+        ok = v[0:stop - 1:row_step] & v[1:stop:row_step] & v[2:stop + 1:row_step]
+        of = ok.reshape(-1)
+        okf = of[:-2] & of[1:-1] & of[2:]
+        okf[n - 2::n] = False  # the outputs that reach into the next row
+        okf[n - 1::n] = False
+        count = int(np.count_nonzero(okf))
+        if count == 0:
+            return math.nan
+        return _SCALE * float(np.dot(e, okf.astype(np.float32))) / count
     wrapped = float(e[n - 2::n].sum()) + float(e[n - 1::n].sum())
     total = float(e.sum()) - wrapped  # float32 pairwise summation: relative error ~1e-6
     return _SCALE * total / (d.shape[0] * (n - 2))

@@ -302,7 +302,7 @@ class ShiftEstimator:
         return r
 
     # ------------------------------------------------------------------ public
-    def estimate(self, frame) -> ShiftResult:
+    def estimate(self, frame, *, valid: np.ndarray | None = None) -> ShiftResult:
         """Shift of ``frame``'s content relative to the reference.
 
         Parameters
@@ -310,6 +310,9 @@ class ShiftEstimator:
         frame : (M, N) array_like
             Image of the reference's shape, any real integer or floating dtype. Non-finite pixels are replaced by
             the mean of the finite ones.
+        valid : (M, N) bool ndarray, optional
+            True where a pixel may be used; False pixels (saturated or clipped) get zero weight (see
+            :meth:`_valid_weight`). None: every pixel is usable.
 
         Returns
         -------
@@ -323,9 +326,10 @@ class ShiftEstimator:
             gb = finite_float32(gb, "frame", stacklevel=3)
             if gb is None:
                 return _NAN_RESULT
-        return self._estimate_binned(gb, stacklevel=3)
+        return self._estimate_binned(gb, stacklevel=3, weight=self._valid_weight(valid))
 
-    def estimate_binned(self, binned: np.ndarray, *, mean: float | None = None) -> ShiftResult:
+    def estimate_binned(self, binned: np.ndarray, *, mean: float | None = None,
+                        valid: np.ndarray | None = None) -> ShiftResult:
         """:meth:`estimate` of a frame already binned by :attr:`bin_factor`, for callers that need the binned frame
         themselves (the engine takes the frame's exact mean from it).
 
@@ -334,14 +338,52 @@ class ShiftEstimator:
         binned : (M // bin_factor, N // bin_factor) float32 ndarray
             ``bin_image(frame, bin_factor)`` of a finite frame (not modified).
         mean : float, optional
-            Mean of ``binned``, if the caller has computed it already.
+            Mean of ``binned``, if the caller has computed it already (ignored with ``valid``).
+        valid : (M, N) bool ndarray, optional
+            At full resolution: True where a pixel may be used (the estimator bins it itself). None: all usable.
         """
         if binned.shape != self._bshape or binned.dtype != np.float32:
             raise ValueError(f"binned must be a float32 image of shape {self._bshape}, got {binned.dtype} "
                              f"{binned.shape}")
-        return self._estimate_binned(binned, stacklevel=3, mean=mean)
+        return self._estimate_binned(binned, stacklevel=3, mean=mean, weight=self._valid_weight(valid))
 
-    def _estimate_binned(self, gb: np.ndarray, *, stacklevel: int, mean: float | None = None) -> ShiftResult:
+    def _valid_weight(self, valid) -> np.ndarray | None:
+        """Weights of the binned pixels from a full-resolution ``valid`` mask; None when every pixel is valid.
+
+        A binned pixel with any unusable pixel in it gets weight 0; the weight of the usable ones next to them
+        rises over one binned pixel (``w0 · box3(w0)²``, ``w0`` the 0/1 weights, ``box3`` the 3 × 3 mean), so that
+        the edge of an unusable region — a stationary saturated patch — is soft and carries no shift of its own.
+        """
+        if valid is None:
+            return None
+        v = np.asarray(valid)
+        if v.shape != self.shape or v.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {self.shape}, got {v.dtype} {v.shape}")
+        b = self.bin_factor
+        counts = bin_image(v.view(np.uint8), b)
+        w0 = (counts >= b * b).astype(np.float32)
+        if w0.all():
+            return None
+        pad = np.pad(w0, 1, mode="edge")
+        box = np.zeros_like(w0)
+        for i in range(3):
+            for j in range(3):
+                box += pad[i:i + w0.shape[0], j:j + w0.shape[1]]
+        box *= np.float32(1.0 / 9.0)
+        return w0 * box * box
+
+    def _estimate_binned(self, gb: np.ndarray, *, stacklevel: int, mean: float | None = None,
+                         weight: np.ndarray | None = None) -> ShiftResult:
+        if weight is not None:
+            total_w = float(weight.sum(dtype=np.float64))
+            if total_w < 0.05 * weight.size:
+                warnings.warn("fewer than 5 % of the frame's pixels are usable; shift is NaN", UserWarning,
+                              stacklevel=stacklevel)
+                return _NAN_RESULT
+            mean = float(np.dot(gb.ravel().astype(np.float64), weight.ravel())) / total_w
+            gb = np.subtract(gb, np.float32(mean))
+            gb *= weight
+            mean = 0.0
         if mean is None:
             mean = float(np.add.reduce(gb, axis=None)) / gb.size  # float32 pairwise summation: rel. error ~1e-7
         gb = np.subtract(gb, np.float32(mean))  # a new array: the caller's binned frame is not modified

@@ -113,7 +113,7 @@ class SimConfig:
         relative to even rows (even rows by -offset/2, odd rows by +offset/2, so the frame's mean shift is
         ``dx_px``).
     bits : int
-        Detector bit depth: 12, 14 or 16; the maximum value is ``2**bits - 1``.
+        Digitiser bit depth, 8 to 16 (stored in 16-bit pages); the maximum value is ``2**bits - 1``.
     gain_dn_per_photon : float
         Conversion gain (DN per detected photon).
     dark_dn : float
@@ -124,6 +124,17 @@ class SimConfig:
         Time (s) at which the gain is multiplied by ``gain_change_factor``; ``None`` for no change.
     gain_change_factor : float
         Factor applied to the gain from ``gain_change_time_s`` on.
+    shutter_closed_s : float
+        The shutter is closed for the first ``shutter_closed_s`` seconds: no photons, only the dark level and the
+        read noise (dark frames, as a session often begins). Default 0.
+    saturated_patch : tuple of 6 floats, or ()
+        ``(start_s, end_s, top, left, height, width)``: a stationary artefact (a light leak, a reflection) that
+        saturates the detector over that part of the field (fractions of the frame) from ``start_s`` to
+        ``end_s``; it does not move with the specimen. Default (): none.
+    bright_cells : int
+        This many somata are ``bright_cell_factor`` times brighter than the rest, so that they saturate the
+        detector and move with the specimen. Default 0.
+    bright_cell_factor : float
     zstack_half_planes : int
         The reference z-stack spans ``±zstack_half_planes × z_step_um`` around the starting focal plane
         (2·half + 1 planes, superficial to deep).
@@ -196,6 +207,10 @@ class SimConfig:
     read_noise_dn: float = 8.0
     gain_change_time_s: float | None = None
     gain_change_factor: float = 1.0
+    shutter_closed_s: float = 0.0
+    saturated_patch: tuple[float, ...] = ()
+    bright_cells: int = 0
+    bright_cell_factor: float = 40.0
     # reference stack
     zstack_half_planes: int = 15
     z_step_um: float = 1.0
@@ -270,8 +285,18 @@ def _validate(c: SimConfig) -> None:
         for x in v[: c.channels]:
             if not (x > 0 or (name == "channel_neuropil" and x == 0)):
                 raise ValueError(f"{name} values must be positive, got {v!r}")
-    if c.bits not in (12, 14, 16):
-        raise ValueError(f"bits must be 12, 14 or 16, got {c.bits!r}")
+    if isinstance(c.bits, bool) or not isinstance(c.bits, int) or not 8 <= c.bits <= 16:
+        raise ValueError(f"bits must be an integer from 8 to 16, got {c.bits!r}")
+    if not (math.isfinite(c.shutter_closed_s) and c.shutter_closed_s >= 0):
+        raise ValueError(f"shutter_closed_s must be a non-negative number, got {c.shutter_closed_s!r}")
+    if c.saturated_patch and (len(c.saturated_patch) != 6 or not all(math.isfinite(v) for v in c.saturated_patch)
+                              or not all(0 <= v <= 1 for v in c.saturated_patch[2:])):
+        raise ValueError("saturated_patch must be (start_s, end_s, top, left, height, width) with the last four "
+                         f"fractions of the frame in 0..1, got {c.saturated_patch!r}")
+    if isinstance(c.bright_cells, bool) or not isinstance(c.bright_cells, int) or c.bright_cells < 0:
+        raise ValueError(f"bright_cells must be a non-negative integer, got {c.bright_cells!r}")
+    if not (math.isfinite(c.bright_cell_factor) and c.bright_cell_factor > 0):
+        raise ValueError(f"bright_cell_factor must be a positive number, got {c.bright_cell_factor!r}")
     if c.dark_dn >= 2**c.bits - 1:
         raise ValueError(f"dark_dn ({c.dark_dn}) must be below the detector maximum {2**c.bits - 1}")
     if not 0 <= c.zstack_channel < c.channels:

@@ -84,7 +84,7 @@ class Simulator:
                                    rng_activity)
         self._f_rest = self._fluor(np.array([c.ca_rest_nm]))[0]
         # scale each channel so that its resting mean at the start is mean_photons_per_px × brightness
-        rest = self.specimen.render(0.0, 0.0, 0.0, self._rest_weights(), self._neuropil_weights(1.0))
+        rest = self.specimen.render(0.0, 0.0, 0.0, self._rest_weights(bright=False), self._neuropil_weights(1.0))
         target = c.mean_photons_per_px * np.asarray(c.channel_brightness[: c.channels], dtype=float)
         self.scale = target / rest.reshape(c.channels, -1).mean(axis=1)
         self._used = False
@@ -94,9 +94,31 @@ class Simulator:
         c = self.config
         return indicator_fluorescence(ca, kd=c.kd_nm, n=c.hill_n, f_min=1.0, f_max=c.dynamic_range)
 
-    def _rest_weights(self) -> np.ndarray:
+    def _rest_weights(self, *, bright: bool = True) -> np.ndarray:
         c = self.config
-        return np.repeat((c.cell_to_neuropil * self.specimen.cell_b)[None, :], c.channels, axis=0)
+        w = np.repeat((c.cell_to_neuropil * self.specimen.cell_b)[None, :], c.channels, axis=0)
+        if bright and c.bright_cells:  # the somata nearest the focal plane and inside the field saturate
+            w[:, self._bright_index()] *= c.bright_cell_factor
+        return w
+
+    def _bright_index(self) -> np.ndarray:
+        c = self.config
+        t = self.specimen.cells_table()
+        inside = (t["x_px"] > 0) & (t["x_px"] < c.width) & (t["y_px"] > 0) & (t["y_px"] < c.height)
+        order = np.argsort(np.where(inside, np.abs(t["z_um"]), np.inf), kind="stable")
+        return order[:c.bright_cells]
+
+    def _artefact(self, photons: np.ndarray, t_s: float, gain: float) -> np.ndarray:
+        """Closed shutter (no photons) and the stationary saturated patch, at session time ``t_s``."""
+        c = self.config
+        if t_s < c.shutter_closed_s:
+            return np.zeros_like(photons)
+        if c.saturated_patch and c.saturated_patch[0] <= t_s < c.saturated_patch[1]:
+            _, _, top, left, hh, ww = c.saturated_patch
+            r0, c0 = int(top * c.height), int(left * c.width)
+            photons = photons.copy()
+            photons[r0:r0 + max(1, int(hh * c.height)), c0:c0 + max(1, int(ww * c.width))] = 2.0 * c.detector_max / gain
+        return photons
 
     def _neuropil_weights(self, fluct: float) -> np.ndarray:
         c = self.config
@@ -162,6 +184,7 @@ class Simulator:
                 for ch in range(c.channels):
                     photons = images[ch] * (self.scale[ch] * tr.bleach[k, ch])
                     gain = float(tr.gain[k])
+                    photons = self._artefact(photons, float(tr.time_s[k]), gain)
                     frame, sat, clip = detect(photons, gain_dn_per_photon=gain, dark_dn=c.dark_dn,
                                               read_noise_dn=c.read_noise_dn, bits=c.bits, rng=self._rng_noise)
                     mean_ph = float(photons.mean(dtype=np.float64))

@@ -23,7 +23,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--channels", type=int, default=1, help="channels; 1 and up are structural")
     parser.add_argument("--planes", type=int, default=1, help="planes per time point")
     parser.add_argument("--photons", type=float, default=None, help="mean photons per pixel at the start")
-    parser.add_argument("--bits", type=int, choices=(12, 14, 16), default=12, help="detector bit depth")
+    parser.add_argument("--bits", type=int, choices=range(8, 17), default=None, metavar="N",
+                        help="digitiser bit depth 8..16, stored in 16-bit pages (default 12)")
+    parser.add_argument("--read-noise", type=float, default=None, metavar="DN",
+                        help="Gaussian read noise of the detector, DN (default 8)")
+    parser.add_argument("--shutter-closed", type=float, default=None, metavar="S",
+                        help="the shutter is closed for the first S seconds (dark frames)")
+    parser.add_argument("--saturated-patch", type=float, nargs=2, default=None, metavar=("START_S", "END_S"),
+                        help="a stationary saturated patch (a light leak) over a sixteenth of the field")
+    parser.add_argument("--bright-cells", type=int, default=None, metavar="N",
+                        help="N somata bright enough to saturate the detector")
     parser.add_argument("--pixel-size", type=float, default=1.0, help="µm per px (default 1)")
     parser.add_argument("--z-drift", type=float, default=None, help="focal drift, µm/min (+ deeper)")
     parser.add_argument("--line-offset", type=float, default=0.0, help="odd-row offset, px (+ toward columns)")
@@ -43,8 +52,14 @@ def run(args: argparse.Namespace) -> int:
 
     overrides = {"n_frames": args.frames, "height": args.size[0], "width": args.size[1],
                  "frame_rate_hz": args.rate, "seed": args.seed, "channels": args.channels,
-                 "planes": args.planes, "bits": args.bits, "pixel_size_um": args.pixel_size,
+                 "planes": args.planes, "pixel_size_um": args.pixel_size,
                  "line_offset_px": args.line_offset}
+    for key, value in (("bits", args.bits), ("read_noise_dn", args.read_noise),
+                       ("shutter_closed_s", args.shutter_closed), ("bright_cells", args.bright_cells)):
+        if value is not None:
+            overrides[key] = value
+    if args.saturated_patch is not None:
+        overrides["saturated_patch"] = (*args.saturated_patch, 0.2, 0.55, 0.25, 0.25)
     if args.photons is not None:
         overrides["mean_photons_per_px"] = args.photons
     if args.z_drift is not None:

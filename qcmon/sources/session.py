@@ -182,6 +182,7 @@ class SessionSource:
         self._facts: AcquisitionFacts | None = None
         self._plane_fastest = False
         self._frame_kind: tuple[tuple[int, ...], np.dtype] | None = None
+        self._kind_file: str | None = None  # the one file the frame size/type has come from, or None: several
         self._t0: float | None = None
         self._resume: dict[str, int] = {}
         if isinstance(skip_frames, bool) or not isinstance(skip_frames, int) or skip_frames < 0:
@@ -353,6 +354,7 @@ class SessionSource:
             "given_up": sorted(self._dead),
             "layout": None if self._layout is None else list(self._layout),
             "frame": None if self._frame_kind is None else [list(self._frame_kind[0]), str(self._frame_kind[1])],
+            "kind_file": self._kind_file,
             "t0": self._t0,
         }
 
@@ -370,6 +372,7 @@ class SessionSource:
             self._layout = (int(c), int(z), bool(fast))
         if token.get("frame") is not None:
             self._frame_kind = (tuple(token["frame"][0]), np.dtype(token["frame"][1]))
+        self._kind_file = token.get("kind_file")
         self._t0 = token.get("t0")
         if not files:
             return
@@ -567,10 +570,10 @@ class SessionSource:
             facts.set(key, value, origin)
         for key, value in options.items():
             facts.set(key, value, OPTION)
-        if "bit_depth" not in facts.facts and "dtype" in facts.facts:
+        if "bit_depth" not in facts.facts and facts.get("dtype") is not None:
             try:
                 facts.set("bit_depth", np.dtype(facts.get("dtype")).itemsize * 8, "dtype")
-            except TypeError:  # a corrupt first page without a pixel type: its pages are reported when read
+            except TypeError:  # a damaged page directory: no dtype to speak of (its pages are reported)
                 pass
         return facts
 
@@ -595,8 +598,20 @@ class SessionSource:
             return None
         kind = (data.shape, data.dtype)  # str(dtype) would cost 8 µs a frame
         if self._frame_kind is None:
-            self._frame_kind = kind
-        elif kind != self._frame_kind:
+            self._frame_kind, self._kind_file = kind, stream.path
+        elif kind == self._frame_kind:
+            if self._kind_file is not None and stream.path != self._kind_file:
+                self._kind_file = None  # a second file of this size: it is the session's
+        elif page == 0 and self._kind_file is not None and self._kind_file != stream.path \
+                and kind[1] == self._frame_kind[1]:
+            # Only the first file had the earlier size (a test scan before the session, say): the session goes on
+            # with the new size from this file on; the first file's frames keep their rows. A change after a second
+            # file of the same size is the session's own (skipped pages, as a change of pixel type always is).
+            self._problem(FrameError(
+                f"frame size/type changes from {self._frame_kind[0]} {self._frame_kind[1]} (the first file, "
+                f"{self._kind_file}) to {kind[0]} {kind[1]}; measured anew from here", path=stream.path, page=page))
+            self._frame_kind, self._kind_file = kind, None
+        else:
             self._problem(FrameError(
                 f"frame size/type changed from {self._frame_kind[0]} {self._frame_kind[1]} to {kind[0]} {kind[1]}; "
                 "such pages are skipped", path=stream.path, page=page))

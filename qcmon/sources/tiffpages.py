@@ -239,10 +239,10 @@ def page_problem(page: tifffile.TiffPage) -> str | None:
         return (f"{page.compression.name} compression, for which no decoder is installed (the imagecodecs "
                 "package provides most); cannot be decoded")
     dtype = page.dtype
-    if dtype is None or dtype.kind != "u" or dtype.itemsize > 4:
+    if dtype is None or dtype.kind not in "uif" or dtype.itemsize > 4 or (dtype.kind == "f" and dtype.itemsize < 4):
         return (f"pixel type {dtype} ({page.bitspersample} bits, sample format "
-                f"{getattr(page.sampleformat, 'name', page.sampleformat)}) is not supported; unsigned integers "
-                "of 8 to 32 bits expected")
+                f"{getattr(page.sampleformat, 'name', page.sampleformat)}) is not supported; integers of 8 to 32 "
+                "bits (signed: offset-subtracted data) or 32-bit floats expected")
     if len(page.shape) != 2 or 0 in page.shape:
         return f"page shape {page.shape} is not a 2-D image"
     return None
