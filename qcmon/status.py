@@ -42,6 +42,9 @@ class Status:
         Acquisition facts with origins (``AcquisitionFacts.as_dict()``).
     paused_reason : str
         Non-empty while waiting (e.g. "waiting for frames", "building reference").
+    idle_s : float
+        While watching: seconds since the last new frame once that is unusually long (a few seconds, or three
+        frame intervals), else 0.
     """
 
     folder: str = ""
@@ -58,6 +61,7 @@ class Status:
     forecasts: dict = field(default_factory=dict)
     facts: dict = field(default_factory=dict)
     paused_reason: str = ""
+    idle_s: float = 0.0
 
 
 class Listener(Protocol):

@@ -37,7 +37,8 @@ level, so that a level crossed again and again (a burst of motion) counts as muc
   a ``start`` event carries ``advice`` (what the state likely means and what to check, :mod:`qcmon.advice`)
   and, where that advice touches laser power, gain or the animal, the profile's ``caution``;
 * unknown values (NaN or a missing column) count for no level and keep the current state; a row with an
-  unknown ``time_s`` is skipped;
+  unknown ``time_s`` is skipped; ``displacement_px`` is judged only in rows without ``displacement_um`` (when
+  the profile limits that: the pixel size is unknown), so one movement raises one event;
 * :meth:`ThresholdTracker.close` ends open states at the session's end with ``end`` events whose
   ``closed_by`` is ``"session end"``, and keeps the states as they were (the end is not a recovery).
 
@@ -390,6 +391,8 @@ class _MetricState:
 
 
 _EPS = 1e-6  # s: sums of frame intervals are compared with this tolerance
+#: Metrics judged only in rows where the metric named here is unknown (the pixel size is unknown).
+_FALLBACK = {"displacement_px": "displacement_um"}
 
 
 class ThresholdTracker:
@@ -467,6 +470,9 @@ class ThresholdTracker:
                 if not win:
                     ms.beyond = [0.0, 0.0, 0.0]
             value = _as_float(row.get(metric))
+            if metric in _FALLBACK and _FALLBACK[metric] in self.profile.limits \
+                    and math.isfinite(_as_float(row.get(_FALLBACK[metric]))):
+                value = math.nan  # the same quantity is judged in its physical unit
             now = lim.state_of(value)
             if now == "unknown":
                 continue  # counts for no level; the state is kept
@@ -529,11 +535,10 @@ class ThresholdTracker:
                 msg = (f"{lim.label} {ms.state} still open when the session ended, after {lasted:.1f} s "
                        f"{lim.describe(ms.state)}; last value {lim.show(value)}{where}")
             elif _RANK[target] > _RANK[ms.state]:
-                msg = f"{lim.label} {ms.state} rises to {target} after {lasted:.1f} s: {lim.show(value)}{where}"
+                msg = f"{lim.label} {ms.state} rises to {target} after {lasted:.1f} s{where}"
             else:
-                msg = (f"{lim.label} back from {ms.state} after {lasted:.1f} s: {lim.show(value)}, "
-                       f"{lim.describe(ms.state)} for less than a quarter of the last "
-                       f"{_fmt(2 * lim.persist_s)} s{where}")
+                msg = (f"{lim.label} back from {ms.state} after {lasted:.1f} s: now {lim.show(value)}, "
+                       f"{lim.describe(ms.state)} < ¼ of the last {_fmt(2 * lim.persist_s)} s{where}")
             events.append(Event(kind="end", metric=lim.metric, state=ms.state, value=value,
                                 limit=lim.level(ms.state), frame=frame, time_s=t, started_frame=ms.started_frame,
                                 started_time_s=ms.started_time_s, channel=channel, plane=plane, message=msg,
@@ -546,9 +551,9 @@ class ThresholdTracker:
             peak = vals[0] if lim.direction == "below" else vals[-1]
             if lim.persist_s > 0:
                 spent = ms.beyond[level]
-                how = (f"{lim.describe(target)} for {spent:.1f} s of the last {_fmt(2 * lim.persist_s)} s "
-                       f"(first at t={beyond[0][0]:.2f} s, frame {beyond[0][2]}); typical {lim.show(typical)}, "
-                       f"{'lowest' if lim.direction == 'below' else 'peak'} {lim.show(peak)}")
+                how = (f"{lim.show(typical)} typical, {'lowest' if lim.direction == 'below' else 'peak'} "
+                       f"{lim.show(peak)}; {lim.describe(target)} for {spent:.1f} s of the last "
+                       f"{_fmt(2 * lim.persist_s)} s (from t={beyond[0][0]:.1f} s, frame {beyond[0][2]})")
             else:
                 how = f"{lim.describe(target)}: {lim.show(value)}"
             msg = f"{lim.label} {target}: {how}{where}"

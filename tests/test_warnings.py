@@ -52,11 +52,16 @@ def test_back_and_forth_burst_of_3_s_alarms():
     alarm = starts[1]
     assert 8.0 < alarm.time_s < 8.0 + 3.0  # during the burst (frames 240–330)
     assert "back and forth" in alarm.advice
-    # without a pixel size (px levels 4 / 10): 8 px is a warning, not an alarm
-    px = [e for e in events if e.kind == "start" and e.metric == "displacement_px"]
-    assert [e.state for e in px] == ["warning"]
     # the burst ended: so did the states
     assert tr.overall == "normal"
+    # with the pixel size known, the px levels stay silent: one movement, one series of events
+    assert not [e for e in events if e.metric == "displacement_px"]
+    # without a pixel size (px levels 4 / 10): 8 px is a warning, not an alarm
+    rows = _burst_rows()
+    for r in rows:
+        r["displacement_um"] = math.nan
+    _, events = _track(prof, rows)
+    assert {(e.metric, e.state) for e in events if e.kind == "start"} == {("displacement_px", "warning")}
 
 
 @pytest.mark.parametrize("seed", range(3))
