@@ -6,6 +6,7 @@ The tracker's rule (qcmon.thresholds) is checked on rows made here and, end to e
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -214,3 +215,130 @@ def test_the_demo_scenarios_planted_burst_warns_and_agrees_with_exclude_csv():
         if "displacement" in r.reason:
             assert t0 - 0.1 <= r.first_frame / FPS and r.last_frame / FPS <= t1 + 3.0, r
     assert np.nanmax(np.hypot(truth["dx_px"], truth["dy_px"])) > prof.limits["displacement_um"].alarm
+
+
+def test_nothing_arriving_is_news_and_a_new_reference_waits_for_frames(tmp_path, monkeypatch):
+    # A watched folder gets one chunk of frames, then nothing: the status says how long no frame came, an idle
+    # event (with advice) is recorded, r says the reference waits for frames; the next chunk resumes.
+    import shutil
+    import threading
+    import time
+
+    import qcmon.live as live
+    from qcmon.console import format_event
+    from qcmon.events import Event
+    from qcmon.live import Monitor, MonitorOptions
+    from qcmon.simulate import write_session
+    from qcmon.simulate.scenarios import scenario_config
+
+    monkeypatch.setattr(live, "IDLE_SHOW_S", 0.3)
+    monkeypatch.setattr(live, "IDLE_EVENT_S", 1.0)
+    src = tmp_path / "src"
+    write_session(scenario_config("clean", n_frames=80, height=48, width=48, seed=4), src, layout="chunks",
+                  chunk_frames=40)
+    chunks = sorted((src / "frames").glob("*.tif"))
+    assert len(chunks) == 2
+    watched = tmp_path / "watched"
+    watched.mkdir()
+    shutil.copy(chunks[0], watched / chunks[0].name)
+
+    class Listener:
+        def __init__(self):
+            self.events: list[Event] = []
+            self.idle_seen = 0.0
+
+        def on_rows(self, rows):
+            pass
+
+        def on_event(self, ev):
+            self.events.append(ev)
+
+        def on_status(self, st):
+            self.idle_seen = max(self.idle_seen, st.idle_s)
+
+    lst = Listener()
+    mon = Monitor(MonitorOptions(path=watched, out_dir=tmp_path / "rec", poll_interval_s=0.1, resume=False))
+    result = {}
+    th = threading.Thread(target=lambda: result.update(mon.run(lst)))
+    th.start()
+    try:
+        def wait_for(pred, what, timeout=30.0):
+            t0 = time.monotonic()
+            while not pred():
+                assert time.monotonic() - t0 < timeout, f"no {what} within {timeout} s"
+                time.sleep(0.05)
+
+        wait_for(lambda: any(e.kind == "idle" for e in lst.events), "idle event")
+        idle = next(e for e in lst.events if e.kind == "idle")
+        assert "no new frame for" in idle.message and idle.advice
+        assert lst.idle_seen >= 0.3
+        assert "no new frame" in format_event(idle)
+        mon.new_reference()
+        wait_for(lambda: any(e.kind == "reference" for e in lst.events), "reference event")
+        ref = next(e for e in lst.events if e.kind == "reference")
+        assert "waits for frames" in ref.message
+        shutil.copy(chunks[1], watched / chunks[1].name)
+        wait_for(lambda: any(e.kind == "resumed" for e in lst.events), "resumed event")
+    finally:
+        mon.stop()
+        th.join(60)
+    kinds = [json.loads(line)["kind"] for line in (tmp_path / "rec" / "events.jsonl").read_text().splitlines()]
+    assert "idle" in kinds and "resumed" in kinds
+
+
+def test_console_and_dashboard_show_advice_caution_and_no_recovery_at_the_end():
+    from qcmon.console import PlainConsole
+    from qcmon.dashboard.panels import event_cells
+    import io
+
+    prof = load_profile("default")
+    tr, events = _track(prof, _step_rows("saturated_frac", 0.0, 0.05))
+    closing = tr.close()
+    out = io.StringIO()
+    console = PlainConsole(out)
+    for ev in events + closing:
+        console.on_event(ev)
+    text = out.getvalue()
+    assert "→ 5 % of pixels saturated" in text
+    assert text.count("caution: " + prof.caution) == 1  # in full once, "see caution" beside each advice after
+    assert "still open at the end" in text
+    assert tr.overall == "alarm"  # the states keep what the session ended in
+    when, stream, what, detail = event_cells(closing[0])
+    assert what == "■ alarm open at end" and "✓" not in what
+
+
+def test_after_a_resume_the_status_counts_every_frame_of_the_session(tmp_path):
+    import shutil
+
+    from qcmon.live import Monitor, MonitorOptions
+    from qcmon.simulate import write_session
+    from qcmon.simulate.scenarios import scenario_config
+
+    src = tmp_path / "src"
+    write_session(scenario_config("clean", n_frames=80, height=48, width=48, seed=4), src, layout="chunks",
+                  chunk_frames=40)
+    chunks = sorted((src / "frames").glob("*.tif"))
+    watched = tmp_path / "watched"
+    watched.mkdir()
+    shutil.copy(chunks[0], watched / chunks[0].name)
+
+    class Last:
+        status = None
+
+        def on_rows(self, rows):
+            pass
+
+        def on_event(self, ev):
+            pass
+
+        def on_status(self, st):
+            self.status = st
+
+    opts = dict(path=watched, out_dir=tmp_path / "rec", follow=False)
+    Monitor(MonitorOptions(**opts, resume=False)).run(Last())
+    shutil.copy(chunks[1], watched / chunks[1].name)
+    last = Last()
+    Monitor(MonitorOptions(**opts, resume=True)).run(last)
+    assert last.status.frames_measured == 80  # 40 recorded before, 40 new
+    rows = (tmp_path / "rec" / "traces.csv").read_text().splitlines()
+    assert len(rows) == 1 + 80  # and none recorded twice
