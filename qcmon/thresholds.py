@@ -23,11 +23,12 @@ file, the key and the allowed values, when it is loaded — before any frame is 
 The tracker's rule (per channel, plane and metric, on session time ``time_s``) judges the time spent beyond a
 level, so that a level crossed again and again (a burst of motion) counts as much as one long excursion:
 
-* each frame stands for the time since the stream's previous frame (at most ``persist_s / 2``, so that a pause
-  in the acquisition, or a single frame at a slow rate, never counts for the whole persistence time);
+* each frame stands for the time since the stream's previous frame, at most ``persist_s`` (so that one frame,
+  after a pause in the acquisition or at a slow frame rate, never enters a state alone);
 * a metric **enters** a more severe state when its value was beyond that state's level for more than
-  ``persist_s`` seconds of the trailing window of ``2 × persist_s`` seconds (one noisy frame never does; a
-  steady excursion enters after ``persist_s``, as before; a burst beyond the level more than half the time does);
+  ``persist_s`` seconds of the trailing window of ``2 × persist_s`` seconds (``2.5`` frame intervals when frames
+  are further apart; one noisy frame never does; a steady excursion enters after ``persist_s``, as before; a
+  burst beyond the level more than half the time does);
 * it **leaves** the state when less than ``persist_s / 2`` of the trailing window was beyond the level (a
   steady return ends it after ``1.5 × persist_s``); the new state is the most severe lower level still beyond
   for at least ``persist_s / 2`` of the window, else normal;
@@ -388,6 +389,7 @@ class _MetricState:
     window: deque = field(default_factory=deque)
     # seconds of the window spent at or beyond the warning (index 1) and alarm (index 2) levels
     beyond: list = field(default_factory=lambda: [0.0, 0.0, 0.0])
+    span: float = 0.0  # length of the window at the last frame, s
 
 
 _EPS = 1e-6  # s: sums of frame intervals are compared with this tolerance
@@ -462,8 +464,11 @@ class ThresholdTracker:
             ms = per[metric]
             p = lim.persist_s
             win = ms.window
-            # forget frames older than the window (2 × persist_s)
-            while win and win[0][0] <= t - 2.0 * p + _EPS * 1e-3:
+            # forget frames older than the window: 2 × persist_s, or 2.5 frame intervals at slow frame rates (so
+            # that the window always holds the previous frames)
+            span = max(2.0 * p, 2.5 * interval)
+            ms.span = span
+            while win and win[0][0] <= t - span + _EPS * 1e-3:
                 old = win.popleft()
                 for level in range(1, old[2] + 1):
                     ms.beyond[level] -= old[1]
@@ -477,7 +482,7 @@ class ThresholdTracker:
             if now == "unknown":
                 continue  # counts for no level; the state is kept
             rank = _RANK[now]
-            weight = min(interval, 0.5 * p)  # a gap counts for at most half the persistence time
+            weight = min(interval, p)  # one frame (after a gap, or at a slow rate) never enters a state alone
             if p > 0:
                 win.append((t, weight, rank, value, frame))
                 for level in range(1, rank + 1):
@@ -538,7 +543,7 @@ class ThresholdTracker:
                 msg = f"{lim.label} {ms.state} rises to {target} after {lasted:.1f} s{where}"
             else:
                 msg = (f"{lim.label} back from {ms.state} after {lasted:.1f} s: now {lim.show(value)}, "
-                       f"{lim.describe(ms.state)} < ¼ of the last {_fmt(2 * lim.persist_s)} s{where}")
+                       f"{lim.describe(ms.state)} < ¼ of the last {_fmt(ms.span)} s{where}")
             events.append(Event(kind="end", metric=lim.metric, state=ms.state, value=value,
                                 limit=lim.level(ms.state), frame=frame, time_s=t, started_frame=ms.started_frame,
                                 started_time_s=ms.started_time_s, channel=channel, plane=plane, message=msg,
@@ -553,7 +558,7 @@ class ThresholdTracker:
                 spent = ms.beyond[level]
                 how = (f"{lim.show(typical)} typical, {'lowest' if lim.direction == 'below' else 'peak'} "
                        f"{lim.show(peak)}; {lim.describe(target)} for {spent:.1f} s of the last "
-                       f"{_fmt(2 * lim.persist_s)} s (from t={beyond[0][0]:.1f} s, frame {beyond[0][2]})")
+                       f"{_fmt(ms.span)} s (from t={beyond[0][0]:.1f} s, frame {beyond[0][2]})")
             else:
                 how = f"{lim.describe(target)}: {lim.show(value)}"
             msg = f"{lim.label} {target}: {how}{where}"

@@ -342,3 +342,26 @@ def test_after_a_resume_the_status_counts_every_frame_of_the_session(tmp_path):
     assert last.status.frames_measured == 80  # 40 recorded before, 40 new
     rows = (tmp_path / "rec" / "traces.csv").read_text().splitlines()
     assert len(rows) == 1 + 80  # and none recorded twice
+
+
+@pytest.mark.parametrize("fps", [0.5, 1.0, 3.0, 100.0])
+def test_the_rule_holds_at_slow_and_fast_frame_rates(fps):
+    # volumetric imaging gives a volume every few seconds; cameras run at 100 Hz and more (from memory)
+    prof = load_profile("default")
+
+    def rows(values):
+        return [{"frame": i, "channel": 0, "plane": 0, "time_s": i / fps, "displacement_um": v}
+                for i, v in enumerate(values)]
+
+    n = int(max(40, 20 * fps))
+    one = [0.5] * n
+    one[n // 2] = 50.0
+    _, events = _track(prof, rows(one))
+    assert events == []  # one wild frame, at any rate
+    step = [0.5] * n + [7.0] * n + [0.5] * n
+    tr, events = _track(prof, rows(step))
+    starts = [e for e in events if e.kind == "start"]
+    assert starts and starts[-1].state == "alarm"
+    delay = starts[-1].time_s - n / fps
+    assert delay <= max(1.0, 1.0 / fps) + 1.0 / fps + 1e-9  # persist_s, or the next frame at slow rates
+    assert tr.overall == "normal"  # and it ended after the step
