@@ -241,6 +241,7 @@ class Monitor:
                 self.facts = source.facts
                 if n:
                     idle_since = time.monotonic()
+                    run.frames_read += n
                 if o.follow:
                     self._check_idle(run, idle_since, record, listeners)
                 self._handle_commands(run, record, listeners)
@@ -444,9 +445,13 @@ class Monitor:
         """While watching: how long no new frame arrived (``status.idle_s``); an ``idle`` event after
         :data:`IDLE_EVENT_S` (or five frame intervals at slow rates) and a ``resumed`` one when frames come again."""
         status = run.status
-        if run.last_row is None:  # nothing measured yet: "waiting for frames" is no news
+        if run.last_row is None:  # nothing measured yet: say what the watch waits for
             status.idle_s = 0.0
+            if status.paused_reason in ("", WAITING_FIRST, WAITING_REFERENCE):
+                status.paused_reason = WAITING_REFERENCE if run.frames_read else WAITING_FIRST
             return
+        if status.paused_reason in (WAITING_FIRST, WAITING_REFERENCE):
+            status.paused_reason = ""
         idle = time.monotonic() - idle_since
         rate = status.frame_rate_hz
         interval = 1.0 / rate if isinstance(rate, float) and math.isfinite(rate) and rate > 0 else 0.0
@@ -635,6 +640,8 @@ class Monitor:
         return paths
 
 
+WAITING_FIRST = "waiting for the first frame"
+WAITING_REFERENCE = "building the reference from the first frames"
 #: s without a new frame, while watching, before the header says so (common practice, no source).
 IDLE_SHOW_S = 3.0
 #: s without a new frame before an ``idle`` event is recorded (common practice, no source).
@@ -710,6 +717,7 @@ class _RunState:
     behind: bool = False
     split: "SplitRun | None" = None
     notices: list = field(default_factory=list)  # problems found when the engine starts, recorded with its rows
+    frames_read: int = 0  # frames read in this run (the first ones build the reference before any row)
     idle_reported: bool = False  # an idle event was recorded for the current pause
     idle_event_s: float = 0.0  # length of the current reported pause, s (0: none)
 

@@ -365,3 +365,36 @@ def test_the_rule_holds_at_slow_and_fast_frame_rates(fps):
     delay = starts[-1].time_s - n / fps
     assert delay <= max(1.0, 1.0 / fps) + 1.0 / fps + 1e-9  # persist_s, or the next frame at slow rates
     assert tr.overall == "normal"  # and it ended after the step
+
+
+def test_an_empty_folder_says_it_waits_for_the_first_frame(tmp_path):
+    import threading
+    import time
+
+    from qcmon.live import WAITING_FIRST, Monitor, MonitorOptions
+
+    seen = []
+
+    class Listener:
+        def on_rows(self, rows):
+            pass
+
+        def on_event(self, ev):
+            pass
+
+        def on_status(self, st):
+            seen.append(st.paused_reason)
+
+    (tmp_path / "watched").mkdir()
+    mon = Monitor(MonitorOptions(path=tmp_path / "watched", out_dir=tmp_path / "rec", poll_interval_s=0.1,
+                                 resume=False))
+    th = threading.Thread(target=mon.run, args=(Listener(),))
+    th.start()
+    try:
+        t0 = time.monotonic()
+        while WAITING_FIRST not in seen and time.monotonic() - t0 < 20:
+            time.sleep(0.05)
+    finally:
+        mon.stop()
+        th.join(60)
+    assert WAITING_FIRST in seen
