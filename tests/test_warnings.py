@@ -80,6 +80,8 @@ def test_scattered_noisy_frames_do_not_warn(seed):
 def test_burst_on_a_real_specimen_fails_the_motion_verdict_and_excludes_its_frames():
     # A real image (outside data) moved by known shifts, measured by the engine: 4 s still, a 3-s ±8 px
     # back-and-forth burst along x at 2 Hz, 3 s still. The verdict, the events and exclude.csv must agree.
+    from threadpoolctl import threadpool_limits
+
     from tests.outside_data import detect, nuclei_2d, specimen_crop
 
     img = nuclei_2d().astype(np.float64)
@@ -88,12 +90,14 @@ def test_burst_on_a_real_specimen_fails_the_motion_verdict_and_excludes_its_fram
     n, start, stop = 300, 120, 210
     eng = Engine(EngineSettings(frame_rate_hz=FPS, pixel_size_um=1.0, bit_depth=12))
     rows = []
-    for i in range(n):
-        dx = 8.0 * math.sin(2 * math.pi * 2.0 * (i - start) / FPS) if start <= i < stop else 0.0
-        clean = specimen_crop(photons, (96, 96), 0.0, dx, margin=16)
-        data = detect(clean, rng, gain=4.0, offset=100.0, read_noise_dn=2.0, bits=12)
-        rows += eng.process(Frame(data=data, index=i, time_s=i / FPS))
-    rows += eng.flush()
+    still = specimen_crop(photons, (96, 96), 0.0, 0.0, margin=16)
+    with threadpool_limits(limits=1, user_api="blas"):  # as the monitor runs the engine
+        for i in range(n):
+            dx = 8.0 * math.sin(2 * math.pi * 2.0 * (i - start) / FPS) if start <= i < stop else 0.0
+            clean = specimen_crop(photons, (96, 96), 0.0, dx, margin=16) if dx else still
+            data = detect(clean, rng, gain=4.0, offset=100.0, read_noise_dn=2.0, bits=12)
+            rows += eng.process(Frame(data=data, index=i, time_s=i / FPS))
+        rows += eng.flush()
     assert len(rows) == n
     # the engine follows the planted shifts (sanity of the input, not the point of the test)
     dx = np.array([r["dx_px"] for r in rows])
@@ -187,6 +191,8 @@ def test_fraction_events_use_percent_like_the_panel():
 def test_the_demo_scenarios_planted_burst_warns_and_agrees_with_exclude_csv():
     # The demo scenario (qcmon.simulate, our own) plants strong motion at 30 % of the session for 8 %. This is
     # a check of our own simulator's scenario only; the real-specimen burst above is the outside check.
+    from threadpoolctl import threadpool_limits
+
     from qcmon.simulate import planted_events, simulate
     from qcmon.simulate.scenarios import scenario_config
 
@@ -196,9 +202,10 @@ def test_the_demo_scenarios_planted_burst_warns_and_agrees_with_exclude_csv():
     (burst,) = [e for e in planted_events(cfg) if e["kind"] == "motion_burst"]
     eng = Engine(EngineSettings(frame_rate_hz=FPS, pixel_size_um=cfg.pixel_size_um, bit_depth=cfg.bits))
     rows = []
-    for i, page in enumerate(sim.frames_for(0, 0)):
-        rows += eng.process(Frame(data=page, index=i, time_s=i / FPS))
-    rows += eng.flush()
+    with threadpool_limits(limits=1, user_api="blas"):  # as the monitor runs the engine
+        for i, page in enumerate(sim.frames_for(0, 0)):
+            rows += eng.process(Frame(data=page, index=i, time_s=i / FPS))
+        rows += eng.flush()
     prof = load_profile("default")
     tracker = ThresholdTracker(prof)
     events = [ev for r in rows for ev in tracker.update(r)] + tracker.close()
