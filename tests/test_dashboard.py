@@ -613,3 +613,26 @@ def test_event_cells_have_no_wall_clock():
     assert when == "1:00:00–1:02:05" and stream == "c0 p0" and what == "✓ warning ended"
     assert "10:00" not in detail
     assert format_clock(float("nan")) == "—"
+
+
+async def test_long_events_wrap_with_their_advice_and_nothing_is_cut():
+    # 80×24: a warning with a long message and advice wraps inside the event box; no line is wider than the
+    # box less its scrollbar column, and the whole advice is there to read
+    advice = ("the field moves back and forth by up to 8.4 µm (typical 6.2 µm) — the animal is probably moving; "
+              "check the animal and the head fixation (see caution: qcmon never changes the microscope)")
+    ev = Event(kind="start", metric="displacement_um", state="warning", value=6.2, limit=2.0, frame=10,
+               time_s=5.0, started_frame=10, started_time_s=5.0, advice=advice, caution="local rules",
+               message="Displacement warning: 6.2 µm typical, peak 8.4 µm; above 2 µm (warning level) for 1.0 s "
+                       "of the last 2 s (from t=4.0 s, frame 8) (channel 0, plane 0)")
+    app, monitor = make_app(script(0, 40) + [("event", ev)])
+    async with app.run_test(size=(80, 24)) as pilot:
+        await replayed(pilot, app, monitor)
+        log = app.query_one(EventList)
+        await until(pilot, lambda: any(advice in r for r in log.plain_rows()), "the advice row")
+        width = log.scrollable_content_region.width
+        assert width <= log.region.width - 2 - 1  # borders and the scrollbar column
+        texts = [strip.text for strip in log.lines]
+        assert all(len(t.rstrip()) <= width for t in texts), texts
+        joined = " ".join(t.strip() for t in texts)
+        assert "→" in joined and "head fixation" in joined and "(channel 0, plane 0)" not in joined
+        await finish(pilot, app, monitor)

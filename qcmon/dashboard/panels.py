@@ -356,7 +356,9 @@ class EventList(RichLog):
     MAX_ROWS = 2000
 
     def __init__(self, *, id: str | None = None) -> None:
-        super().__init__(id=id, wrap=True, markup=False, highlight=False, auto_scroll=True, max_lines=8 * 2000)
+        # min_width: RichLog wraps at no less than this (78 by default: one column cut in an 80-column terminal)
+        super().__init__(id=id, wrap=True, markup=False, highlight=False, auto_scroll=True, max_lines=8 * 2000,
+                         min_width=20)
         self._rows: list[tuple[str, Text]] = []
         self._width = 0
 
