@@ -22,6 +22,7 @@ class PlainConsole:
         self._last = -math.inf
         self._lock = threading.Lock()
         self.latest: dict[tuple[int, int], dict] = {}
+        self._cautioned = False
 
     def _print(self, text: str) -> None:
         with self._lock:
@@ -32,7 +33,11 @@ class PlainConsole:
             self.latest[(r["channel"], r["plane"])] = r
 
     def on_event(self, ev: Event) -> None:
-        self._print(format_event(ev))
+        text = format_event(ev)
+        if ev.caution and not self._cautioned:  # the profile's caution in full once, beside the first such advice
+            text += "\n" + " " * 13 + "caution: " + ev.caution
+            self._cautioned = True
+        self._print(text)
 
     def on_status(self, st: Status) -> None:
         now = time.monotonic()
@@ -48,10 +53,17 @@ def format_event(ev: Event) -> str:
     if ev.kind in ("start", "end"):
         sym = SYMBOLS.get(ev.state, "?")
         verb = "begins" if ev.kind == "start" else "ends"
+        if ev.kind == "end" and ev.closed_by:
+            verb = "still open at the end"
         head = f"[{t}] {sym} {ev.state} {verb}{where}: "
-        return head + (ev.message or f"{ev.metric} = {ev.value:.4g} (limit {ev.limit:.4g}) at frame {ev.frame}")
-    label = {"note": "note", "reference": "reference", "problem": "input problem"}.get(ev.kind, ev.kind)
-    return f"[{t}] {label}{where}: {ev.message}"
+        text = head + (ev.message or f"{ev.metric} = {ev.value:.4g} (limit {ev.limit:.4g}) at frame {ev.frame}")
+    else:
+        label = {"note": "note", "reference": "reference", "problem": "input problem",
+                 "idle": "no new frame", "resumed": "frames again"}.get(ev.kind, ev.kind)
+        text = f"[{t}] {label}{where}: {ev.message}"
+    if ev.advice:
+        text += "\n" + " " * 13 + "→ " + ev.advice
+    return text
 
 
 def format_status(st: Status, latest: dict[tuple[int, int], dict]) -> str:
@@ -79,6 +91,8 @@ def format_status(st: Status, latest: dict[tuple[int, int], dict]) -> str:
                          + (f" ({st.range_text})" if st.range_text else ""))
         if math.isfinite(r.get("snr", math.nan)):
             parts.append(f"SNR {r['snr']:.2f}")
+    if getattr(st, "idle_s", 0.0):
+        parts.append(f"no new frame for {st.idle_s:.0f} s")
     if st.paused_reason:
         parts.append(st.paused_reason)
     return " | ".join(parts)

@@ -20,7 +20,8 @@ class Event:
     kind : str
         "start" (a state begins), "end" (it ends), "note" (text from the experimenter), "reference" (a new
         reference was taken), "problem" (bad input that was skipped), "detector" (a level of the detector's range
-        found in the data or withdrawn).
+        found in the data or withdrawn), "idle" (no new frame for a while while watching), "resumed" (frames
+        arrive again after an idle event).
     metric : str
         Metric name as in ``traces.csv`` (e.g. "displacement_um"); "" for notes.
     state : str
@@ -36,6 +37,15 @@ class Event:
         One line for people.
     wall_time : str
         ISO 8601 local time when the event was emitted.
+    advice : str
+        For warning/alarm starts (and other events people should act on): what it likely means and what to
+        check, in one or two sentences; "" otherwise.
+    caution : str
+        The profile's caution text when the advice touches laser power, detector gain or the animal; "" otherwise.
+        Show it beside the advice.
+    closed_by : str
+        For "end" events: "" when the value came back within its level, "session end" when the session ended
+        while the state was open (not a recovery).
     """
 
     kind: str
@@ -51,6 +61,9 @@ class Event:
     plane: int = 0
     message: str = ""
     wall_time: str = ""
+    advice: str = ""
+    caution: str = ""
+    closed_by: str = ""
 
     def to_json(self) -> str:
         d = asdict(self)

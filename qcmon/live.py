@@ -30,6 +30,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from qcmon._memory import keep_freed_memory
+from qcmon.advice import idle_advice
 from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError, display_path
 from qcmon.events import Event
@@ -260,6 +261,9 @@ class Monitor:
                 self.facts = source.facts
                 if n:
                     idle_since = time.monotonic()
+                    run.frames_read += n
+                if o.follow:
+                    self._check_idle(run, idle_since, record, listeners)
                 self._handle_commands(run, record, listeners)
                 now = time.monotonic()
                 if now - last_status >= (0.25 if listeners else o.status_every_s):
@@ -444,6 +448,7 @@ class Monitor:
                     self._emit(ev, record, listeners)
         if run.split is not None and rows:
             rows = run.split.continuity.apply(rows)
+        run.status.frames_measured += len(rows)  # every frame of the session, those replayed on resume too
         if run.done:
             new = [r for r in rows if r["frame"] > run.done.get((r["channel"], r["plane"]), -1)]
             if len(new) < len(rows):
@@ -471,7 +476,6 @@ class Monitor:
         for lst in listeners:
             lst.on_rows(rows)
         run.last_row = rows[-1]
-        run.status.frames_measured += len(rows)
         run.status.current_file = str(rows[-1]["source"])
         run.status.elapsed_s = float(rows[-1]["time_s"])
 
@@ -507,6 +511,42 @@ class Monitor:
         if ev.kind == "start" and ev.state == "alarm" and self.options.on_alarm:
             self._run_on_alarm(ev)
 
+    def _check_idle(self, run: "_RunState", idle_since: float, record, listeners) -> None:
+        """While watching: how long no new frame arrived (``status.idle_s``); an ``idle`` event after
+        :data:`IDLE_EVENT_S` (or five frame intervals at slow rates) and a ``resumed`` one when frames come again."""
+        status = run.status
+        if run.last_row is None:  # nothing measured yet: say what the watch waits for
+            status.idle_s = 0.0
+            if status.paused_reason in ("", WAITING_FIRST, WAITING_REFERENCE):
+                status.paused_reason = WAITING_REFERENCE if run.frames_read else WAITING_FIRST
+            return
+        if status.paused_reason in (WAITING_FIRST, WAITING_REFERENCE):
+            status.paused_reason = ""
+        idle = time.monotonic() - idle_since
+        rate = status.frame_rate_hz
+        interval = 1.0 / rate if isinstance(rate, float) and math.isfinite(rate) and rate > 0 else 0.0
+        if idle < max(IDLE_SHOW_S, 3 * interval):
+            if run.idle_event_s:
+                t = float(run.last_row["time_s"])
+                self._emit(Event(kind="resumed", frame=int(run.last_row["frame"]), time_s=t,
+                                 started_frame=int(run.last_row["frame"]), started_time_s=t,
+                                 message=f"frames arrive again after a pause of about {run.idle_event_s:.0f} s"),
+                           record, listeners)
+                run.idle_event_s = 0.0
+            run.idle_reported = False
+            status.idle_s = 0.0
+            return
+        status.idle_s = idle
+        if idle >= max(IDLE_EVENT_S, 5 * interval):
+            run.idle_event_s = idle
+            if not run.idle_reported:
+                run.idle_reported = True
+                t = float(run.last_row["time_s"])
+                self._emit(Event(kind="idle", frame=int(run.last_row["frame"]), time_s=t,
+                                 started_frame=int(run.last_row["frame"]), started_time_s=t,
+                                 message=f"no new frame for {idle:.0f} s (the last one at t={t:.1f} s)",
+                                 advice=idle_advice(idle)), record, listeners)
+
     def _problem_to(self, record: SessionRecord, listeners):
         def report(err: Exception) -> None:
             msg = str(err)
@@ -531,8 +571,10 @@ class Monitor:
             elif cmd[0] == "reference":
                 if engine is not None:
                     engine.new_reference(cmd[1], cmd[2])
+                waiting = (f"; no new frame for {run.status.idle_s:.0f} s: the reference waits for frames"
+                           if run.status.idle_s > 0 else "")
                 self._emit(Event(kind="reference", frame=frame, time_s=t, started_frame=frame, started_time_s=t,
-                                 message="new reference requested: built from the next frames"),
+                                 message="new reference requested: built from the next frames" + waiting),
                            record, listeners)
 
     def _update_status(self, run: "_RunState", source, listeners) -> None:
@@ -552,11 +594,11 @@ class Monitor:
             # a watched folder where nothing readable appears says so (and how many files were refused)
             problems = len(source.problems)
             status.paused_reason = (f"no readable frame yet: {problems} file problem{'s' if problems != 1 else ''}"
-                                    if problems else "no frame file yet")
+                                    if problems else WAITING_FIRST)
         elif engine is None and status.paused_reason == "session ended":
             status.paused_reason = f"session ended without a readable frame ({len(source.problems)} file problems)"
         if engine is not None:
-            if status.paused_reason.startswith(("no readable frame yet", "no frame file yet")):
+            if status.paused_reason.startswith("no readable frame yet"):
                 status.paused_reason = ""
             status.streams = engine.streams
             if engine.streams:
@@ -684,6 +726,13 @@ class Monitor:
         return paths
 
 
+WAITING_FIRST = "waiting for the first frame"
+WAITING_REFERENCE = "building the reference from the first frames"
+#: s without a new frame, while watching, before the header says so (common practice, no source).
+IDLE_SHOW_S = 3.0
+#: s without a new frame before an ``idle`` event is recorded (common practice, no source).
+IDLE_EVENT_S = 10.0
+
 #: Frames read per poll: bounds memory and keeps the display alive while a backlog is measured.
 _BATCH = 256
 
@@ -756,6 +805,9 @@ class _RunState:
     notices: list = field(default_factory=list)  # problems found when the engine starts, recorded with its rows
     untimed: bool = False  # the engine runs without a frame rate (and the frames carry no timestamps)
     pace: "PaceEstimate" = field(default_factory=lambda: PaceEstimate())
+    frames_read: int = 0  # frames read in this run (the first ones build the reference before any row)
+    idle_reported: bool = False  # an idle event was recorded for the current pause
+    idle_event_s: float = 0.0  # length of the current reported pause, s (0: none)
 
 
 class PaceEstimate:

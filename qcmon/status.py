@@ -45,6 +45,9 @@ class Status:
     range_text : str
         The detector's saturation level and where it came from (first stream), e.g. "saturates at 4095
         (inferred)"; "" before it is known.
+    idle_s : float
+        While watching: seconds since the last new frame once that is unusually long (a few seconds, or three
+        frame intervals), else 0.
     """
 
     folder: str = ""
@@ -62,6 +65,7 @@ class Status:
     facts: dict = field(default_factory=dict)
     paused_reason: str = ""
     range_text: str = ""
+    idle_s: float = 0.0
 
 
 class Listener(Protocol):

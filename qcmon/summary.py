@@ -52,8 +52,9 @@ key                                unit       meaning
 ``line_offset.median_px``          px         median ``line_offset_px``
 ``line_offset.max_abs_px``         px         largest ``|line_offset_px|``
 ``<group>.verdict``                           ``"pass"`` / ``"warning"`` / ``"fail"`` from the threshold events of
-                                              the group's metrics; ``"unknown"`` when the profile sets no limit
-                                              for them or there is no data
+                                              the group's metrics (at least ``"warning"`` when exclude.csv lists
+                                              frames of the group beyond its alarm level); ``"unknown"`` when
+                                              the profile sets no limit for them or there is no data
 ``<group>.warning_s``              s          session time spent in warning (from the events)
 ``<group>.alarm_s``                s          session time spent in alarm (from the events)
 ``streams``                                   list, one entry per (channel, plane): ``channel``, ``plane``,
@@ -274,6 +275,15 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
             g["verdict"] = "warning"
         else:
             g["verdict"] = "pass" if limited else "unknown"
+        # frames excluded for a value beyond the alarm level (too briefly for a declared alarm) cannot sit under
+        # a "pass": the group is at least a warning, and the notes say why
+        if g["verdict"] in ("pass", "unknown"):
+            brief = sum(int(_beyond_alarm(traces, idx, profile.limits[m]).sum()) for m in metrics
+                        if m in _EXCLUDE_BY_VALUE and m in profile.limits)
+            if brief:
+                g["verdict"] = "warning"
+                notes.append(f"channel {key[0]}, plane {key[1]}: {group} is a warning, not a pass: {brief} "
+                             f"frame(s) beyond the alarm level, too briefly for an alarm, are listed in exclude.csv")
         if _VERDICT_RANK[g["verdict"]] > _VERDICT_RANK[worst]:
             worst = g["verdict"]
     out["verdict"] = worst
@@ -438,10 +448,7 @@ def exclude_ranges(traces: Mapping[str, np.ndarray], events: Sequence[Event], pr
             lim = profile.limits.get(metric)
             if lim is None:
                 continue
-            v = np.asarray(traces[metric], dtype=float)[idx]
-            with np.errstate(invalid="ignore"):
-                a = np.abs(v) if lim.direction == "abs_above" else v
-                beyond = a < lim.alarm if lim.direction == "below" else a > lim.alarm
+            beyond = _beyond_alarm(traces, idx, lim)
             if beyond.any():
                 masks[f"{metric} beyond alarm level"] = beyond
         if not masks:
@@ -454,6 +461,14 @@ def exclude_ranges(traces: Mapping[str, np.ndarray], events: Sequence[Event], pr
             why = "; ".join(r for r, m in zip(reasons, stack) if m[lo:hi].any())
             out.append(ExcludeRange(key[0], key[1], int(frames[lo]), int(frames[hi - 1]), why))
     return out
+
+
+def _beyond_alarm(traces, idx, lim) -> np.ndarray:
+    """Rows ``idx`` whose value of ``lim.metric`` is beyond its alarm level (NaN is not)."""
+    v = np.asarray(traces[lim.metric], dtype=float)[idx]
+    with np.errstate(invalid="ignore"):
+        a = np.abs(v) if lim.direction == "abs_above" else v
+        return a < lim.alarm if lim.direction == "below" else a > lim.alarm
 
 
 def exclude_csv(ranges: Iterable[ExcludeRange]) -> str:

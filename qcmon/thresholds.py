@@ -20,19 +20,33 @@ Every metric is a column of ``traces.csv`` (:mod:`qcmon.columns`). A profile tha
 only the keys it names (per metric). An invalid profile raises :class:`qcmon.errors.ProfileError` naming the
 file, the key and the allowed values, when it is loaded — before any frame is measured.
 
-The tracker's rule (per channel, plane and metric, on session time ``time_s``):
+The tracker's rule (per channel, plane and metric, on session time ``time_s``) judges the time spent beyond a
+level, so that a level crossed again and again (a burst of motion) counts as much as one long excursion:
 
-* a metric **enters** a more severe state when its value has been beyond that state's level without a break for
-  ``persist_s`` seconds (measured from the first frame beyond the level to the current frame);
-* it **leaves** its state when the value has been back below that state's level for ``persist_s`` seconds; the
-  new state is then the instantaneous state of the current value;
+* each frame stands for the time since the stream's previous frame, at most ``persist_s`` (so that one frame,
+  after a pause in the acquisition or at a slow frame rate, never enters a state alone);
+* a metric **enters** a more severe state when its value was beyond that state's level for more than
+  ``persist_s`` seconds of the trailing window of ``2 × persist_s`` seconds (``2.5`` frame intervals when frames
+  are further apart; one noisy frame never does; a steady excursion enters after ``persist_s``, as before; a
+  burst beyond the level more than half the time does);
+* it **leaves** the state when less than ``persist_s / 2`` of the trailing window was beyond the level (a
+  steady return ends it after ``1.5 × persist_s``); the new state is the most severe lower level still beyond
+  for at least ``persist_s / 2`` of the window, else normal;
+* ``persist_s = 0`` follows the value frame by frame;
 * a change of state is an ``end`` event of the old state followed by a ``start`` event of the new one
   (warning → alarm: end of warning + start of alarm; alarm → warning: end of alarm + start of warning);
-* unknown values (NaN or a missing column) keep the current state, never start one, and break any persistence
-  count in progress (an excursion or a recovery must be seen without gaps);
-* without a time (``time_s`` blank: no timestamps and no frame rate) persistence is counted in frames,
+  a ``start`` event carries ``advice`` (what the state likely means and what to check, :mod:`qcmon.advice`)
+  and, where that advice touches laser power, gain or the animal, the profile's ``caution``;
+* unknown values (NaN or a missing column) count for no level and keep the current state; a row with an
+  unknown ``time_s`` and no frame index is skipped; ``displacement_px`` is judged only in rows without ``displacement_um`` (when
+  the profile limits that: the pixel size is unknown), so one movement raises one event;
+* :meth:`ThresholdTracker.close` ends open states at the session's end with ``end`` events whose
+  ``closed_by`` is ``"session end"``, and keeps the states as they were (the end is not a recovery);
+* without a time (``time_s`` blank: no timestamps and no frame rate) the window runs on the frame index,
   :data:`qcmon.frames.UNTIMED_FRAMES_PER_S` frames for each second of ``persist_s``; the events then carry no
   time and their messages count frames.
+
+Values of fractions (``saturated_frac``, ``clipped_frac``) are written in messages as % of pixels, as on screen.
 """
 
 from __future__ import annotations
@@ -40,6 +54,7 @@ from __future__ import annotations
 import math
 import os
 import sys
+from collections import deque
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
@@ -59,6 +74,7 @@ from qcmon.frames import RATE_UNKNOWN, UNTIMED_FRAMES_PER_S
 __all__ = [
     "DIRECTIONS",
     "METRICS",
+    "PERCENT_METRICS",
     "Limit",
     "Profile",
     "ThresholdTracker",
@@ -74,6 +90,9 @@ DIRECTIONS: tuple[str, ...] = ("above", "below", "abs_above")
 METRICS: tuple[str, ...] = tuple(
     c.name for c in BY_NAME.values() if c.kind == "float" and c.name != "time_s"
 )
+
+#: Metrics stored as fractions (0..1) in the record and shown as % of pixels in messages and on screen.
+PERCENT_METRICS: tuple[str, ...] = ("saturated_frac", "clipped_frac")
 
 _TOP_KEYS = ("description", "caution", "extends", "limits")
 _LIMIT_KEYS = ("warn", "alarm", "direction", "persist_s", "label", "unit", "enabled")
@@ -141,11 +160,32 @@ class Limit:
         """The level belonging to ``state`` ("warning" or "alarm")."""
         return self.alarm if state == "alarm" else self.warn
 
+    @property
+    def shown_scale(self) -> float:
+        """Factor from the file's unit to the unit shown to people (100 for fractions shown in %)."""
+        return 100.0 if self.metric in PERCENT_METRICS and self.unit in ("", "%") else 1.0
+
+    @property
+    def shown_unit(self) -> str:
+        """The unit shown to people: ``"%"`` for fractions, else :attr:`unit`."""
+        return "%" if self.shown_scale == 100.0 else self.unit
+
+    def show(self, value: float) -> str:
+        """``value`` in the shown unit, e.g. ``"1.2 %"`` for ``saturated_frac = 0.012``; "unknown" for NaN."""
+        try:
+            v = float(value) * self.shown_scale
+        except (TypeError, ValueError):
+            return "unknown"
+        if math.isnan(v):
+            return "unknown"
+        unit = self.shown_unit
+        text = f"{v:.0f}" if abs(v) >= 1000 else f"{v:.3g}"
+        return f"{text}{' ' + unit if unit else ''}"
+
     def describe(self, state: str) -> str:
-        """E.g. ``"above alarm 5 µm"`` or ``"|value| above warning 2 µm"``."""
+        """E.g. ``"above 5 µm (alarm level)"`` or ``"beyond ±2 µm (warning level)"``, in the shown unit."""
         word = {"above": "above", "below": "below", "abs_above": "beyond ±"}[self.direction]
-        unit = f" {self.unit}" if self.unit else ""
-        return f"{word}{'' if word.endswith('±') else ' '}{_fmt(self.level(state))}{unit} ({state} level)"
+        return f"{word}{'' if word.endswith('±') else ' '}{self.show(self.level(state))} ({state} level)"
 
 
 @dataclass(frozen=True, slots=True)
@@ -366,9 +406,16 @@ class _MetricState:
     state: str = "normal"
     started_frame: int = -1
     started_time_s: float = math.nan
-    # first frame/time of the current unbroken run at or beyond each level (entry), or back within (exit)
-    onset: dict[str, tuple[int, float]] = field(default_factory=dict)
-    recovery: tuple[int, float] | None = None
+    # known frames of the trailing window: (time_s, weight_s, rank, value, frame)
+    window: deque = field(default_factory=deque)
+    # seconds of the window spent at or beyond the warning (index 1) and alarm (index 2) levels
+    beyond: list = field(default_factory=lambda: [0.0, 0.0, 0.0])
+    span: float = 0.0  # length of the window at the last frame, s
+
+
+_EPS = 1e-6  # s: sums of frame intervals are compared with this tolerance
+#: Metrics judged only in rows where the metric named here is unknown (the pixel size is unknown).
+_FALLBACK = {"displacement_px": "displacement_um"}
 
 
 class ThresholdTracker:
@@ -381,7 +428,9 @@ class ThresholdTracker:
     Notes
     -----
     Each (channel, plane) and metric is tracked independently; see the module docstring for the rule.
-    Rows of one (channel, plane) must come in acquisition order.
+    Rows of one (channel, plane) must come in acquisition order. The public state a resumed watch needs to
+    rebuild is built by feeding the same rows again through :meth:`update` (the events it returns then are the
+    ones already recorded).
     """
 
     def __init__(self, profile: Profile):
@@ -391,10 +440,15 @@ class ThresholdTracker:
         self._state: dict[tuple[int, int], dict[str, _MetricState]] = {}
         self._last_row: dict[tuple[int, int], Mapping[str, object]] = {}
         self._timed: dict[tuple[int, int], bool] = {}
+        self._last_t: dict[tuple[int, int], float] = {}
 
     @property
     def states(self) -> dict[tuple[int, int], dict[str, str]]:
-        """Current state per (channel, plane) and metric: ``"normal"``, ``"warning"`` or ``"alarm"``."""
+        """Current state per (channel, plane) and metric: ``"normal"``, ``"warning"`` or ``"alarm"``.
+
+        After :meth:`close` the states stay as they were when the session ended (the session's end is not a
+        recovery).
+        """
         return {key: {m: s.state for m, s in per.items()} for key, per in self._state.items()}
 
     @property
@@ -426,45 +480,51 @@ class ThresholdTracker:
         # second); events then carry no time. When the stream's time base changes (a rate estimated later), the
         # runs in progress start again on the new clock.
         timed = math.isfinite(t)
-        clock = t if timed else frame / UNTIMED_FRAMES_PER_S
+        clock = t if timed else (frame / UNTIMED_FRAMES_PER_S if frame >= 0 else math.nan)
+        events: list[Event] = []
+        if not math.isfinite(clock):
+            return events  # neither a time nor a frame index: nothing can be counted, every state is kept
         if self._timed.setdefault(key, timed) != timed:
             self._timed[key] = timed
+            self._last_t.pop(key, None)
             for ms in per.values():
-                ms.onset.clear()
-                ms.recovery = None
-        events: list[Event] = []
+                ms.window.clear()
+                ms.beyond = [0.0, 0.0, 0.0]
+        t_prev = self._last_t.get(key, math.nan)
+        self._last_t[key] = clock
+        interval = clock - t_prev if math.isfinite(t_prev) and clock > t_prev else 0.0
         for metric, lim in self.profile.limits.items():
             ms = per[metric]
+            p = lim.persist_s
+            win = ms.window
+            # forget frames older than the window: 2 × persist_s, or 2.5 frame intervals at slow frame rates (so
+            # that the window always holds the previous frames)
+            span = max(2.0 * p, 2.5 * interval)
+            ms.span = span
+            while win and win[0][0] <= clock - span + _EPS * 1e-3:
+                old = win.popleft()
+                for level in range(1, old[2] + 1):
+                    ms.beyond[level] -= old[1]
+                if not win:
+                    ms.beyond = [0.0, 0.0, 0.0]
             value = _as_float(row.get(metric))
-            now = lim.state_of(value) if frame >= 0 or timed else "unknown"
+            if metric in _FALLBACK and _FALLBACK[metric] in self.profile.limits \
+                    and math.isfinite(_as_float(row.get(_FALLBACK[metric]))):
+                value = math.nan  # the same quantity is judged in its physical unit
+            now = lim.state_of(value)
             if now == "unknown":
-                ms.onset.clear()
-                ms.recovery = None
-                continue
+                continue  # counts for no level; the state is kept
             rank = _RANK[now]
-            # persistence of runs at or beyond each level
-            for level in ("warning", "alarm"):
-                if rank >= _RANK[level]:
-                    ms.onset.setdefault(level, (frame, clock))
-                else:
-                    ms.onset.pop(level, None)
-            cur = _RANK[ms.state]
-            target = ms.state
-            # escalation: the most severe level whose run has lasted persist_s
-            for level in ("alarm", "warning"):
-                if _RANK[level] > cur and level in ms.onset and clock - ms.onset[level][1] >= lim.persist_s:
-                    target = level
-                    break
-            if target == ms.state and cur > 0:
-                if rank < cur:
-                    if ms.recovery is None:
-                        ms.recovery = (frame, clock)
-                    if clock - ms.recovery[1] >= lim.persist_s:
-                        target = now
-                else:
-                    ms.recovery = None
+            weight = min(interval, p)  # one frame (after a gap, or at a slow rate) never enters a state alone
+            if p > 0:
+                win.append((clock, weight, rank, value, frame))
+                for level in range(1, rank + 1):
+                    ms.beyond[level] += weight
+                target = _target(ms, p)
+            else:
+                target = now
             if target != ms.state:
-                events.extend(self._change(key, ms, lim, target, value, frame, t))
+                events.extend(self._change(key, ms, lim, target, value, frame, t, row=row))
         return events
 
     def close(self, row: Mapping[str, object] | None = None) -> list[Event]:
@@ -479,7 +539,8 @@ class ThresholdTracker:
         Returns
         -------
         list of Event
-            One ``end`` event per open state, its message saying the session ended it.
+            One ``end`` event per open state, its message saying the session ended it and its ``closed_by``
+            ``"session end"``. :attr:`states` keep the states the session ended in.
         """
         events: list[Event] = []
         for key, per in self._state.items():
@@ -491,46 +552,95 @@ class ThresholdTracker:
             for metric, ms in per.items():
                 if ms.state != "normal":
                     lim = self.profile.limits[metric]
+                    state = ms.state
                     events.extend(self._change(key, ms, lim, "normal", _as_float(last.get(metric)), frame, t,
                                                by_session_end=True))
-                ms.onset.clear()
-                ms.recovery = None
+                    ms.state = state  # the session's end is not a recovery: the state is shown as it ended
+                ms.window.clear()
+                ms.beyond = [0.0, 0.0, 0.0]
         return events
 
     def _change(self, key, ms: _MetricState, lim: Limit, target: str, value: float, frame: int, t: float,
-                *, by_session_end: bool = False) -> list[Event]:
+                *, by_session_end: bool = False, row: Mapping[str, object] | None = None) -> list[Event]:
+        from qcmon.advice import advice_for
+
         channel, plane = key
         where = f" (channel {channel}, plane {plane})"
-        unit = f" {lim.unit}" if lim.unit else ""
+        timed = math.isfinite(t)
+        # without a time base, spans are said in frames (never in assumed seconds)
+        span_text = (f"{_fmt(ms.span)} s" if timed
+                     else f"{_fmt(round(ms.span * UNTIMED_FRAMES_PER_S))} frames ({RATE_UNKNOWN})")
         events = []
         if ms.state != "normal":
             lasted = t - ms.started_time_s
             # without a time base, durations are said in frames (never in assumed seconds)
             took = f"{lasted:.1f} s" if math.isfinite(lasted) else f"{frame - ms.started_frame} frames"
-            hold = (f"{_fmt(lim.persist_s)} s" if math.isfinite(t)
-                    else f"{_fmt(lim.persist_s * UNTIMED_FRAMES_PER_S)} frames ({RATE_UNKNOWN})")
             if by_session_end:
-                msg = (f"{lim.label} {ms.state} ended by the session end after {took}, "
-                       f"still {lim.describe(ms.state)}; last value {_fmt(value)}{unit}{where}")
+                msg = (f"{lim.label} {ms.state} still open when the session ended, after {took} "
+                       f"{lim.describe(ms.state)}; last value {lim.show(value)}{where}")
+            elif _RANK[target] > _RANK[ms.state]:
+                msg = f"{lim.label} {ms.state} rises to {target} after {took}{where}"
             else:
-                msg = (f"{lim.label} back from {ms.state} after {took}: {_fmt(value)}{unit}, no longer "
-                       f"{lim.describe(ms.state)} for {hold}{where}")
+                msg = (f"{lim.label} back from {ms.state} after {took}: now {lim.show(value)}, "
+                       f"{lim.describe(ms.state)} < ¼ of the last {span_text}{where}")
             events.append(Event(kind="end", metric=lim.metric, state=ms.state, value=value,
                                 limit=lim.level(ms.state), frame=frame, time_s=t, started_frame=ms.started_frame,
                                 started_time_s=ms.started_time_s, channel=channel, plane=plane, message=msg,
-                                wall_time=_now()))
+                                wall_time=_now(), closed_by="session end" if by_session_end else ""))
         if target != "normal":
-            onset = ms.onset.get(target, (frame, t))
-            since = (f"t={onset[1]:.2f} s (frame {onset[0]})" if math.isfinite(t)
-                     else f"frame {onset[0]} ({RATE_UNKNOWN})")
-            msg = f"{lim.label} {target}: {_fmt(value)}{unit}, {lim.describe(target)} since {since}{where}"
-            events.append(Event(kind="start", metric=lim.metric, state=target, value=value,
+            level = _RANK[target]
+            beyond = [(e[0], e[3], e[4]) for e in ms.window if e[2] >= level] or [(t, value, frame)]
+            vals = sorted(abs(v) if lim.direction == "abs_above" else v for _, v, _ in beyond)
+            typical = _signed_median([v for _, v, _ in beyond])
+            peak = vals[0] if lim.direction == "below" else vals[-1]
+            if lim.persist_s > 0:
+                spent = ms.beyond[level]
+                how = (f"{lim.show(typical)} typical, {'lowest' if lim.direction == 'below' else 'peak'} "
+                       f"{lim.show(peak)}; {lim.describe(target)} for "
+                       + (f"{spent:.1f} s of the last {span_text} (from t={beyond[0][0]:.1f} s, frame "
+                          f"{beyond[0][2]})" if timed else
+                          f"{round(spent * UNTIMED_FRAMES_PER_S)} frames of the last {span_text} (from frame "
+                          f"{beyond[0][2]})"))
+            else:
+                how = f"{lim.describe(target)}: {lim.show(value)}"
+            msg = f"{lim.label} {target}: {how}{where}"
+            # share of the time beyond in the last unbroken run: ~1 for a lasting excursion, less for a burst
+            run = 0.0
+            for e in reversed(ms.window):
+                if e[2] < level:
+                    break
+                run += e[1]
+            lasting = run >= 0.75 * ms.beyond[level] if lim.persist_s > 0 else True
+            advice, caution = advice_for(lim, target, typical=typical, peak=peak, time_s=t, row=row or {},
+                                         caution=self.profile.caution, lasting=lasting)
+            events.append(Event(kind="start", metric=lim.metric, state=target, value=typical,
                                 limit=lim.level(target), frame=frame, time_s=t, started_frame=frame,
-                                started_time_s=t, channel=channel, plane=plane, message=msg, wall_time=_now()))
+                                started_time_s=t, channel=channel, plane=plane, message=msg, wall_time=_now(),
+                                advice=advice, caution=caution))
         ms.state = target
         ms.started_frame, ms.started_time_s = frame, t
-        ms.recovery = None
         return events
+
+
+def _target(ms: _MetricState, p: float) -> str:
+    """The state the window asks for: enter a level beyond it for more than ``p`` of the last ``2 p`` seconds,
+    keep a level while at least ``p / 2`` of them were beyond it."""
+    cur = _RANK[ms.state]
+    for level in (2, 1):
+        if level > cur and ms.beyond[level] > p + _EPS:
+            return STATES[level]
+    if cur > 0 and ms.beyond[cur] < 0.5 * p - _EPS:
+        for level in range(cur - 1, 0, -1):
+            if ms.beyond[level] >= 0.5 * p - _EPS:
+                return STATES[level]
+        return "normal"
+    return ms.state
+
+
+def _signed_median(values: list[float]) -> float:
+    v = sorted(values)
+    n = len(v)
+    return v[n // 2] if n % 2 else 0.5 * (v[n // 2 - 1] + v[n // 2])
 
 
 def _as_float(value: object) -> float:

@@ -291,13 +291,14 @@ async def test_values_states_and_planted_alarm_are_shown():
         assert any(r.startswith("0:40–1:00") and "warning ended" in r for r in rows), rows
         assert any("✗ problem" in r and "truncated page" in r for r in rows), rows
         # z offset in µm with a z-stack; brightness with bleach rate and the forecast text.
-        assert panel_text(app, "z").startswith("2.39 µm")
+        assert "2.39 µm" in panel_text(app, "z")
         assert "bleach -4.80 %/min" in panel_text(app, "brightness")
         detail = str(app.query_one("#panel-brightness .detail").content)
         assert "brightness −20 % in ~3 min" in detail
         # Fractions in files, % on screen: 0.0002 -> 0.02 %.
-        assert panel_text(app, "saturation").startswith("0.020 %  clipped 0.00 %")
-        assert app.query_one("#panel-displacement").border_subtitle == "warn > 2 · alarm > 5 µm"
+        assert "0.020 %  clipped 0.00 %" in panel_text(app, "saturation")
+        # the border says what the plot's axis marks w and a stand for
+        assert app.query_one("#panel-displacement").border_subtitle == "w warn > 2 · a alarm > 5 µm"
         await finish(pilot, app, monitor)
 
 
@@ -383,8 +384,9 @@ async def test_stream_switch_shows_the_other_plane_and_focus_without_stack():
         assert "c0 p1 ·" in str(app.query_one("#session-facts").content)
         assert "‼" not in panel_text(app, "displacement")
         # No z-stack on plane 1: the z panel falls back to the focus correlation against the reference.
-        assert panel_text(app, "z").startswith("focus corr 0.98")
-        assert app.query_one("#panel-z").border_subtitle == "warn < 0.9 · alarm < 0.8"
+        assert "focus corr 0.98" in panel_text(app, "z")
+        assert "focus 0.98" not in panel_text(app, "z")  # not twice
+        assert app.query_one("#panel-z").border_subtitle == "w warn < 0.9 · a alarm < 0.8"
         await pilot.press("c")
         assert app.stream == (0, 0)
         await finish(pilot, app, monitor)
@@ -395,12 +397,14 @@ async def test_window_key_cycles_the_plot_window():
     async with app.run_test(size=(80, 24)) as pilot:
         await replayed(pilot, app, monitor)
         plot = app.query_one("#panel-displacement TrendPlot", TrendPlot)
-        assert app.window_min == 5 and plot._window_s == 300.0
+        # the session is 119.5 s long: the plots show all of it until it reaches the chosen span
+        assert app.window_min == 5 and plot._window_s == 119.5
+        assert "plots 2:00/5 min" in str(app.query_one("#session-facts").content)
         seen = []
         for _ in range(4):
             await pilot.press("w")
             seen.append((app.window_min, plot._window_s))
-        assert seen == [(15, 900.0), (60, 3600.0), (1, 60.0), (5, 300.0)]
+        assert seen == [(15, 119.5), (60, 119.5), (1, 60.0), (5, 119.5)]
         await pilot.press("w", "w", "w")  # 1 min: newest frame at 119.5 s, so 59.5 s .. 119.5 s = 121 frames
         assert plot._t.size == 121 and plot._t[0] == pytest.approx(59.5)
         assert "1-min plots" in str(app.query_one("#session-facts").content)
@@ -472,15 +476,22 @@ async def test_layout_survives_sizes_and_resize():
     app, monitor = make_app()
     async with app.run_test(size=(80, 24)) as pilot:
         await replayed(pilot, app, monitor)
-        for size, columns in [((80, 24), 2), ((200, 50), 3), ((120, 30), 2)]:
+        for size, columns in [((80, 24), 2), ((200, 50), 3), ((120, 30), 2), ((120, 40), 2)]:
             await pilot.resize_terminal(*size)
             await pilot.pause()
             panels = list(app.query(MetricPanel))
             assert len(panels) == 6
-            assert len({p.region.x for p in panels}) == columns, size
+            compact = size[0] < 150 and size[1] < 36
+            # compact: the two worst panels with plots (the alarm first), the others one line each
+            full = [p for p in panels if not p.mini]
+            assert len(full) == (2 if compact else 6), size
+            assert len({p.region.x for p in full}) == columns, size
+            if compact:
+                assert full[0].id == "panel-displacement" and full[0].region.x == 0  # the alarm, first
             for panel in panels:  # each panel whole, inside the screen, above the footer
                 r = panel.region
-                assert r.height >= 5 and r.right <= size[0] and r.bottom <= size[1] - 1, (size, panel.id, r)
+                assert r.height >= (1 if panel.mini else 5), (size, panel.id, r)
+                assert r.right <= size[0] and r.bottom <= size[1] - 1, (size, panel.id, r)
             events = app.query_one(EventList).region
             assert events.height >= 6 and events.bottom <= size[1] - 1
         for size in [(60, 15), (30, 8), (200, 50), (30, 8)]:
@@ -602,3 +613,26 @@ def test_event_cells_have_no_wall_clock():
     assert when == "1:00:00–1:02:05" and stream == "c0 p0" and what == "✓ warning ended"
     assert "10:00" not in detail
     assert format_clock(float("nan")) == "—"
+
+
+async def test_long_events_wrap_with_their_advice_and_nothing_is_cut():
+    # 80×24: a warning with a long message and advice wraps inside the event box; no line is wider than the
+    # box less its scrollbar column, and the whole advice is there to read
+    advice = ("the field moves back and forth by up to 8.4 µm (typical 6.2 µm) — the animal is probably moving; "
+              "check the animal and the head fixation (see caution: qcmon never changes the microscope)")
+    ev = Event(kind="start", metric="displacement_um", state="warning", value=6.2, limit=2.0, frame=10,
+               time_s=5.0, started_frame=10, started_time_s=5.0, advice=advice, caution="local rules",
+               message="Displacement warning: 6.2 µm typical, peak 8.4 µm; above 2 µm (warning level) for 1.0 s "
+                       "of the last 2 s (from t=4.0 s, frame 8) (channel 0, plane 0)")
+    app, monitor = make_app(script(0, 40) + [("event", ev)])
+    async with app.run_test(size=(80, 24)) as pilot:
+        await replayed(pilot, app, monitor)
+        log = app.query_one(EventList)
+        await until(pilot, lambda: any(advice in r for r in log.plain_rows()), "the advice row")
+        width = log.scrollable_content_region.width
+        assert width <= log.region.width - 2 - 1  # borders and the scrollbar column
+        texts = [strip.text for strip in log.lines]
+        assert all(len(t.rstrip()) <= width for t in texts), texts
+        joined = " ".join(t.strip() for t in texts)
+        assert "→" in joined and "head fixation" in joined and "(channel 0, plane 0)" not in joined
+        await finish(pilot, app, monitor)

@@ -26,13 +26,16 @@ from qcmon.dashboard.messages import (
     WatchFailed,
     WatchFinished,
 )
-from qcmon.dashboard.panels import PANELS, EventList, MetricPanel, SessionHeader
+from qcmon.dashboard.panels import PANELS, EventList, MetricPanel, SessionHeader, shown_window_s
 from qcmon.dashboard.screens import HelpScreen, NoteScreen
 from qcmon.events import Event
 from qcmon.status import Status
 
 #: Time windows of the trend plots, min (the ``w`` key cycles through them).
 WINDOWS_MIN: tuple[int, ...] = (1, 5, 15, 60)
+
+#: Panels drawn with their plots in the compact layout (the worst first); the others take one line each.
+COMPACT_PLOTS = 2
 
 #: What each key does, as the help screen explains it.
 KEY_HELP: tuple[tuple[str, str], ...] = (
@@ -229,8 +232,10 @@ class QcmonApp(App[dict | None]):
         """Hand the newest data down to the widgets (only the header's flags while paused)."""
         if not self.paused:
             self._shown_status = self.status
+        history = self.histories.get(self.stream) if self.stream is not None else None
         header = self.query_one(SessionHeader)
-        header.show(self._shown_status, stream_text=self._stream_text(), window_min=self.window_min, flags=self._flags())
+        header.show(self._shown_status, stream_text=self._stream_text(), window_min=self.window_min, flags=self._flags(),
+                    shown_s=shown_window_s(history, 60.0 * self.window_min) if history is not None else None)
         if self.paused:
             return
         self._dirty = False
@@ -238,7 +243,7 @@ class QcmonApp(App[dict | None]):
         states = (status.states.get(self.stream, {}) if status is not None and self.stream is not None else {}) or {}
         forecasts = status.forecasts if status is not None else {}
         limits = getattr(getattr(self.monitor, "profile", None), "limits", None) or {}
-        history = self.histories.get(self.stream) if self.stream is not None else None
+        self._arrange_panels(states)
         for panel in self.query(MetricPanel):
             panel.show(
                 history=history,
@@ -248,6 +253,38 @@ class QcmonApp(App[dict | None]):
                 window_s=60.0 * self.window_min,
             )
         self._show_events()
+
+    @property
+    def compact(self) -> bool:
+        """True in the compact layout (fewer than 150 columns and 36 lines, e.g. 80×24): the two worst panels
+        with their plots, the others one line each."""
+        return self.size.width < 150 and self.size.height < 36  # as the breakpoints of the style sheet
+
+    def _arrange_panels(self, states: dict) -> None:
+        panels = list(self.query(MetricPanel))
+        if self.compact:
+            rank = {"alarm": 3, "warning": 2, "normal": 1}
+
+            def badness(i_panel):
+                i, panel = i_panel
+                known = [states[m] for m in panel.spec.metrics if m in states]
+                return (-max((rank.get(k, 0) for k in known), default=0), i)
+
+            order = [p for _, p in sorted(enumerate(sorted(panels, key=lambda p: PANELS.index(p.spec))),
+                                          key=badness)]
+        else:
+            order = sorted(panels, key=lambda p: PANELS.index(p.spec))
+        for i, panel in enumerate(order):
+            mini = self.compact and i >= COMPACT_PLOTS
+            panel.mini = mini
+            panel.set_class(mini, "-mini")
+        if order != panels:  # worst first (compact) or the usual order again
+            grid = self.query_one("#panels")
+            for panel in order:
+                grid.move_child(panel, after=len(grid.children) - 1)
+
+    def on_resize(self) -> None:
+        self.call_after_refresh(self.refresh_display)
 
     def _show_events(self) -> None:
         if self._unshown_events:
@@ -281,11 +318,20 @@ class QcmonApp(App[dict | None]):
         self.notify("the watch has ended", severity="warning")
         return True
 
+    def _waits_for_frames(self) -> str:
+        st = self.status
+        if st is None or not st.frames_measured:
+            return " · no frame has arrived yet: the reference waits for frames"
+        idle = getattr(st, "idle_s", 0.0) or 0.0
+        if idle > 0:
+            return f" · no new frame for {idle:.0f} s: the reference waits for frames"
+        return ""
+
     def action_new_reference(self) -> None:
         """New reference for every channel and plane (e.g. after refocusing)."""
         if not self._watch_ended():
             self.monitor.new_reference()
-            self.notify("new reference requested for all channels and planes")
+            self.notify("new reference requested for all channels and planes" + self._waits_for_frames())
 
     def action_new_reference_shown(self) -> None:
         """New reference for the shown channel and plane only."""
@@ -293,7 +339,7 @@ class QcmonApp(App[dict | None]):
             return
         c, p = self.stream
         self.monitor.new_reference(channel=c, plane=p)
-        self.notify(f"new reference requested for ch {c} plane {p}")
+        self.notify(f"new reference requested for ch {c} plane {p}" + self._waits_for_frames())
 
     def action_add_note(self) -> None:
         """Ask for one line of text and add it to the record."""

@@ -98,6 +98,11 @@ class StreamHistory:
         self._t, self._v, self._start, self._stop = t, v, 0, n
 
     @property
+    def oldest_time_s(self) -> float:
+        """Session time of the oldest row kept, s (NaN when empty)."""
+        return float(self._t[self._start]) if len(self) else math.nan
+
+    @property
     def newest_time_s(self) -> float:
         """Session time of the newest row, s (NaN when empty)."""
         return float(self._t[self._stop - 1]) if len(self) else math.nan

@@ -12,7 +12,7 @@ from rich.text import Text
 from textual.app import ComposeResult
 from textual.containers import Horizontal
 from textual.widget import Widget
-from textual.widgets import DataTable, Static
+from textual.widgets import RichLog, Static
 
 from qcmon.columns import BY_NAME
 from qcmon.dashboard.history import StreamHistory
@@ -97,7 +97,7 @@ class PanelSpec:
 
     @property
     def metrics(self) -> tuple[str, ...]:
-        return tuple(q.column for q in self.choices + self.extras)
+        return tuple(dict.fromkeys(q.column for q in self.choices + self.extras))
 
 
 PANELS: tuple[PanelSpec, ...] = (
@@ -106,6 +106,7 @@ PANELS: tuple[PanelSpec, ...] = (
         "z",
         "Z offset",
         (Quantity("z_um", "µm"), Quantity("focus_corr", "", "focus corr")),
+        extras=(Quantity("focus_corr", "", "focus"),),
         forecast_keys=("z_um", "focus_corr"),
     ),
     PanelSpec(
@@ -160,15 +161,29 @@ def levels_of(limit, quantity: Quantity, *, negative: bool) -> tuple[Level, ...]
 
 
 def limit_text(limit, quantity: Quantity) -> str:
-    """E.g. ``"warn > 2 · alarm > 5 µm"`` for a border; "" without a limit."""
+    """E.g. ``"w warn > 2 · a alarm > 5 µm"`` for a border (the legend of the plot's ``w``/``a`` marks)."""
     if limit is None:
         return ""
     sign = _DIRECTION_SIGN.get(getattr(limit, "direction", ""), "")
-    words = {"warning": "warn", "alarm": "alarm"}
+    words = {"warning": "w warn", "alarm": "a alarm"}  # w and a mark the levels on the plot's axis
     parts = [f"{words[state]} {sign}{value:.3g}" for state, value in _limit_values(limit, quantity.scale)]
     if not parts:
         return ""
     return " · ".join(parts) + (f" {quantity.unit}" if quantity.unit else "")
+
+
+#: s: the shortest span a plot shows at the start of a session.
+MIN_WINDOW_S = 10.0
+
+
+def shown_window_s(history: StreamHistory | None, window_s: float) -> float:
+    """The plots' span: the session so far (at least :data:`MIN_WINDOW_S`) until it reaches ``window_s``."""
+    if history is None or not len(history):
+        return window_s
+    span = history.newest_time_s - history.oldest_time_s
+    if not math.isfinite(span):
+        return window_s
+    return min(window_s, max(span, MIN_WINDOW_S))
 
 
 class MetricPanel(Widget):
@@ -179,6 +194,8 @@ class MetricPanel(Widget):
         self.spec = spec
         self.state = "unknown"
         self.border_title = spec.title
+        #: Shown as one line (title, value, state) without a plot: the compact layout's less urgent panels.
+        self.mini = False
 
     def compose(self) -> ComposeResult:
         with Horizontal(classes="reading"):
@@ -209,9 +226,13 @@ class MetricPanel(Widget):
                 text = "—"
             return f"{q.label + ' ' if q.label else ''}{text}{' ' + q.unit if q.unit and text != '—' else ''}"
 
-        value = Text(shown(quantity), style="bold")
+        value = Text()
+        if self.mini:
+            value.append(f"{spec.title:<13}", style="dim")
+        value.append(shown(quantity), style="bold")
         for extra in spec.extras:
-            value.append(f"  {shown(extra)}")
+            if extra.column != quantity.column:
+                value.append(f"  {shown(extra)}")
         self.query_one(".value", Static).update(value)
 
         known = [states[m] for m in spec.metrics if m in states]
@@ -236,6 +257,7 @@ class MetricPanel(Widget):
         if history is None or not len(history):
             plot.show([], [], t_end=0.0, window_s=window_s)
             return
+        window_s = shown_window_s(history, window_s)
         t, v = history.window(quantity.column, window_s=window_s)
         v = v * quantity.scale
         finite = v[v == v]
@@ -255,8 +277,10 @@ class SessionHeader(Widget):
         yield Static("", id="session-facts")
         yield Static(state_text("unknown"), id="overall")
 
-    def show(self, status: Status | None, *, stream_text: str, window_min: int, flags: str) -> None:
-        """Show ``status``; ``stream_text`` names the shown stream, ``flags`` is e.g. "PAUSED"."""
+    def show(self, status: Status | None, *, stream_text: str, window_min: int, flags: str,
+             shown_s: float | None = None) -> None:
+        """Show ``status``; ``stream_text`` names the shown stream, ``flags`` is e.g. "PAUSED"; ``shown_s`` is
+        the plots' span while it still grows toward ``window_min``."""
         facts = self.query_one("#session-facts", Static)
         overall = self.query_one("#overall", Static)
         width = max(self.size.width - 14, 20)
@@ -269,6 +293,9 @@ class SessionHeader(Widget):
         if known and status.frame_rate_origin:
             rate_text += f" ({status.frame_rate_origin})"
         first = Text(no_wrap=True, overflow="ellipsis")
+        idle = getattr(status, "idle_s", 0.0) or 0.0
+        if not flags and idle > 0:
+            flags = f"no new frame for {idle:.0f} s"
         flags = flags or status.paused_reason  # ours first (PAUSED, stopping), else the watch's ("waiting …")
         if flags:
             first.append(flags, style="bold reverse")
@@ -286,7 +313,11 @@ class SessionHeader(Widget):
             second.append(f" · {status.range_text}")
         if status.backlog_frames:
             second.append(f" · behind by {status.backlog_frames} frames", style="bold reverse")
-        second.append(f" · {stream_text} · {window_min}-min plots")
+        stream_part = f" · {stream_text}" if len(status.streams or ()) > 1 else ""  # one stream: no news
+        if shown_s is not None and shown_s < 60.0 * window_min:
+            second.append(f"{stream_part} · plots {format_clock(shown_s)}/{window_min} min")
+        else:
+            second.append(f"{stream_part} · {window_min}-min plots")
         facts.update(Text("\n").join([first, second]))
         overall.update(Text(f"{state_text(status.overall)}\noverall", justify="center"))
         for s in ("normal", "warning", "alarm", "unknown"):
@@ -298,6 +329,8 @@ _KIND_TEXT = {
     "reference": "⟲ reference",
     "problem": "✗ problem",
     "detector": "▣ detector",
+    "idle": "⏸ no frames",
+    "resumed": "▶ frames again",
 }
 
 
@@ -306,7 +339,10 @@ def event_cells(event: Event) -> tuple[str, str, str, str]:
     unit = BY_NAME[event.metric].unit if event.metric in BY_NAME else ""
     if event.kind == "end":
         when = f"{format_clock(event.started_time_s)}–{format_clock(event.time_s)}"
-        what = f"{SYMBOLS['normal']} {event.state} ended"
+        if event.closed_by:  # the session ended while the state was open: not a recovery
+            what = f"■ {event.state} open at end"
+        else:
+            what = f"{SYMBOLS['normal']} {event.state} ended"
     elif event.kind == "start":
         when = format_clock(event.time_s)
         what = state_text(event.state or "unknown")
@@ -316,37 +352,61 @@ def event_cells(event: Event) -> tuple[str, str, str, str]:
     detail = event.message
     if not detail and event.kind in ("start", "end"):
         detail = f"{event.metric} {format_value(event.value)} {unit} (limit {format_value(event.limit)})".strip()
+    detail = detail.replace(f" (channel {event.channel}, plane {event.plane})", "")  # the stream cell says it
     stream = f"c{event.channel} p{event.plane}"
     return when, stream, what, detail
 
 
-class EventList(DataTable):
-    """Warnings and alarms (when each started and ended), notes, reference changes and input problems."""
+class EventList(RichLog):
+    """Warnings and alarms (when each started and ended, with their advice), notes, reference changes, pauses
+    of the acquisition and input problems. Lines wrap at the widget's width: no event text is cut."""
 
     MAX_ROWS = 2000
 
-    def on_mount(self) -> None:
-        self.cursor_type = "none"
-        self.zebra_stripes = False
-        self.add_column("time", key="time")
-        self.add_column("stream", key="stream")
-        self.add_column("what", key="what")
-        self.add_column("detail", key="detail")
+    def __init__(self, *, id: str | None = None) -> None:
+        # min_width: RichLog wraps at no less than this (78 by default: one column cut in an 80-column terminal)
+        super().__init__(id=id, wrap=True, markup=False, highlight=False, auto_scroll=True, max_lines=8 * 2000,
+                         min_width=20)
+        self._rows: list[tuple[str, Text]] = []
+        self._width = 0
 
     def add_events(self, events: list[Event]) -> None:
         """Append rows for ``events`` (oldest first) and scroll to the newest."""
         for event in events:
-            when, stream, what, detail = event_cells(event)
-            style = {"start": event.state, "problem": "alarm"}.get(event.kind, "")
-            cell_style = {"warning": "bold yellow", "alarm": "bold red"}.get(style, "")
-            self.add_row(when, stream, Text(what, style=cell_style), detail)
-        while self.row_count > self.MAX_ROWS:
-            self.remove_row(self.ordered_rows[0].key)
-        self.scroll_end(animate=False)
+            row = _event_text(event)
+            self._rows.append(row)
+            self.write(row[1])
+        if len(self._rows) > self.MAX_ROWS:
+            del self._rows[: len(self._rows) - self.MAX_ROWS]
+            self._rewrite()
+
+    def on_resize(self) -> None:
+        if self.size.width != self._width:
+            self._width = self.size.width
+            self._rewrite()
+
+    def _rewrite(self) -> None:
+        self.clear()
+        for _, text in self._rows:
+            self.write(text)
 
     def plain_rows(self) -> list[str]:
         """The rows as plain text, oldest first (for people reading logs and for tests)."""
-        out = []
-        for i in range(self.row_count):
-            out.append("  ".join(str(c.plain if isinstance(c, Text) else c) for c in self.get_row_at(i)))
-        return out
+        return [plain for plain, _ in self._rows]
+
+
+def _event_text(event: Event) -> tuple[str, Text]:
+    when, stream, what, detail = event_cells(event)
+    style = {"start": event.state, "problem": "alarm", "idle": "warning"}.get(event.kind, "")
+    cell_style = {"warning": "bold yellow", "alarm": "bold red"}.get(style, "bold")
+    text = Text(no_wrap=False, overflow="fold")
+    text.append(f"{when} ", style="dim")
+    text.append(f"{stream} ", style="dim")
+    text.append(what, style=cell_style)
+    text.append(f"  {detail}")
+    plain = "  ".join((when, stream, what, detail))
+    if event.advice:
+        text.append("\n  → ", style="bold")
+        text.append(event.advice, style="italic")
+        plain += "  → " + event.advice
+    return plain, text

@@ -30,11 +30,12 @@ def _limits_table(profile) -> Table:
     limits = getattr(profile, "limits", None) or {}
     for metric, limit in limits.items():
         persist = getattr(limit, "persist_s", math.nan)
+        scale = getattr(limit, "shown_scale", 1.0)  # fractions in the profile, % on screen
         table.add_row(
             getattr(limit, "label", "") or metric,
-            f"{getattr(limit, 'warn', math.nan):.3g}",
-            f"{getattr(limit, 'alarm', math.nan):.3g}",
-            getattr(limit, "unit", ""),
+            f"{getattr(limit, 'warn', math.nan) * scale:.3g}",
+            f"{getattr(limit, 'alarm', math.nan) * scale:.3g}",
+            getattr(limit, "shown_unit", getattr(limit, "unit", "")),
             _WHEN.get(getattr(limit, "direction", ""), getattr(limit, "direction", "")),
             f"{persist:.3g} s",
         )
@@ -63,15 +64,20 @@ class HelpScreen(ModalScreen[None]):
             keys.add_row(key, text)
         name = getattr(self._profile, "name", "") or "—"
         caution = getattr(self._profile, "caution", "") or ""
-        with VerticalScroll(id="help-box"):
-            yield Static(Text("Keys", style="bold underline"))
-            yield Static(keys)
-            yield Static(Text(f"\nThreshold profile: {name}", style="bold underline"))
-            yield Static(_limits_table(self._profile))
-            yield Static(Text("\nCaution", style="bold underline"))
-            # Every profile carries its caution; this general one stands in for a profile without.
-            yield Static(caution or CAUTION, id="caution")
-            yield Static(Text("\nesc closes this help", style="dim"))
+        with Vertical(id="help-box"):
+            with VerticalScroll(id="help-body"):
+                yield Static(Text("Keys", style="bold underline"))
+                yield Static(keys)
+                yield Static(Text("\nCaution", style="bold underline"))
+                # Every profile carries its caution; this general one stands in for a profile without.
+                yield Static(caution or CAUTION, id="caution")
+                yield Static(Text(f"\nThreshold profile: {name}", style="bold underline"))
+                yield Static(_limits_table(self._profile))
+                yield Static(Text("\nA state is entered when the value was beyond its level for more than "
+                                  "\"for at least\" within twice that time, and left when less than a quarter "
+                                  "of that time was beyond it.", style="dim"))
+            # outside the scrolling part: always visible, whatever the terminal's height
+            yield Static(Text("esc closes this help · ↑↓ scroll", style="dim"), id="help-close")
 
     def action_close(self) -> None:
         self.dismiss(None)
