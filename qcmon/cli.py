@@ -172,6 +172,7 @@ def cmd_summarize(args) -> int:
     paths = mon.run(_Problems())
     if "earlier" in paths:
         print(f"earlier record moved to {paths['earlier']}")
+    print(f"verdict: {paths['verdict']}")
     print(f"summary: {paths['summary']}\nreport:  {paths['report']}\ntraces:  {Path(paths['out_dir']) / 'traces.csv'}")
     return EXIT_OK
 
@@ -229,7 +230,7 @@ def run_watch(monitor, *, plain: bool) -> int:
     paths = monitor.run(console)
     if "earlier" in paths:
         print(f"earlier record moved to {paths['earlier']}", flush=True)
-    print(f"summary: {paths['summary']}\nreport:  {paths['report']}", flush=True)
+    print(f"verdict: {paths['verdict']}\nsummary: {paths['summary']}\nreport:  {paths['report']}", flush=True)
     return EXIT_OK
 
 

@@ -41,7 +41,7 @@ from qcmon.sources.arrays import container_kind
 from qcmon.sources.session import SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
-from qcmon.summary import exclude_ranges, summarize_traces
+from qcmon.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
@@ -177,8 +177,9 @@ class Monitor:
     def run(self, listener: Listener | None = None) -> dict:
         """Measure until stopped (or idle, or, with ``follow=False``, until everything on disk is measured).
 
-        Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``, and ``"earlier"``: where
-        an earlier record in ``out_dir`` was moved (``resume=False``).
+        Returns ``{"verdict": line, "summary": path, "report": path, "exclude": path, "out_dir": path}`` (the
+        verdict line of :func:`qcmon.summary.verdict_line`), and ``"earlier"``: where an earlier record in
+        ``out_dir`` was moved (``resume=False``).
         """
         # Frames are read into new arrays: keep freed memory for the next ones (see qcmon._memory).
         keep_freed_memory()
@@ -576,7 +577,8 @@ class Monitor:
         summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
         summary["problems"] = list(self.problems)
         summary["session"] = str(self.path)
-        paths = {"out_dir": str(self.out_dir)}
+        # the verdict line first: the dashboard prints these in order when it leaves
+        paths = {"verdict": verdict_line(summary), "out_dir": str(self.out_dir)}
         if self.earlier_record is not None:
             paths["earlier"] = str(self.earlier_record)
         # the summary, exclude list, reference image and report are written as one set (all new, or all as
