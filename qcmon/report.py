@@ -449,7 +449,7 @@ def _field_images(out_dir: Path | None, summary: Mapping, traces: Mapping[str, n
     source = str(traces["source"][i]) if "source" in traces else ""
     try:
         frame = _read_frame(source, int(traces["page"][i]), summary.get("session"))
-    except (OSError, ValueError) as exc:
+    except Exception as exc:  # noqa: BLE001 - a file half-written, moved or odd: the report is written without it
         out.append(("Worst moment", f"{where}. Not shown: {exc}", None))
         return out
     marks = {}

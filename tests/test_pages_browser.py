@@ -40,3 +40,29 @@ def test_report_in_a_browser(tmp_path):
     out.mkdir()
     tifffile.imwrite(out / "reference.tif", stack[:5].mean(axis=0).astype(np.float32))
     _check(write_report(out, summary, traces, [], prof, {}))
+
+
+def test_audit_page_in_a_browser(tmp_path):
+    # an archive page as wide as they come: long nested paths, a long error, every column filled, a chronic table
+    from qcmon.audit._write import AUDIT_COLUMNS, CHRONIC_COLUMNS, sparkline, write_html
+
+    t = np.arange(600) / 30.0
+    png = sparkline({"time_s": t, "displacement_um": 0.5 + 0.1 * np.sin(t), "brightness_pct": 100 - 0.05 * t})
+    rows, sparks = [], {}
+    for i in range(24):
+        path = f"lab-archive-2026/mouse{i:03d}_GCaMP8m_cohort-B/2026-11-{1 + i % 28:02d}/fov{i % 3}_depth-250um/run"
+        row = {c: 1234.5678 for c in AUDIT_COLUMNS}
+        row.update(path=path, status="measured", verdict=("pass", "warning", "fail")[i % 3], date="2026-11-01",
+                   error="", report=f"sessions/{path}.qcmon/report.html")
+        if i == 5:
+            row["error"] = ("lab-archive-2026/mouse005_GCaMP8m_cohort-B/2026-11-06/fov2_depth-250um/run/"
+                            "run_00042.tif, page 0: file is incomplete at the end: a value of the page directory "
+                            "at byte 8 is not written yet (and 3 more)")
+        rows.append(row)
+        sparks[path] = png
+    chronic = [{c: 12.345 for c in CHRONIC_COLUMNS} | {"field": "lab-archive-2026/mouse001_GCaMP8m_cohort-B/*/fov1",
+                                                         "path": rows[i]["path"], "flags": "dimming;field_shift",
+                                                         "date": "2026-11-01T00:00:00"} for i in range(6)]
+    page = write_html(tmp_path / "audit.html", rows, sparks, chronic, title="qcmon audit", header="24 sessions")
+    seen = _check(page)
+    assert seen["images"] == 24
