@@ -303,3 +303,30 @@ def test_advice_of_the_events_is_shown_when_the_record_has_it(session):
     assert "What to check" in body and "check the head fixation" in body
     assert body.count("check the head fixation") == 2  # in the list at the top and beside its event
     assert "What to check" not in _text(report_html(summary, traces, events, prof, facts))
+
+
+def test_summarize_prints_the_verdict_line_first_and_the_report_shows_the_field(tmp_path):
+    # the whole path on frames of a real fluorescence image (outside data), moved by a few px over time
+    import json
+
+    import tifffile
+
+    from qcmon.summary import verdict_line
+    from tests.outside_data import nuclei_2d, specimen_crop
+    from tests.reliability_data import run_qcmon
+
+    image = nuclei_2d()
+    session = tmp_path / "fov"
+    session.mkdir()
+    for i in range(45):
+        frame = specimen_crop(image, (64, 64), 0.1 * i, -0.1 * i, margin=8)
+        tifffile.imwrite(session / f"frame_{i:03d}.tif", np.clip(frame, 0, 65535).astype(np.uint16))
+    out = tmp_path / "fov.qcmon"
+    res = run_qcmon("summarize", str(session), "--out", str(out), timeout=120)
+    assert res.returncode == 0, res.stderr
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    first = res.stdout.splitlines()[0]
+    assert first == f"verdict: {verdict_line(summary)}"
+    assert "frames usable" in first and f"of {summary['frames']:,} frames" in first
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert '<img alt="Reference"' in text and '<img alt="Worst moment"' in text
