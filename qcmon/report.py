@@ -509,7 +509,8 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
     overall = overall if overall in _VERDICT_WORD else "unknown"
     multi = len(summary.get("streams", ())) > 1
     session = summary.get("session") or ""
-    name = Path(session).name if session else ""
+    # e.g. "fov2/frames": the folder's name alone is often generic
+    name = "/".join(Path(session).parts[-2:]) if session else ""
     frames = int(summary.get("frames") or 0)
     usable = summary.get("usable") or {}
     rate = facts.get("frame_rate_hz", {})
@@ -520,8 +521,8 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         f"<title>qcmon report{': ' + e(name) if name else ''} — {e(_VERDICT_WORD[overall])}</title>",
         f"<style>{_CSS}</style></head><body>",
         f"<h1>Imaging session quality report{': ' + e(name) if name else ''}</h1>",
-        f'<div class="top"><span class="verdict {overall}">{_VERDICT_SYMBOL[overall]} {_VERDICT_WORD[overall]}'
-        "</span>",
+        f'<div class="top"><span class="verdict {_box_class(overall, summary)}">{_VERDICT_SYMBOL[overall]} '
+        f'{_VERDICT_WORD[overall]}{", INCOMPLETE" if summary.get("problems") else ""}</span>',
     ]
     if frames:
         frac = usable.get("fraction")
@@ -573,7 +574,7 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
             t0, t1 = tkey.get((c, p, first), math.nan), tkey.get((c, p, last), math.nan)
             parts.append("<tr>" + (f"<td>{c}/{p}</td>" if multi else "")
                          + f"<td>{first if first == last else f'{first}–{last}'}</td>"
-                         f"<td>{e(session_clock(t0) if first == last else f'{session_clock(t0)}–{session_clock(t1)}')}"
+                         f"<td>{e(_span(t0, t1, first == last))}"
                          f"</td><td class='num'>{last - first + 1}</td><td>{e(_reason_text(why, profile))}</td></tr>")
         parts.append("</table>")
         if len(ranges) > MAX_EXCLUDE_ROWS:
@@ -589,7 +590,8 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         body = (f'<img alt="{e(title)}" src="data:image/png;base64,{png}">' if png is not None
                 else "<div class='noimage'>not shown</div>")
         parts.append(f"<figure>{body}<figcaption><b>{e(title)}</b>: {e(caption)}</figcaption></figure>")
-    parts.append("</div><p class='small'>Each image is shown between its own 0.5th and 99.5th percentiles (of the pixels below the detector maximum).</p>")
+    parts.append("</div><p class='small'>Each image is shown between its own 0.5th and 99.5th percentiles (of the "
+                 "pixels below the detector maximum).</p>")
 
     # statistics with units
     parts.append("<h2>Metrics</h2><table><tr><th>metric</th><th>verdict</th><th>statistics</th>"
@@ -664,6 +666,15 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         parts.append("<p>No acquisition facts recorded.</p>")
     parts.append("</body></html>")
     return "\n".join(parts) + "\n"
+
+
+def _box_class(verdict: str, summary: Mapping) -> str:
+    """A session whose frames were not all read (input problems) is never shown as a green pass."""
+    return "warning" if verdict in ("pass", "unknown") and summary.get("problems") else verdict
+
+
+def _span(t0: float, t1: float, single: bool) -> str:
+    return session_clock(t0) if single else f"{session_clock(t0)}–{session_clock(t1)}"
 
 
 def _secs(v) -> str:

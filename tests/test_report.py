@@ -330,3 +330,13 @@ def test_summarize_prints_the_verdict_line_first_and_the_report_shows_the_field(
     assert "frames usable" in first and f"of {summary['frames']:,} frames" in first
     text = (out / "report.html").read_text(encoding="utf-8")
     assert '<img alt="Reference"' in text and '<img alt="Worst moment"' in text
+
+
+def test_a_session_with_unread_frames_is_not_a_green_pass(session):
+    prof, traces, events, facts, summary = session
+    clean = dict(summary, verdict="pass")
+    top = report_html(clean, traces, [], prof, facts).split("Caution")[0]
+    assert 'class="verdict pass"' in top and "INCOMPLETE" not in top
+    cut = dict(clean, problems=["run_3.tif, page 0: file is incomplete at the end"])
+    top = report_html(cut, traces, [], prof, facts).split("Caution")[0]
+    assert 'class="verdict pass"' not in top and "PASS, INCOMPLETE" in top and "1 input problem" in top

@@ -200,7 +200,8 @@ th,td{border:1px solid #ccc;padding:2px 4px;text-align:right;vertical-align:top}
 th{cursor:pointer;background:#eee;font-weight:600}
 td.t{text-align:left;overflow-wrap:anywhere}td.v{text-align:left;white-space:nowrap;font-weight:600}
 td.err{text-align:left;color:#900;overflow-wrap:anywhere;min-width:12em;max-width:24em}
-.fail,.error{background:#f5b7b1}.warning,.incomplete{background:#fcf3cf}.pass{background:#d5f5e3}.unknown{background:#eee}
+.fail,.error{background:#f5b7b1}.warning,.incomplete{background:#fcf3cf}.pass{background:#d5f5e3}
+.unknown{background:#eee}
 .flag{background:#f5b7b1}caption{text-align:left;font-weight:bold;padding:4px 0}small{color:#555}
 img{display:block}.nw{white-space:nowrap}"""
 
@@ -229,7 +230,8 @@ _CHRONIC_SHOWN: tuple[tuple[str, str], ...] = (
 )
 
 _RANK = {"error": 0, "incomplete": 1, "fail": 2, "warning": 3, "unknown": 4, "pass": 5}
-_WORD = {"error": "✗ NOT READ", "fail": "‼ FAIL", "warning": "! WARNING", "pass": "✓ PASS", "unknown": "? NOT CHECKED"}
+_WORD = {"error": "✗ NOT READ", "fail": "‼ FAIL", "warning": "! WARNING", "pass": "✓ PASS",
+         "unknown": "? NOT CHECKED"}
 
 
 def page_state(row: Mapping) -> tuple[str, str]:
