@@ -303,7 +303,9 @@ def run_audit(opts: AuditOptions, *, progress_stream: TextIO | None = None, prog
     n_fail = sum(1 for r in rows if r["verdict"] == "fail")
     flagged_fields = sorted({c["field"] for c in chronic if c["field_flags"]})
     header = (f"{len(rows)} sessions under {', '.join(str(r) for r in opts.roots)}; profile {fingerprint['name']}; "
-              f"{n_fail} failed, {n_err} could not be read; fields flagged over days: "
+              f"{n_fail} failed, {n_err} could not be read, "
+              f"{sum(1 for r in rows if r['status'] != 'error' and r.get('error'))} with frames that could not be "
+              "read; fields flagged over days: "
               f"{', '.join(flagged_fields) if flagged_fields else 'none'}. qcmon advises only: decisions about the "
               "animal and the laser follow local rules and licensed practice.")
     audit_html = write_html(out_dir / "audit.html", listed, sparks, chronic, title="qcmon audit", header=header)
