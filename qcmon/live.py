@@ -577,6 +577,8 @@ class Monitor:
         summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
         summary["problems"] = list(self.problems)
         summary["session"] = str(self.path)
+        if self.options.dataset is not None:  # the series of a container (the report reads a frame back from it)
+            summary["dataset"] = self.options.dataset
         # the verdict line first: the dashboard prints these in order when it leaves
         paths = {"verdict": verdict_line(summary), "out_dir": str(self.out_dir)}
         if self.earlier_record is not None:

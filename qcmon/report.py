@@ -352,7 +352,7 @@ def worst_moment(traces: Mapping[str, np.ndarray], profile: Profile) -> tuple[in
     return best
 
 
-def _read_frame(source: str, page: int, session: str | None) -> np.ndarray:
+def _read_frame(source: str, page: int, session: str | None, dataset: str | None = None) -> np.ndarray:
     """One recorded frame from the microscope's file, opened read-only and closed at once. Raises OSError or
     ValueError with a reason when it cannot be read from here."""
     path = Path(source)
@@ -363,6 +363,19 @@ def _read_frame(source: str, page: int, session: str | None) -> np.ndarray:
                 break
     if not path.exists():
         raise OSError(f"{source} is not there any more (or not reachable from here)")
+    from qcmon.sources.arrays import ArrayStream, container_kind
+
+    if container_kind(str(path)) is not None:  # HDF5, NWB, Zarr: the series' frame number `page`
+        from qcmon.sources._drain import drain
+
+        stream = ArrayStream(str(path), dataset=dataset)
+        stream.skip_frames = page
+        frames, err = drain(stream.iter_read(1, give_up=True))
+        if not frames:
+            raise ValueError(f"{path}: frame {page} could not be read ({err or 'the series has fewer frames'})")
+        if isinstance(frames[0][1], Exception):
+            raise ValueError(f"{path}: frame {page} could not be read ({frames[0][1]})")
+        return np.asarray(frames[0][1])
     if path.suffix.lower() == ".raw":
         from qcmon.sources.raw import RawStream
 
@@ -448,7 +461,7 @@ def _field_images(out_dir: Path | None, summary: Mapping, traces: Mapping[str, n
         where += " — no metric reached a warning level; this is the frame closest to one"
     source = str(traces["source"][i]) if "source" in traces else ""
     try:
-        frame = _read_frame(source, int(traces["page"][i]), summary.get("session"))
+        frame = _read_frame(source, int(traces["page"][i]), summary.get("session"), summary.get("dataset"))
     except Exception as exc:  # noqa: BLE001 - a file half-written, moved or odd: the report is written without it
         out.append(("Worst moment", f"{where}. Not shown: {exc}", None))
         return out

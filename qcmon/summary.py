@@ -594,7 +594,7 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
             old = json.loads(previous.read_text(encoding="utf-8"))
         except (OSError, ValueError):
             old = {}
-        kept = {k: old[k] for k in ("session", "problems") if isinstance(old, dict) and k in old}
+        kept = {k: old[k] for k in ("session", "problems", "dataset") if isinstance(old, dict) and k in old}
         if kept:
             info = {**info, "extra": {**(info.get("extra") or {}), **kept}}
     if profile is None:

@@ -340,3 +340,19 @@ def test_a_session_with_unread_frames_is_not_a_green_pass(session):
     cut = dict(clean, problems=["run_3.tif, page 0: file is incomplete at the end"])
     top = report_html(cut, traces, [], prof, facts).split("Caution")[0]
     assert 'class="verdict pass"' not in top and "PASS, INCOMPLETE" in top and "1 input problem" in top
+
+
+def test_the_worst_frame_is_read_back_from_an_hdf5_series(tmp_path):
+    # a container's frames are named in traces.csv by the file and the frame number within its series
+    import h5py  # a dependency of qcmon (HDF5 and NWB sources)
+    from qcmon.report import _read_frame
+    from tests.outside_data import nuclei_2d
+
+    data = np.stack([nuclei_2d()[i:i + 48, 2 * i:2 * i + 40] for i in range(12)])  # real image, moved each frame
+    path = tmp_path / "run.h5"
+    with h5py.File(path, "w") as f:
+        f.create_dataset("imaging/frames", data=data)
+    np.testing.assert_array_equal(_read_frame(str(path), 7, None), data[7])
+    np.testing.assert_array_equal(_read_frame(str(path), 0, None, "imaging/frames"), data[0])
+    with pytest.raises(ValueError, match="frame 12"):
+        _read_frame(str(path), 12, None)
