@@ -588,11 +588,13 @@ class Monitor:
         files = {SUMMARY_FILE: json.dumps(_jsonable(summary), indent=2, ensure_ascii=False),
                  EXCLUDE_FILE: _exclude_csv(exclude_ranges(traces, events, self.profile))}
         names = {SUMMARY_FILE: "summary", EXCLUDE_FILE: "exclude", REFERENCE_FILE: "reference", REPORT_FILE: "report"}
+        ref = None
         if engine is not None and engine.streams:
             ref = engine.reference_image(*engine.streams[0])
             if ref is not None:
                 files[REFERENCE_FILE] = _tiff_bytes(ref)
-        files[REPORT_FILE] = report_html(summary, traces, events, self.profile, facts, panels=panels)
+        files[REPORT_FILE] = report_html(summary, traces, events, self.profile, facts, panels=panels,
+                                         reference=ref)
         with _signals_held():
             if self._aborted.is_set():
                 raise KeyboardInterrupt

@@ -420,19 +420,19 @@ def _image_png(image: np.ndarray, *, marks: Mapping[str, np.ndarray] | None = No
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
-def _field_images(out_dir: Path | None, summary: Mapping, traces: Mapping[str, np.ndarray], profile: Profile
-                  ) -> list[tuple[str, str, str | None]]:
+def _field_images(out_dir: Path | None, summary: Mapping, traces: Mapping[str, np.ndarray], profile: Profile,
+                  reference: np.ndarray | None = None) -> list[tuple[str, str, str | None]]:
     """``(title, caption, base64 PNG or None)`` for the reference image and the field at the worst moment; the
     caption says why an image is missing."""
     from qcmon.record import REFERENCE_FILE
 
     out: list[tuple[str, str, str | None]] = []
     ref_path = Path(out_dir) / REFERENCE_FILE if out_dir is not None else None
-    if ref_path is not None and ref_path.exists():
+    if reference is not None or (ref_path is not None and ref_path.exists()):
         try:
             import tifffile
 
-            ref = tifffile.imread(ref_path)
+            ref = np.asarray(reference) if reference is not None else tifffile.imread(ref_path)
             first = (summary.get("streams") or [{}])[0]
             out.append(("Reference", f"the image displacements are measured against (channel "
                         f"{first.get('channel', 0)}, plane {first.get('plane', 0)}; {ref.shape[-1]} × "
@@ -513,8 +513,10 @@ MAX_EXCLUDE_ROWS = 40
 
 def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile,
                 facts: Mapping | None = None, *, plots: PlotWorkers | None = None,
-                panels: PanelDrawing | None = None, out_dir: str | Path | None = None) -> str:
-    """The text of ``report.html`` (see :func:`write_report`)."""
+                panels: PanelDrawing | None = None, out_dir: str | Path | None = None,
+                reference: np.ndarray | None = None) -> str:
+    """The text of ``report.html`` (see :func:`write_report`); ``reference``, the reference image, else
+    ``reference.tif`` in ``out_dir``."""
     e = html.escape
     events = list(events)
     facts = dict(facts if facts is not None else summary.get("facts", {}))
@@ -599,7 +601,7 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
     # the field
     parts.append("<h2>The field</h2><div class='images'>")
     for title, caption, png in _field_images(Path(out_dir) if out_dir is not None else None, summary, traces,
-                                             profile):
+                                             profile, reference):
         body = (f'<img alt="{e(title)}" src="data:image/png;base64,{png}">' if png is not None
                 else "<div class='noimage'>not shown</div>")
         parts.append(f"<figure>{body}<figcaption><b>{e(title)}</b>: {e(caption)}</figcaption></figure>")
