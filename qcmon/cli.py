@@ -201,6 +201,7 @@ def cmd_summarize(args) -> int:
               file=sys.stderr)
     if "earlier" in paths:
         print(f"earlier record moved to {display_path(paths['earlier'])}")
+    print(f"verdict: {paths['verdict']}")
     print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}\n"
           f"traces:  {display_path(Path(paths['out_dir']) / 'traces.csv')}")
     return EXIT_OK
@@ -261,7 +262,7 @@ def run_watch(monitor, *, plain: bool) -> int:
         print(f"qcmon: {RATE_UNKNOWN}: times, durations and per-minute values (bleaching) are blank", flush=True)
     if "earlier" in paths:
         print(f"earlier record moved to {display_path(paths['earlier'])}", flush=True)
-    print(f"summary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}", flush=True)
+    print(f"verdict: {paths['verdict']}\nsummary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}", flush=True)
     return EXIT_OK
 
 

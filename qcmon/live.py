@@ -43,7 +43,7 @@ from qcmon.sources.raw import RAW_SUFFIXES
 from qcmon.sources.session import TIFF_SUFFIXES, SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
-from qcmon.summary import exclude_ranges, summarize_traces
+from qcmon.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
@@ -187,8 +187,9 @@ class Monitor:
     def run(self, listener: Listener | None = None) -> dict:
         """Measure until stopped (or idle, or, with ``follow=False``, until everything on disk is measured).
 
-        Returns ``{"summary": path, "report": path, "exclude": path, "out_dir": path}``, and ``"earlier"``: where
-        an earlier record in ``out_dir`` was moved (``resume=False``).
+        Returns ``{"verdict": line, "summary": path, "report": path, "exclude": path, "out_dir": path}`` (the
+        verdict line of :func:`qcmon.summary.verdict_line`), and ``"earlier"``: where an earlier record in
+        ``out_dir`` was moved (``resume=False``).
         """
         # Frames are read into new arrays: keep freed memory for the next ones (see qcmon._memory).
         keep_freed_memory()
@@ -704,7 +705,10 @@ class Monitor:
         summary = summarize_traces(traces, events, facts=facts, profile=self.profile, extra=extra)
         summary["problems"] = list(self.problems)
         summary["session"] = display_path(self.path)
-        paths = {"out_dir": str(self.out_dir)}
+        if self.options.dataset is not None:  # the series of a container (the report reads a frame back from it)
+            summary["dataset"] = self.options.dataset
+        # the verdict line first: the dashboard prints these in order when it leaves
+        paths = {"verdict": verdict_line(summary), "out_dir": str(self.out_dir)}
         if self.earlier_record is not None:
             paths["earlier"] = str(self.earlier_record)
         # the summary, exclude list, reference image and report are written as one set (all new, or all as
@@ -712,11 +716,13 @@ class Monitor:
         files = {SUMMARY_FILE: json.dumps(_jsonable(summary), indent=2, ensure_ascii=False),
                  EXCLUDE_FILE: _exclude_csv(exclude_ranges(traces, events, self.profile))}
         names = {SUMMARY_FILE: "summary", EXCLUDE_FILE: "exclude", REFERENCE_FILE: "reference", REPORT_FILE: "report"}
+        ref = None
         if engine is not None and engine.streams:
             ref = engine.reference_image(*engine.streams[0])
             if ref is not None:
                 files[REFERENCE_FILE] = _tiff_bytes(ref)
-        files[REPORT_FILE] = report_html(summary, traces, events, self.profile, facts, panels=panels)
+        files[REPORT_FILE] = report_html(summary, traces, events, self.profile, facts, panels=panels,
+                                         reference=ref)
         with _signals_held():
             if self._aborted.is_set():
                 raise KeyboardInterrupt

@@ -60,6 +60,8 @@ key                                unit       meaning
 ``streams``                                   list, one entry per (channel, plane): ``channel``, ``plane``,
                                               ``frames``, ``duration_s``, ``verdict`` and the groups above
 ``exclude``                                   list of ``[channel, plane, first_frame, last_frame, reason]``
+``usable.frames``                             rows of ``traces.csv`` outside every ``exclude`` range
+``usable.fraction``                0..1       ``usable.frames`` ÷ ``frames`` (null without frames)
 ``notes``                                     why a statistic is null (e.g. too few frames for a fit)
 =================================  =========  ==================================================================
 
@@ -92,6 +94,8 @@ __all__ = [
     "fit_bleaching",
     "rebuild",
     "summarize_traces",
+    "usable_frames",
+    "verdict_line",
     "write_outputs",
 ]
 
@@ -112,6 +116,15 @@ GROUPS: dict[str, tuple[str, ...]] = {
 }
 
 _VERDICT_RANK = {"unknown": -1, "pass": 0, "warning": 1, "fail": 2}
+
+#: What a reader calls each group (the report, the verdict line, the audit page).
+GROUP_LABELS: dict[str, str] = {
+    "motion": "motion", "registration": "registration correlation", "z": "z offset", "focus": "focus correlation",
+    "bleach": "bleaching", "brightness": "brightness", "saturation": "saturated pixels",
+    "clipping": "clipped pixels", "snr": "SNR", "line_offset": "line offset",
+}
+#: The overall verdict in words.
+VERDICT_WORDS: dict[str, str] = {"pass": "PASS", "warning": "WARNING", "fail": "FAIL", "unknown": "NOT CHECKED"}
 #: Metrics whose values beyond the alarm level exclude a frame even outside a declared alarm.
 _EXCLUDE_BY_VALUE = ("displacement_um", "displacement_px", "z_um")
 
@@ -411,7 +424,9 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
             worst = g["verdict"]
     summary["verdict"] = worst
     summary["streams"] = per
-    summary["exclude"] = [list(r) for r in exclude_ranges(traces, events, profile)]
+    ranges = exclude_ranges(traces, events, profile)
+    summary["exclude"] = [list(r) for r in ranges]
+    summary["usable"] = usable_frames(traces, ranges)
     summary["notes"] = notes
     if extra:
         _merge_extra(summary, extra)
@@ -469,6 +484,76 @@ def _beyond_alarm(traces, idx, lim) -> np.ndarray:
     with np.errstate(invalid="ignore"):
         a = np.abs(v) if lim.direction == "abs_above" else v
         return a < lim.alarm if lim.direction == "below" else a > lim.alarm
+
+
+def usable_frames(traces: Mapping[str, np.ndarray], ranges: Iterable[ExcludeRange]) -> dict:
+    """Rows of ``traces`` outside every exclusion range: ``{"frames": int, "fraction": float}`` (fraction NaN
+    without rows). A row is excluded when its (channel, plane) matches a range and its frame lies within it."""
+    ch = np.asarray(traces["channel"], dtype=np.int64)
+    pl = np.asarray(traces["plane"], dtype=np.int64)
+    fr = np.asarray(traces["frame"], dtype=np.int64)
+    out = np.zeros(fr.size, bool)
+    for r in ranges:
+        out |= (ch == r[0]) & (pl == r[1]) & (fr >= r[2]) & (fr <= r[3])
+    n = int(fr.size)
+    usable = n - int(out.sum())
+    return {"frames": usable, "fraction": usable / n if n else math.nan}
+
+
+def session_clock(seconds: float) -> str:
+    """Session time as a reader writes it: ``"0:42.5"`` (min:s), ``"1:02:03"`` from an hour; ``"—"`` when
+    unknown."""
+    try:
+        t = float(seconds)
+    except (TypeError, ValueError):
+        return "—"
+    if not math.isfinite(t):
+        return "—"
+    sign, t = ("−" if t < 0 else ""), abs(t)
+    if t >= 3600:
+        h, rest = divmod(int(round(t)), 3600)
+        return f"{sign}{h}:{rest // 60:02d}:{rest % 60:02d}"
+    m, sec = divmod(round(t, 1), 60)
+    return f"{sign}{int(m)}:{sec:04.1f}"
+
+
+def verdict_line(summary: Mapping) -> str:
+    """One line for the terminal and the page's top: the verdict, the share of usable frames, the metrics that
+    warned or alarmed with their time in that state, ranges to exclude and input problems.
+
+    e.g. ``"WARNING · 1,793 of 1,800 frames usable (99.6 %) · warning: saturated pixels 17.5 s · 7 ranges to
+    exclude (exclude.csv)"``."""
+    return " · ".join(verdict_parts(summary))
+
+
+def verdict_parts(summary: Mapping) -> list[str]:
+    """The pieces of :func:`verdict_line`: the verdict word, the usable frames, then the reasons."""
+    verdict = summary.get("verdict", "unknown")
+    parts = [VERDICT_WORDS.get(verdict, VERDICT_WORDS["unknown"])]
+    frames = int(summary.get("frames") or 0)
+    usable = summary.get("usable") or {}
+    if not frames:
+        parts.append("no frames measured")
+    elif isinstance(usable.get("frames"), int):
+        frac = usable.get("fraction")
+        pct = f" ({100 * frac:.1f} %)" if isinstance(frac, float) and math.isfinite(frac) else ""
+        parts.append(f"{usable['frames']:,} of {frames:,} frames usable{pct}")
+    for state, key in (("alarm", "alarm_s"), ("warning", "warning_s")):
+        hit = []
+        for group, label in GROUP_LABELS.items():
+            g = summary.get(group)
+            if isinstance(g, Mapping) and g.get("verdict") == ("fail" if state == "alarm" else "warning"):
+                t = g.get(key)
+                hit.append(f"{label} {t:.1f} s" if isinstance(t, (int, float)) and t > 0 else label)
+        if hit:
+            parts.append(f"{state}: " + ", ".join(hit))
+    n_ex = len(summary.get("exclude") or ())
+    if n_ex:
+        parts.append(f"{n_ex} range{'s' if n_ex != 1 else ''} to exclude (exclude.csv)")
+    problems = summary.get("problems") or ()
+    if problems:
+        parts.append(f"{len(problems)} input problem{'s' if len(problems) != 1 else ''}")
+    return parts
 
 
 def exclude_csv(ranges: Iterable[ExcludeRange]) -> str:
@@ -554,6 +639,14 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
         info = {"facts": old.get("facts", {}), "profile": (old.get("profile") or {}).get("path") or "default",
                 "extra": {f"photon_transfer.{k}": (math.nan if v is None else v)
                           for k, v in (old.get("photon_transfer") or {}).items()}}
+    if previous.exists():  # what only the run knew: the session's path and the input problems it met
+        try:
+            old = json.loads(previous.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            old = {}
+        kept = {k: old[k] for k in ("session", "problems", "dataset") if isinstance(old, dict) and k in old}
+        if kept:
+            info = {**info, "extra": {**(info.get("extra") or {}), **kept}}
     if profile is None:
         profile = info.get("profile", "default")
     if not isinstance(profile, Profile):

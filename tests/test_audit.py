@@ -455,3 +455,55 @@ def test_chronic_series_shift_and_fading(tmp_path):
     res2 = run_audit(AuditOptions(roots=[root], out_dir=tmp_path / "out", group_by=r"^(mouse\d+)/"),
                      progress=False)
     assert {r["field"] for r in res2["chronic"]} == {"mouse1"} and res2["reused"] == 4
+
+
+# ------------------------------------------------------------------------------------------------ the page
+def test_a_truncated_or_unread_session_is_never_a_green_pass():
+    from qcmon.audit._write import page_state
+
+    assert page_state({"verdict": "pass", "status": "measured", "error": ""}) == ("pass", "✓ PASS")
+    cls, word = page_state({"verdict": "pass", "status": "measured",
+                            "error": "run_3.tif, page 0: file is incomplete at the end"})
+    assert cls != "pass" and "INCOMPLETE" in word
+    assert page_state({"verdict": "error", "status": "error", "error": "not a TIFF"})[0] == "error"
+    assert page_state({"verdict": "fail", "status": "measured", "error": "x"})[0] == "fail"
+
+
+def test_worst_sessions_come_first():
+    from qcmon.audit._write import worst_first
+
+    rows = [{"path": "a", "verdict": "pass", "status": "measured", "error": ""},
+            {"path": "b", "verdict": "warning", "status": "measured", "error": "", "alarms": 0, "warnings": 1},
+            {"path": "c", "verdict": "fail", "status": "measured", "error": "", "alarms": 1, "warnings": 0},
+            {"path": "d", "verdict": "fail", "status": "measured", "error": "", "alarms": 4, "warnings": 0},
+            {"path": "e", "verdict": "pass", "status": "measured", "error": "truncated"},
+            {"path": "f", "verdict": "error", "status": "error", "error": "unreadable"},
+            {"path": "g", "verdict": "unknown", "status": "measured", "error": ""}]
+    assert [r["path"] for r in worst_first(rows)] == ["f", "e", "d", "c", "b", "g", "a"]
+
+
+def test_fields_are_named_by_the_path_their_sessions_share():
+    from qcmon.audit import match_fields  # noqa: F401 - the names replace its first-session keys
+    from qcmon.audit._chronic import shared_path_names
+
+    got = shared_path_names({"m1/fov2/2026-11-01": "k1", "m1/fov2/2026-11-08": "k1",
+                             "m1/2026-11-01/fovA": "k2", "m1/2026-11-08/fovA": "k2",
+                             "m2/2026-11-01/fovB": "k3", "m9/x": "k4",
+                             "m3/a/deep/s1": "k5", "m3/a/s2": "k5"})
+    assert got["m1/fov2/2026-11-08"] == "m1/fov2" and got["m1/2026-11-08/fovA"] == "m1/*/fovA"
+    assert got["m2/2026-11-01/fovB"] == "m2/2026-11-01/fovB" and got["m3/a/s2"] == "m3/a"
+    # two fields whose shared paths coincide stay two fields
+    twin = shared_path_names({"m1/d1/s": "k1", "m1/d2/s": "k1", "m1/d3/s": "k2", "m1/d4/s": "k2"})
+    assert twin["m1/d1/s"] != twin["m1/d3/s"] and twin["m1/d1/s"] == "m1/*/s"
+
+
+def test_sparkline_axes_keep_small_changes_small():
+    from qcmon.audit._write import sparkline_scale
+
+    # a 1 % change of brightness and 0.1 µm of motion: the axes stay 80–100 % and 0–2 µm wide, so the change
+    # fills 5 % of the height, not all of it (levels: the default profile's brightness and displacement warnings)
+    top, (lo, hi) = sparkline_scale(np.array([0.1, 0.2]), np.array([100.0, 99.0]))
+    assert top == 2.0 and (lo, hi) == (80.0, 100.0)
+    top, (lo, hi) = sparkline_scale(np.array([0.1, 9.0]), np.array([130.0, 40.0]))
+    assert top == 9.0 and (lo, hi) == (40.0, 130.0)
+    assert sparkline_scale(np.array([np.nan]), np.array([np.nan])) == (2.0, (80.0, 100.0))

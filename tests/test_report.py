@@ -72,11 +72,11 @@ def test_report_is_self_contained_valid_html(tmp_path, session):
     for ref in parser.refs:  # every embedded image is a real PNG
         assert base64.b64decode(ref.split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
     body = "".join(parser.text)
-    assert "Overall: FAIL" in body
+    assert "‼ FAIL" in body.split("Caution")[0]  # the verdict comes first, before the caution
     assert parser.imgs >= 8  # displacement, focus, registration, brightness, bleach, saturation, clipping, snr, line
     assert "animal <groomed> & moved" in body  # the note, escaped in the source
     assert "TIFF resolution tag" in body and prof.caution in body
-    assert "alarm: displacement_um" in body  # the frame range to exclude
+    assert "alarm of displacement" in body  # the frame range to exclude, in words
     assert "z offset" in body and "not measured" in body
 
 
@@ -135,3 +135,224 @@ def test_plot_processes_run_at_the_lowest_priority():
     finally:
         workers.close()
     assert theirs == min(19, os.getpriority(os.PRIO_PROCESS, 0) + 19)
+
+
+# --- the page a PI reads in one minute -------------------------------------------------------------------------------
+
+
+def _text(html_text: str) -> str:
+    parser = _Checker()
+    parser.feed(html_text)
+    return "".join(parser.text)
+
+
+def test_verdict_and_share_of_usable_frames_come_first(session):
+    prof, traces, events, facts, summary = session
+    # the share of usable frames counted here from the exclusion ranges, row by row (the definition: a frame is
+    # usable unless exclude.csv names it — common practice, no source)
+    excluded = sum(1 for c, p, f in zip(traces["channel"], traces["plane"], traces["frame"])
+                   if any(r[0] == c and r[1] == p and r[2] <= f <= r[3] for r in summary["exclude"]))
+    n = len(traces["frame"])
+    assert excluded > 0 and summary["usable"] == {"frames": n - excluded, "fraction": (n - excluded) / n}
+    body = _text(report_html(summary, traces, events, prof, facts))
+    top = body.split("Caution")[0]
+    assert f"{100 * (n - excluded) / n:.1f} % of frames usable ({n - excluded:,} of {n:,})" in top
+    assert "motion" in top  # why: the metric in alarm, with its time in alarm
+
+
+def test_statistics_are_readable_with_units(session):
+    prof, traces, events, facts, summary = session
+    body = _text(report_html(summary, traces, events, prof, facts))
+    metrics = body.split("Metrics", 1)[1].split("Traces", 1)[0]
+    assert not re.search(r"\d[eE][+-]?\d", metrics)  # never 6.554e+04
+    assert not re.search(r"\w+_\w+ = ", metrics)  # never max_px = 9.472
+    largest = summary["motion"]["max_um"]
+    assert f"largest {largest:.3g} µm" in metrics
+    assert f"RMS {summary['motion']['rms_um']:.3g} µm" in metrics
+    assert "% of start" in metrics and "%/min" in metrics
+
+
+def test_readable_numbers():
+    from qcmon.report import _fmt
+
+    assert _fmt(65535.0) == "65,535" and _fmt(9.4723) == "9.47" and _fmt(0.000123) == "0.0001"
+    assert _fmt(-4.75198) == "-4.75" and _fmt(float("nan")) == "—" and _fmt(None) == "—" and _fmt(1800) == "1,800"
+    assert _fmt([512, 512]) == "512 × 512"
+
+
+def test_every_event_has_its_session_time_not_the_wall_clock(session):
+    prof, traces, events, facts, summary = session
+    stamped = [ev for ev in events]
+    for ev in stamped:
+        ev.wall_time = "2031-01-01T00:00:00+00:00"  # the time a summary was made, not when it happened
+    body = _text(report_html(summary, traces, stamped, prof, facts))
+    assert "2031-01-01" not in body
+    events_part = body.split("Events and notes", 1)[1]
+    for ev in stamped:
+        m, s = divmod(round(ev.time_s, 1), 60)
+        assert f"{int(m)}:{s:04.1f}" in events_part  # min:s of session time, e.g. the note at 0:15.0
+    assert "0:15.0" in events_part
+
+
+def test_session_clock():
+    from qcmon.summary import session_clock
+
+    assert session_clock(0) == "0:00.0" and session_clock(42.46) == "0:42.5" and session_clock(61.0) == "1:01.0"
+    assert session_clock(3725) == "1:02:05" and session_clock(float("nan")) == "—" and session_clock(None) == "—"
+
+
+def test_every_plot_starts_at_the_first_frame_even_when_the_metric_starts_later(session):
+    from qcmon.report import _PANELS, _panel_figure
+    from qcmon.summary import _streams
+
+    prof, traces, events, facts, summary = session
+    late = dict(traces)
+    late["brightness_pct"] = np.where(np.asarray(traces["time_s"]) < 10.0, np.nan, traces["brightness_pct"])
+    for title, columns, scale, unit in _PANELS:
+        got = _panel_figure(late, _streams(late), events, prof, title, columns, scale, unit)
+        if got is None:
+            continue
+        lo, hi = got[1].axes[0].get_xlim()
+        assert lo <= 0.0 and hi >= float(np.nanmax(traces["time_s"])) - 1e-9, title
+
+
+def test_worst_moment_ranks_metrics_by_their_own_levels():
+    from qcmon.report import worst_moment
+
+    prof = load_profile("default")
+    d, s = prof.limits["displacement_um"], prof.limits["saturated_frac"]
+    n = 50
+    traces = {"displacement_um": np.full(n, d.warn * 0.5), "saturated_frac": np.zeros(n)}
+    traces["displacement_um"][10] = d.alarm  # exactly at its alarm level: 1 on the common scale
+    traces["saturated_frac"][30] = s.warn + 2 * (s.alarm - s.warn)  # twice as far beyond as the alarm
+    row, metric, sev = worst_moment(traces, prof)
+    assert (row, metric) == (30, "saturated_frac") and sev == pytest.approx(2.0)
+    traces["saturated_frac"][30] = 0.0
+    assert worst_moment(traces, prof)[:2] == (10, "displacement_um")
+
+
+def _real_session(tmp_path, frames: int = 40):
+    """A record whose frames are in a real multi-page TIFF cut from a real fluorescence image (outside data)."""
+    import tifffile
+
+    from tests.outside_data import nuclei_2d, specimen_crop
+
+    image = nuclei_2d()
+    stack = np.stack([specimen_crop(image, (96, 96), 0.0, 0.4 * i, margin=24) for i in range(frames)])
+    stack = np.clip(stack, 0, 65535).astype(np.uint16)
+    stack[25, 10:30, 10:30] = 65535  # a saturated patch in frame 25
+    session = tmp_path / "fov"
+    session.mkdir()
+    tifffile.imwrite(session / "run.tif", stack)
+    prof = load_profile("default")
+    rows = make_rows(frames, step=(frames + 1, frames + 2))
+    for i, r in enumerate(rows):
+        r["source"], r["page"] = str(session / "run.tif"), i
+        r["saturated_frac"] = float((stack[i] >= 65535).mean())
+    traces = rows_to_traces(rows)
+    summary = summarize_traces(traces, [], facts={}, profile=prof, extra={"saturation.level_dn": 65535.0})
+    summary["session"] = str(session)
+    return prof, traces, summary, stack
+
+
+def test_report_shows_the_reference_and_the_field_at_its_worst_moment(tmp_path):
+    import tifffile
+
+    prof, traces, summary, stack = _real_session(tmp_path)
+    out = tmp_path / "fov.qcmon"
+    out.mkdir()
+    tifffile.imwrite(out / "reference.tif", stack[:5].mean(axis=0).astype(np.float32))
+    text = write_report(out, summary, traces, [], prof, {}).read_text(encoding="utf-8")
+    body = _text(text)
+    field = body.split("The field", 1)[1].split("Metrics", 1)[0]
+    assert "Reference" in field and "96 × 96 px" in field
+    assert "frame 25 at 0:" in field and "red: pixels at the detector maximum" in field
+    assert text.count('<img alt="Reference"') == 1 and text.count('<img alt="Worst moment"') == 1
+    # the worst frame's picture is that frame: decode it and find the red saturated patch where it was put
+    import io
+
+    from PIL import Image
+
+    png = re.search(r'<img alt="Worst moment" src="data:image/png;base64,([^"]+)"', text).group(1)
+    rgb = np.asarray(Image.open(io.BytesIO(base64.b64decode(png))).convert("RGB"))
+    assert rgb.shape == (96, 96, 3)
+    red = (rgb[..., 0] == 255) & (rgb[..., 1] == 0x20)
+    assert red[10:30, 10:30].all() and red.sum() == 400
+
+
+def test_a_missing_frame_file_is_a_blank_with_its_reason(tmp_path):
+    prof, traces, summary, _ = _real_session(tmp_path)
+    (tmp_path / "fov" / "run.tif").unlink()  # the microscope's file moved away since
+    text = report_html(summary, traces, [], prof, {}, out_dir=tmp_path / "nothing")
+    body = _text(text)
+    assert "Not shown:" in body and "run.tif is not there" in body
+    assert "no reference image was recorded" in body
+    assert '<img alt="Worst moment"' not in text
+
+
+def test_advice_of_the_events_is_shown_when_the_record_has_it(session):
+    # events.jsonl gains an "advice" field (what a warning likely means and what to check); the page shows it
+    # when the record has it, and a record without it still gives a page
+    from types import SimpleNamespace
+
+    prof, traces, events, facts, summary = session
+    with_advice = [SimpleNamespace(**{k: getattr(ev, k) for k in Event.__slots__}, advice="") for ev in events]
+    first_alarm = next(ev for ev in with_advice if ev.kind == "start" and ev.state == "alarm")
+    first_alarm.advice = "check the head fixation; take a new reference after it settles"
+    body = _text(report_html(summary, traces, with_advice, prof, facts))
+    assert "What to check" in body and "check the head fixation" in body
+    assert body.count("check the head fixation") == 2  # in the list at the top and beside its event
+    assert "What to check" not in _text(report_html(summary, traces, events, prof, facts))
+
+
+def test_summarize_prints_the_verdict_line_first_and_the_report_shows_the_field(tmp_path):
+    # the whole path on frames of a real fluorescence image (outside data), moved by a few px over time
+    import json
+
+    import tifffile
+
+    from qcmon.summary import verdict_line
+    from tests.outside_data import nuclei_2d, specimen_crop
+    from tests.reliability_data import run_qcmon
+
+    image = nuclei_2d()
+    session = tmp_path / "fov"
+    session.mkdir()
+    for i in range(45):
+        frame = specimen_crop(image, (64, 64), 0.1 * i, -0.1 * i, margin=8)
+        tifffile.imwrite(session / f"frame_{i:03d}.tif", np.clip(frame, 0, 65535).astype(np.uint16))
+    out = tmp_path / "fov.qcmon"
+    res = run_qcmon("summarize", str(session), "--out", str(out), timeout=120)
+    assert res.returncode == 0, res.stderr
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    first = res.stdout.splitlines()[0]
+    assert first == f"verdict: {verdict_line(summary)}"
+    assert "frames usable" in first and f"of {summary['frames']:,} frames" in first
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert '<img alt="Reference"' in text and '<img alt="Worst moment"' in text
+
+
+def test_a_session_with_unread_frames_is_not_a_green_pass(session):
+    prof, traces, events, facts, summary = session
+    clean = dict(summary, verdict="pass")
+    top = report_html(clean, traces, [], prof, facts).split("Caution")[0]
+    assert 'class="verdict pass"' in top and "INCOMPLETE" not in top
+    cut = dict(clean, problems=["run_3.tif, page 0: file is incomplete at the end"])
+    top = report_html(cut, traces, [], prof, facts).split("Caution")[0]
+    assert 'class="verdict pass"' not in top and "PASS, INCOMPLETE" in top and "1 input problem" in top
+
+
+def test_the_worst_frame_is_read_back_from_an_hdf5_series(tmp_path):
+    # a container's frames are named in traces.csv by the file and the frame number within its series
+    import h5py  # a dependency of qcmon (HDF5 and NWB sources)
+    from qcmon.report import _read_frame
+    from tests.outside_data import nuclei_2d
+
+    data = np.stack([nuclei_2d()[i:i + 48, 2 * i:2 * i + 40] for i in range(12)])  # real image, moved each frame
+    path = tmp_path / "run.h5"
+    with h5py.File(path, "w") as f:
+        f.create_dataset("imaging/frames", data=data)
+    np.testing.assert_array_equal(_read_frame(str(path), 7, None), data[7])
+    np.testing.assert_array_equal(_read_frame(str(path), 0, None, "imaging/frames"), data[0])
+    with pytest.raises(ValueError, match="frame 12"):
+        _read_frame(str(path), 12, None)

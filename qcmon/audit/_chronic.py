@@ -24,7 +24,8 @@ import numpy as np
 #: 0.8 lies between with room on both sides (measured here, not a published value).
 SAME_FIELD_CORR = 0.8
 
-__all__ = ["SAME_FIELD_CORR", "register_references", "linear_trend", "field_keys", "match_fields", "chronic_table"]
+__all__ = ["SAME_FIELD_CORR", "register_references", "linear_trend", "field_keys", "match_fields", "chronic_table",
+           "shared_path_names"]
 
 
 def _prep(image: np.ndarray) -> np.ndarray:
@@ -173,6 +174,48 @@ def match_fields(order: Sequence[str], references: Mapping[str, np.ndarray], *,
         out[rel] = fld
         latest[fld] = rel
     return out
+
+
+def shared_path_names(fields: Mapping[str, str]) -> dict[str, str]:
+    """Name each field by the path its sessions share: ``mouse1/fov2/2026-11-01`` and ``mouse1/fov2/2026-11-08``
+    give ``mouse1/fov2``; ``m1/2026-11-01/fovA`` and ``m1/2026-11-08/fovA`` give ``m1/*/fovA`` (``*`` where the
+    sessions differ, trailing ones dropped). Paths of different depths share their leading folders. A field of one
+    session keeps its path; two fields that would share a name keep it with `` #2``, `` #3`` added.
+
+    Parameters
+    ----------
+    fields : mapping
+        Relative path → field key (e.g. from :func:`match_fields`).
+
+    Returns
+    -------
+    dict
+        Relative path → field name.
+    """
+    members: dict[str, list[str]] = {}
+    for rel, fld in fields.items():
+        members.setdefault(fld, []).append(rel)
+    names: dict[str, str] = {}
+    used: dict[str, int] = {}
+    for fld, rels in members.items():
+        parts = [r.replace("\\", "/").split("/") for r in rels]
+        if len(rels) == 1:
+            name = rels[0]
+        else:
+            if len({len(p) for p in parts}) == 1:
+                shared = ["*" if len({p[i] for p in parts}) > 1 else parts[0][i] for i in range(len(parts[0]))]
+            else:
+                shared = []
+                for column in zip(*parts):
+                    if len(set(column)) > 1:
+                        break
+                    shared.append(column[0])
+            while shared and shared[-1] == "*":
+                shared.pop()
+            name = "/".join(shared) or rels[0]
+        used[name] = used.get(name, 0) + 1
+        names[fld] = name if used[name] == 1 else f"{name} #{used[name]}"
+    return {rel: names[fld] for rel, fld in fields.items()}
 
 
 def _days(dates: Sequence[datetime | None]) -> list[float]:

@@ -15,7 +15,7 @@ from typing import TextIO
 
 import numpy as np
 
-from qcmon.audit._chronic import SAME_FIELD_CORR, chronic_table, field_keys, match_fields
+from qcmon.audit._chronic import SAME_FIELD_CORR, chronic_table, field_keys, match_fields, shared_path_names
 from qcmon.audit._discover import SessionEntry, discover_sessions, session_date
 from qcmon.audit._measure import MONITOR_KEYS, measure_session, profile_fingerprint, reusable
 from qcmon.audit._write import AUDIT_COLUMNS, CHRONIC_COLUMNS, session_row, sparkline, write_csv, write_html
@@ -286,7 +286,8 @@ def run_audit(opts: AuditOptions, *, progress_stream: TextIO | None = None, prog
     if opts.group_by is not None:
         fields = {k: v for k, v in field_keys([r["path"] for r in ordered], opts.group_by).items() if v is not None}
     else:
-        fields = match_fields([r["path"] for r in ordered], refs, min_corr=opts.same_field_corr)
+        # fields found by their images are named by the path their sessions share
+        fields = shared_path_names(match_fields([r["path"] for r in ordered], refs, min_corr=opts.same_field_corr))
     chronic_in = [{"path": r["path"], "date": r["_date"], "date_origin": r["date_origin"],
                    "pixel_size_um": r["pixel_size_um"], **{c: r.get(c) for c in
                    ("brightness_above_dark_dn", "snr_median", "photons_per_px_median", "motion_rms_um")}}
@@ -302,7 +303,9 @@ def run_audit(opts: AuditOptions, *, progress_stream: TextIO | None = None, prog
     n_fail = sum(1 for r in rows if r["verdict"] == "fail")
     flagged_fields = sorted({c["field"] for c in chronic if c["field_flags"]})
     header = (f"{len(rows)} sessions under {', '.join(str(r) for r in opts.roots)}; profile {fingerprint['name']}; "
-              f"{n_fail} failed, {n_err} could not be read; fields flagged over days: "
+              f"{n_fail} failed, {n_err} could not be read, "
+              f"{sum(1 for r in rows if r['status'] != 'error' and r.get('error'))} with frames that could not be "
+              "read; fields flagged over days: "
               f"{', '.join(flagged_fields) if flagged_fields else 'none'}. qcmon advises only: decisions about the "
               "animal and the laser follow local rules and licensed practice.")
     audit_html = write_html(out_dir / "audit.html", listed, sparks, chronic, title="qcmon audit", header=header)

@@ -14,7 +14,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from qcmon.summary import GROUPS
+from qcmon.summary import GROUP_LABELS, GROUPS
 
 #: Columns of ``audit.csv`` (units in the names).
 AUDIT_COLUMNS: tuple[str, ...] = (
@@ -130,12 +130,41 @@ def write_csv(path: Path, rows: Sequence[Mapping], columns: Sequence[str]) -> Pa
     return write_atomic(path, buf.getvalue())
 
 
+#: Sparkline axes never narrower than these, so that a change of a few % or a fraction of a µm looks as small as
+#: it is: motion from 0 to at least the default warning level of displacement (2 µm or 2 px), brightness over at
+#: least 80–100 % of the start (the default warning level of brightness is 80 %).
+_SPARK_MIN_MOTION = 2.0
+_SPARK_BRIGHTNESS = (80.0, 100.0)
+
+
+def _clock(seconds: float) -> str:
+    from qcmon.summary import session_clock
+
+    text = session_clock(seconds)
+    return text[:-2] if text.endswith(".0") else text
+
+
+def sparkline_scale(displacement: np.ndarray, brightness_pct: np.ndarray) -> tuple[float, tuple[float, float]]:
+    """The axes of a sparkline: the top of the displacement axis (from 0) and the brightness range (%), each at
+    least as wide as :data:`_SPARK_MIN_MOTION` and :data:`_SPARK_BRIGHTNESS` and wide enough for every value."""
+    d = np.asarray(displacement, dtype=float)
+    b = np.asarray(brightness_pct, dtype=float)
+    d_top = max(_SPARK_MIN_MOTION, float(np.nanmax(d)) if np.isfinite(d).any() else 0.0)
+    if np.isfinite(b).any():
+        return d_top, (min(_SPARK_BRIGHTNESS[0], float(np.nanmin(b))), max(_SPARK_BRIGHTNESS[1], float(np.nanmax(b))))
+    return d_top, _SPARK_BRIGHTNESS
+
+
 def sparkline(traces: Mapping[str, np.ndarray] | None) -> str:
-    """A small PNG (base64) of displacement (µm, else px) and brightness (% of initial) over time; "" if no data."""
+    """A small PNG (base64) of displacement (µm, else px, red) and brightness (% of initial, blue) over the whole
+    session, with its scale written on it: each axis's range and the session's length. The axes are at least
+    0–2 (µm or px) and 80–100 %, so small changes look small. "" if no data."""
     if traces is None or "time_s" not in traces or len(traces["time_s"]) == 0:
         return ""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
+
+    from qcmon.report import envelope
 
     t = np.asarray(traces["time_s"], dtype=float)
     disp = np.asarray(traces.get("displacement_um", []), dtype=float)
@@ -143,25 +172,44 @@ def sparkline(traces: Mapping[str, np.ndarray] | None) -> str:
     if disp.size != t.size or not np.isfinite(disp).any():
         disp, unit = np.asarray(traces.get("displacement_px", np.full(t.size, np.nan)), dtype=float), "px"
     bright = np.asarray(traces.get("brightness_pct", np.full(t.size, np.nan)), dtype=float)
-    fig = Figure(figsize=(2.4, 0.6), dpi=80)
+    fig = Figure(figsize=(2.3, 0.75), dpi=80)
     FigureCanvasAgg(fig)
-    ax = fig.add_axes((0, 0, 1, 1))
-    ax.plot(t, disp, color="#c0392b", lw=0.8)
+    ax = fig.add_axes((0, 0.2, 1, 0.56))
     ax2 = ax.twinx()
-    ax2.plot(t, bright, color="#2471a3", lw=0.8)
+    x, _, hi, _ = envelope(t, disp, max_points=200)  # the largest displacement of each bin: spikes stay
+    ax.plot(x, hi, color="#c0392b", lw=0.8)
+    xb, _, _, mb = envelope(t, bright, max_points=200)
+    ax2.plot(xb, mb, color="#2471a3", lw=0.8)
+    d_top, (b_lo, b_hi) = sparkline_scale(disp, bright)
+    ax.set_ylim(0, d_top * 1.05)
+    has_brightness = bool(np.isfinite(bright).any())
+    ax2.set_ylim(b_lo - 0.02 * (b_hi - b_lo), b_hi + 0.02 * (b_hi - b_lo))
+    tf = t[np.isfinite(t)]
+    t0, t1 = (min(0.0, float(tf.min())), float(tf.max())) if tf.size else (0.0, 1.0)
     for a in (ax, ax2):
+        a.set_xlim(t0, t1 if t1 > t0 else t0 + 1)
         a.set_axis_off()
-    fig.text(0.01, 0.72, f"motion {unit}", color="#c0392b", fontsize=6)
-    fig.text(0.60, 0.72, "brightness %", color="#2471a3", fontsize=6)
+    ax.axhline(0, color="#bbb", lw=0.5)
+    fig.text(0.01, 0.8, f"motion 0–{d_top:.3g} {unit}", color="#c0392b", fontsize=6.5)
+    fig.text(0.99, 0.8, f"brightness {b_lo:.3g}–{b_hi:.3g} %" if has_brightness else "no brightness yet",
+             color="#2471a3", fontsize=6.5, ha="right")
+    fig.text(0.01, 0.02, "0:00", color="#555", fontsize=6)
+    fig.text(0.99, 0.02, _clock(t1), color="#555", fontsize=6, ha="right")
     buf = io.BytesIO()
     fig.savefig(buf, format="png")
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
-_CSS = """body{font-family:sans-serif;margin:1.5em;color:#222}table{border-collapse:collapse;font-size:12px}
-th,td{border:1px solid #ccc;padding:2px 5px;text-align:right;white-space:nowrap}th{cursor:pointer;background:#eee}
-td.t{text-align:left}.fail,.error{background:#f5b7b1}.warning{background:#fcf3cf}.pass{background:#d5f5e3}
-.flag{background:#f5b7b1}caption{text-align:left;font-weight:bold;padding:4px 0}small{color:#555}"""
+_CSS = """body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;margin:1em;color:#222}
+table{border-collapse:collapse;font-size:12px;width:100%}
+th,td{border:1px solid #ccc;padding:2px 4px;text-align:right;vertical-align:top}
+th{cursor:pointer;background:#eee;font-weight:600}
+td.t{text-align:left;overflow-wrap:anywhere}td.v{text-align:left;white-space:nowrap;font-weight:600}
+td.err{text-align:left;color:#900;overflow-wrap:anywhere;min-width:12em;max-width:24em}
+.fail,.error{background:#f5b7b1}.warning,.incomplete{background:#fcf3cf}.pass{background:#d5f5e3}
+.unknown{background:#eee}
+.flag{background:#f5b7b1}caption{text-align:left;font-weight:bold;padding:4px 0}small{color:#555}
+img{display:block}.nw{white-space:nowrap}"""
 
 _JS = """document.querySelectorAll('table.sortable th').forEach(function(th,i){th.addEventListener('click',function(){
 var b=th.closest('table').tBodies[0],rows=Array.from(b.rows),asc=th.dataset.asc!=='1';th.dataset.asc=asc?'1':'0';
@@ -169,36 +217,118 @@ rows.sort(function(a,c){var x=a.cells[i].dataset.v,y=c.cells[i].dataset.v,nx=par
 var r=(isNaN(nx)||isNaN(ny))?x.localeCompare(y):nx-ny;return asc?r:-r;});rows.forEach(function(r){b.appendChild(r);});
 });});"""
 
-_SHOWN = ("path", "verdict", "frames", "duration_s", "motion_max_um", "motion_max_px", "z_max_abs_um",
-          "bleach_pct_per_min", "saturated_max_frac", "snr_median", "photons_per_px_median", "gain_dn_per_photon",
-          "error")
+#: Session columns of the page: (column of audit.csv, heading with unit, scale for display).
+_SHOWN: tuple[tuple[str, str, float], ...] = (
+    ("path", "session", 1.0), ("date", "date", 1.0), ("duration_s", "length (min:s)", 1.0),
+    ("frames", "frames", 1.0), ("motion_max_um", "largest motion (µm)", 1.0),
+    ("z_max_abs_um", "largest |z| (µm)", 1.0), ("bleach_pct_per_min", "bleaching (%/min)", 1.0),
+    ("saturated_max_frac", "most saturated (%)", 100.0), ("snr_median", "SNR (median)", 1.0),
+    ("photons_per_px_median", "photons per px (median)", 1.0),
+)
+
+#: Chronic columns of the page.
+_CHRONIC_SHOWN: tuple[tuple[str, str], ...] = (
+    ("field", "field of view"), ("path", "session"), ("date", "date"), ("day", "day"),
+    ("shift_um", "shift from previous (µm)"), ("shift_from_first_um", "shift from first (µm)"),
+    ("match_corr", "match"), ("brightness_above_dark_dn", "brightness above dark (DN)"), ("snr_median", "SNR"),
+    ("photons_per_px_median", "photons per px"), ("motion_rms_um", "RMS motion (µm)"),
+    ("brightness_trend_pct_per_week", "brightness trend (%/week)"), ("flags", "flags"),
+)
+
+_RANK = {"error": 0, "incomplete": 1, "fail": 2, "warning": 3, "unknown": 4, "pass": 5}
+_WORD = {"error": "✗ NOT READ", "fail": "‼ FAIL", "warning": "! WARNING", "pass": "✓ PASS",
+         "unknown": "? NOT CHECKED"}
 
 
-def _cell(col: str, v, *, cls: str = "") -> str:
-    text = _fmt(v)
+def page_state(row: Mapping) -> tuple[str, str]:
+    """(css class, words) of a session's verdict on the page: a session that could not be read, or whose frames
+    were not all read (a truncated file), is never a plain "pass"."""
+    verdict = str(row.get("verdict") or "unknown")
+    if row.get("status") == "error" or verdict == "error":
+        return "error", _WORD["error"]
+    if row.get("error"):
+        word = _WORD.get(verdict, verdict.upper())
+        return (("fail", f"{word}, INCOMPLETE") if verdict == "fail"
+                else ("incomplete", f"! {word.split(' ', 1)[-1]}, INCOMPLETE"))
+    return verdict, _WORD.get(verdict, verdict.upper())
+
+
+def worst_first(rows: Sequence[Mapping]) -> list[Mapping]:
+    """Sessions in the order a reader wants them: not read, incomplete, failed, warned, not checked, passed;
+    then by the time spent in alarms and warnings (count), then by path."""
+    def count(v) -> int:
+        v = _num(v)
+        return int(v) if math.isfinite(v) else 0
+
+    def key(r):
+        return (_RANK.get(page_state(r)[0], 4), -count(r.get("alarms")), -count(r.get("warnings")), str(r["path"]))
+
+    return sorted(rows, key=key)
+
+
+def _show(v, scale: float = 1.0) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, (float, np.floating)):
+        v = float(v) * scale
+        if not math.isfinite(v):
+            return ""
+        if v == 0:
+            return "0"
+        decimals = min(3, max(0, 2 - math.floor(math.log10(abs(v)))))
+        return f"{v:,.{decimals}f}"
+    if isinstance(v, (int, np.integer)) and not isinstance(v, bool):
+        return f"{int(v) * scale:,.0f}"
+    return str(v)
+
+
+def _cell(col: str, v, *, scale: float = 1.0, cls: str = "") -> str:
+    raw = _fmt(v)
+    text = _show(v, scale)
+    if col == "duration_s":
+        text = _clock(_num(v)) if math.isfinite(_num(v)) else ""
+    if col == "date" and text:
+        text = text[:10]
     klass = cls or ("t" if col in ("path", "error", "field", "flags", "field_flags", "date", "notes") else "")
     if col.startswith("verdict") and text:
         klass = text
     if col == "flags" and text:
-        klass = "flag"
-    return f'<td class="{klass}" data-v="{html.escape(text)}">{html.escape(text)}</td>'
+        klass = "flag t"
+    shown = html.escape(text)
+    if col in ("path", "field") and text:  # a path breaks after its slashes, never inside a name or a date
+        shown = "/<wbr>".join(f"<span class='nw'>{html.escape(seg)}</span>" for seg in text.split("/"))
+    elif col == "date" and text:
+        shown = f"<span class='nw'>{shown}</span>"
+    return f'<td class="{klass}" data-v="{html.escape(raw)}">{shown}</td>'
 
 
 def write_html(path: Path, rows: Sequence[Mapping], sparks: Mapping[str, str], chronic: Sequence[Mapping], *,
                title: str, header: str) -> Path:
-    """Write ``audit.html``: self-contained (inline CSS, JS and PNG), sortable tables, relative report links."""
+    """Write ``audit.html``: self-contained (inline CSS, JS and PNG), fits a 1,400 px screen without sideways
+    scrolling, worst sessions first, the error next to the verdict, sortable tables, relative report links."""
     from qcmon.record import write_atomic
 
-    out = ["<!DOCTYPE html><html><head><meta charset='utf-8'>", f"<title>{html.escape(title)}</title>",
+    out = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+           "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+           f"<title>{html.escape(title)}</title>",
            f"<style>{_CSS}</style></head><body>", f"<h1>{html.escape(title)}</h1>",
            f"<p><small>{html.escape(header)}</small></p>",
-           "<table class='sortable'><caption>Sessions (click a column to sort)</caption><thead><tr>"]
-    out += [f"<th>{html.escape(c)}</th>" for c in _SHOWN] + ["<th>traces</th><th>report</th></tr></thead><tbody>"]
-    for r in rows:
-        out.append("<tr>")
-        out += [_cell(c, r.get(c)) for c in _SHOWN]
+           "<table class='sortable'><caption>Sessions, worst first (click a heading to sort)</caption><thead><tr>"
+           "<th>verdict</th><th>why not a pass / error</th>"]
+    out += [f"<th>{html.escape(h)}</th>" for _, h, _ in _SHOWN] + [
+        "<th>motion and brightness over the session</th><th>report</th></tr></thead><tbody>"]
+    for r in worst_first(rows):
+        cls, word = page_state(r)
+        why = str(r.get("error") or "")
+        if not why and cls in ("fail", "warning"):
+            why = ", ".join(GROUP_LABELS.get(g, g) for g in GROUPS
+                            if r.get(f"verdict_{g}") == ("fail" if cls == "fail" else "warning"))
+        out.append(f"<tr><td class='v {cls}' data-v='{_RANK.get(cls, 4)}'>{html.escape(word)}</td>"
+                   f"<td class='err' data-v='{html.escape(why)}'>{html.escape(why)}</td>")
+        out += [_cell(c, r.get(c), scale=sc) for c, _, sc in _SHOWN]
         png = sparks.get(r["path"], "")
-        img = f"<img alt='traces' src='data:image/png;base64,{png}'>" if png else ""
+        img = (f"<img alt='motion and brightness of {html.escape(str(r['path']))}' width='184' height='60' "
+               f"src='data:image/png;base64,{png}'>") if png else ""
         out.append(f"<td data-v=''>{img}</td>")
         rep = r.get("report")
         link = f"<a href='{html.escape(rep, quote=True)}'>report</a>" if rep else ""
@@ -206,14 +336,12 @@ def write_html(path: Path, rows: Sequence[Mapping], sparks: Mapping[str, str], c
     out.append("</tbody></table>")
     out.append("<h2>Chronic imaging: fields of view over days</h2>")
     if chronic:
-        cols = ("field", "path", "date", "day", "shift_um", "shift_from_first_um", "match_corr",
-                "brightness_above_dark_dn", "snr_median", "photons_per_px_median", "motion_rms_um",
-                "brightness_trend_pct_per_week", "flags")
-        out.append("<table class='sortable'><caption>Shift against the previous session of the field; trends are "
+        out.append("<table class='sortable'><caption>Fields named by the path their sessions share (* where the "
+                   "sessions differ). Shift against the previous and the first session of the field; trends are "
                    "least-squares lines over days</caption><thead><tr>")
-        out += [f"<th>{html.escape(c)}</th>" for c in cols] + ["</tr></thead><tbody>"]
+        out += [f"<th>{html.escape(h)}</th>" for _, h in _CHRONIC_SHOWN] + ["</tr></thead><tbody>"]
         for r in chronic:
-            out.append("<tr>" + "".join(_cell(c, r.get(c)) for c in cols) + "</tr>")
+            out.append("<tr>" + "".join(_cell(c, r.get(c)) for c, _ in _CHRONIC_SHOWN) + "</tr>")
         out.append("</tbody></table>")
     else:
         out.append("<p>No field of view was imaged in more than one session.</p>")
