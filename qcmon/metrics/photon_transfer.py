@@ -10,7 +10,8 @@ import numpy as np
 
 from qcmon.metrics._validate import as_image, finite_float, positive_int
 
-__all__ = ["PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "photons_per_px", "shot_snr"]
+__all__ = ["DarkFrames", "PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "is_structureless",
+           "photons_per_px", "shot_snr"]
 
 #: Samples whose squared high-passed difference exceeds this many predicted variances are outliers (6 sigma).
 _OUTLIER_VAR = 36.0
@@ -18,6 +19,15 @@ _OUTLIER_VAR = 36.0
 _FLAT_GRAD = 3.0
 #: Fewest samples a bin needs to enter the fit.
 _MIN_BIN_COUNT = 50
+#: Fine bins equally spaced in sqrt(level - floor) over the detector's whole range: fixed before any data, so the
+#: result does not depend on the order of the pairs (bins set by the first pair rejected everything after a dark
+#: first pair). They are merged into about ``n_bins`` points for the fit.
+_FINE_BINS = 8192
+#: A fit is used only with r² at least this (weighted; a clean photon-transfer line gives > 0.99).
+_MIN_R2 = 0.9
+#: A break in the line: the slopes of the lower and upper halves of the signal range differ by more than this
+#: fraction (and by more than 4 standard errors).
+_BREAK_FRAC = 0.25
 
 
 @dataclass(frozen=True, slots=True)
@@ -36,6 +46,14 @@ class PhotonTransferResult:
         Mean–variance points (bins) in the fit.
     r2 : float
         Weighted coefficient of determination of the line fit.
+    quality : str
+        "" when the fit can be used; otherwise why not, in plain words (r² too low, a break in the line, too few
+        points). A caller must not use the gain when this is not empty.
+    dark_origin : str
+        Where dark level and read noise come from: "dark frames", "read noise given" or "intercept" (read noise
+        unknown: the dark level is low by ``read_noise**2 / gain``, see ``bias``).
+    bias : str
+        The bias that remains, in plain words ("" when none is known).
     """
 
     gain_dn_per_photon: float
@@ -43,6 +61,9 @@ class PhotonTransferResult:
     read_noise_dn: float
     n_points: int
     r2: float
+    quality: str = ""
+    dark_origin: str = ""
+    bias: str = ""
 
 
 class PhotonTransfer:
@@ -125,10 +146,13 @@ class PhotonTransfer:
         self._calls = 0
         self.n_pairs = 0
         self._edges: tuple[float, float] | None = None
-        self._count = np.zeros(self.n_bins)
-        self._sum_x = np.zeros(self.n_bins)
-        self._sum_y = np.zeros(self.n_bins)
+        if math.isfinite(self.max_value):  # fixed before any data: independent of the order of the pairs
+            self._edges = (self.floor, _FINE_BINS / math.sqrt(self.max_value - self.floor))
+        self._count = np.zeros(_FINE_BINS)
+        self._sum_x = np.zeros(_FINE_BINS)
+        self._sum_y = np.zeros(_FINE_BINS)
         self._line: tuple[float, float] | None = None
+        self.dark = DarkFrames()
 
     def update(self, frame, previous) -> bool:
         """Add the pair (``previous``, ``frame``) of the same channel and plane.
@@ -170,11 +194,11 @@ class PhotonTransfer:
             ok &= grad2 <= _FLAT_GRAD * 8.0 * np.maximum(slope * nbr + intercept, 1e-6)
         lo, scale = self._edges
         idx = np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale
-        idx = np.minimum(idx.astype(np.intp), self.n_bins - 1)
+        idx = np.minimum(idx.astype(np.intp), _FINE_BINS - 1)
         xs, ys = x[ok], y[ok]
-        self._count += np.bincount(idx, minlength=self.n_bins)
-        self._sum_x += np.bincount(idx, weights=xs, minlength=self.n_bins)
-        self._sum_y += np.bincount(idx, weights=ys, minlength=self.n_bins)
+        self._count += np.bincount(idx, minlength=_FINE_BINS)
+        self._sum_x += np.bincount(idx, weights=xs, minlength=_FINE_BINS)
+        self._sum_y += np.bincount(idx, weights=ys, minlength=_FINE_BINS)
         self.n_pairs += 1
         line = self._fit()
         self._line = None if line is None else line[:2]
@@ -206,23 +230,37 @@ class PhotonTransfer:
         return x.ravel(), y.ravel(), nbr.ravel(), grad2.ravel(), ok.ravel()
 
     def _set_edges(self, nbr: np.ndarray) -> None:
-        """Bins equally spaced in sqrt(neighbour mean - low end): about equal noise per bin (shot noise)."""
+        """Only for a detector without a finite maximum (float data without a bit depth): fine bins equally spaced
+        in sqrt(neighbour mean - low end) up to 16 times the span of the first pair with light."""
         if nbr.size < 100:
             return
         lo, hi = np.percentile(nbr, [0.5, 99.5])
         span = math.sqrt(max(hi - lo, 0.0))
-        if span <= 0:
+        if not span > 0:
             return
-        self._edges = (float(lo), self.n_bins / span)
+        self._edges = (float(min(lo, self.floor if math.isfinite(self.floor) else lo)), _FINE_BINS / (4.0 * span))
+
+    def _points(self):
+        """The fine bins merged, from the low end, into points of at least ``total / n_bins`` samples each (and
+        at least the minimum count): arrays (n, mean x, mean y)."""
+        total = float(self._count.sum())
+        if total <= 0:
+            return np.zeros(0), np.zeros(0), np.zeros(0)
+        need = max(_MIN_BIN_COUNT, total / (2 * self.n_bins))
+        cum = np.cumsum(self._count)
+        group = np.floor(cum / need).astype(np.intp)
+        group = np.concatenate(([0], group[:-1]))  # a bin closes its group when the group reaches `need`
+        n = np.bincount(group, weights=self._count)
+        sx = np.bincount(group, weights=self._sum_x)
+        sy = np.bincount(group, weights=self._sum_y)
+        keep = n >= _MIN_BIN_COUNT
+        return n[keep], sx[keep] / n[keep], sy[keep] / n[keep]
 
     def _fit(self):
         """Weighted line fit through the bins: (slope, intercept, r2, n_points) or None."""
-        good = self._count >= _MIN_BIN_COUNT
-        if good.sum() < 3:
+        n, x, y = self._points()
+        if n.size < 3:
             return None
-        n = self._count[good]
-        x = self._sum_x[good] / n
-        y = self._sum_y[good] / n
         if np.ptp(x) <= 0:
             return None
         # Weights from the fitted line, not from each bin's own scatter (which correlates with its mean and
@@ -236,20 +274,144 @@ class PhotonTransfer:
         ybar = np.average(y, weights=w)
         ss_tot = float(np.sum(w * (y - ybar) ** 2))
         r2 = 1.0 - float(np.sum(w * resid**2)) / ss_tot if ss_tot > 0 else math.nan
-        return float(slope), float(intercept), r2, int(good.sum())
+        return float(slope), float(intercept), r2, int(n.size)
+
+    def _break(self) -> str:
+        """A break in the line: the lower and upper halves of the points (by samples) have different slopes."""
+        n, x, y = self._points()
+        if n.size < 8:
+            return ""
+        half = np.searchsorted(np.cumsum(n), 0.5 * n.sum())
+        half = min(max(half, 4), n.size - 4)
+        fits = []
+        for sel in (slice(0, half), slice(half, None)):
+            nn, xx, yy = n[sel], x[sel], y[sel]
+            if np.ptp(xx) <= 0:
+                return ""
+            w = nn / np.maximum(yy, 1e-12) ** 2
+            for _ in range(2):
+                slope, icpt = _weighted_line(xx, yy, w)
+                w = nn / np.maximum(slope * xx + icpt, 1e-3 * max(float(np.max(yy)), 1e-12)) ** 2
+            # var(y mean of a bin) ~ 2 E[y]**2 / n (Gaussian variance samples): w / 2 are inverse variances
+            dx = xx - np.average(xx, weights=w)
+            fits.append((slope, math.sqrt(2.0 / float(np.dot(w, dx * dx)))))
+        (s1, e1), (s2, e2) = fits
+        ref = max(abs(s1), abs(s2), 1e-12)
+        if abs(s2 - s1) > _BREAK_FRAC * ref and abs(s2 - s1) > 4.0 * math.hypot(e1, e2):
+            return (f"break in the photon-transfer line: slope {s1:.3g} DN/photon in the lower half of the signal "
+                    f"range, {s2:.3g} in the upper (detector gain changed, or a non-linear detector?)")
+        return ""
 
     def result(self) -> PhotonTransferResult:
         """The current fit; NaN fields with a UserWarning when it is undefined (too few pairs, no light range)."""
         fit = self._fit()
+        dark = self.dark.result()
         read = math.nan if self.read_noise_dn is None else self.read_noise_dn
         if fit is None or not fit[0] > 0:
             warnings.warn("photon transfer undefined: too few frame pairs or no spread of signal levels yet",
                           UserWarning, stacklevel=2)
-            return PhotonTransferResult(math.nan, math.nan, read, 0 if fit is None else fit[3], math.nan)
+            return PhotonTransferResult(math.nan, math.nan, read, 0 if fit is None else fit[3], math.nan,
+                                        quality="too few frame pairs or no spread of signal levels")
         slope, intercept, r2, n_points = fit
-        read_var = 0.0 if self.read_noise_dn is None else self.read_noise_dn**2
-        dark = (read_var - intercept) / slope
-        return PhotonTransferResult(slope, float(dark), read, n_points, r2)
+        quality = ""
+        if not r2 >= _MIN_R2:
+            quality = f"poor photon-transfer fit (r² {r2:.2f} < {_MIN_R2})"
+        else:
+            quality = self._break()
+        bias = ""
+        if dark is not None:
+            # EMVA 1288: the dark level and dark noise are measured on dark images (release 4.0, section 6).
+            level, read = dark
+            origin = f"dark frames ({self.dark.n_frames})"
+        elif self.read_noise_dn is not None:
+            level, origin = (self.read_noise_dn**2 - intercept) / slope, "read noise given"
+        else:
+            level, origin = -intercept / slope, "intercept"
+            bias = (f"no dark frames and read noise unknown: the dark level is low by read noise² / gain "
+                    f"({100.0 / slope:.3g} DN for each 10 DN of read noise), photons per pixel high accordingly")
+        return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias)
+
+
+def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 4, ratio: float = 2.0) -> bool:
+    """Whether a frame shows no structure beyond its pixel noise (a closed shutter, no specimen).
+
+    Parameters
+    ----------
+    frame : (M, N) array_like
+        One frame.
+    noise_sigma : float
+        Its pixel noise σ in DN (e.g. :func:`qcmon.metrics.noise.immerkaer_sigma`).
+    bin_factor : int
+        Side of the blocks averaged before the variance is taken (default 4).
+    ratio : float
+        A frame is structureless when the variance of its ``bin_factor``-binned image is below ``ratio`` times
+        what noise alone gives (``σ² / bin_factor²``).
+
+    Notes
+    -----
+    Binning keeps structure (cells, vessels, the illumination's fall-off) and averages independent noise down by
+    the block's area, so the test does not need to know the gain. A uniformly lit field (a flat field) is
+    structureless too: whether structureless frames are *dark* is decided against the session's other frames
+    (see :class:`DarkFrames`). Common practice, no source.
+    """
+    a = as_image(frame, "frame", min_shape=(2, 2))
+    b = max(1, min(int(bin_factor), a.shape[0] // 2, a.shape[1] // 2))
+    h, w = (a.shape[0] // b) * b, (a.shape[1] // b) * b
+    binned = a[:h, :w].astype(np.float64).reshape(h // b, b, w // b, b).mean(axis=(1, 3))
+    s2 = float(noise_sigma) ** 2
+    if not math.isfinite(s2):
+        return False
+    return float(binned.var()) <= ratio * max(s2, 1.0 / 12.0) / (b * b)
+
+
+class DarkFrames:
+    """Dark level and read noise from the session's dark frames (closed shutter at its start or end).
+
+    The engine hands on frames that showed no structure (:func:`is_structureless`) with their mean; the frames are
+    counted as dark only if the session also holds lit frames (with structure) clearly above them. The read noise
+    is half the variance of the difference of two consecutive dark frames (EMVA 1288 release 4.0, section 6:
+    temporal dark noise from two dark images), which includes quantisation.
+    """
+
+    #: Largest fraction of a dark frame's pixels at the detector's floor or ceiling: more, and its mean is biased.
+    MAX_CLIPPED = 0.001
+
+    def __init__(self) -> None:
+        self.n_frames = 0
+        self._sum_mean = 0.0
+        self._n_pairs = 0
+        self._sum_var = 0.0
+        self.lit_min_mean = math.inf
+        self.refused = ""
+
+    def add(self, frame: np.ndarray, previous_dark: np.ndarray | None, *, clipped_frac: float = 0.0) -> None:
+        """Add a structureless frame (and, when the frame before it was one too, their pair)."""
+        if clipped_frac > self.MAX_CLIPPED:
+            self.refused = f"dark frames with {100 * clipped_frac:.2g} % of their pixels clipped: not used"
+            return
+        a = np.asarray(frame, dtype=np.float64)
+        self.n_frames += 1
+        self._sum_mean += float(a.mean())
+        if previous_dark is not None and previous_dark.shape == a.shape:
+            d = a - np.asarray(previous_dark, dtype=np.float64)
+            self._n_pairs += 1
+            self._sum_var += 0.5 * float(d.var())
+
+    def add_lit(self, mean: float) -> None:
+        """A frame with structure (light): its mean."""
+        if math.isfinite(mean):
+            self.lit_min_mean = min(self.lit_min_mean, float(mean))
+
+    def result(self) -> tuple[float, float] | None:
+        """(dark level, read noise) in DN, or None when there are no usable dark frames."""
+        if self.n_frames < 2 or self._n_pairs < 1:
+            return None
+        level = self._sum_mean / self.n_frames
+        read = math.sqrt(self._sum_var / self._n_pairs)
+        # dark only if the lit frames sit clearly above: a flat, lit field is structureless too
+        if not self.lit_min_mean > level + 3.0 * max(read, 0.5):
+            return None
+        return level, read
 
 
 def _weighted_line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float]:
