@@ -32,7 +32,7 @@ from qcmon.metrics._imageops import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
-from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level
+from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level, is_structureless
 from qcmon.metrics.registration import ShiftEstimator, build_reference
 from qcmon.metrics.saturation import detector_max, saturation_fractions
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
@@ -156,6 +156,8 @@ class _Stream:
     last_line_offset: float = NAN
     t0: float = NAN
     new_reference_requested: bool = False
+    prev_dark: bool = False          # the previous frame showed no structure (closed shutter?)
+    classified_upto: int = -1        # frames up to this index were sorted dark/lit when the reference was built
 
 
 class Engine:
@@ -221,12 +223,18 @@ class Engine:
                           "saturation_level_dn": st.max_value, "frames": st.n_measured}
             if st.ptc is not None:
                 try:
-                    res = st.ptc.result()
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore", UserWarning)  # undefined: NaN fields and a reason
+                        res = st.ptc.result()
                 except Exception:  # pragma: no cover - never lose the summary over a failed fit
                     res = None
                 if res is not None:
-                    info.update(gain_dn_per_photon=res.gain_dn_per_photon, ptc_dark_level_dn=res.dark_level_dn,
-                                read_noise_dn=res.read_noise_dn, ptc_points=res.n_points, ptc_r2=res.r2)
+                    # a fit that failed its checks is not a gain: blank, with the reason beside it
+                    usable = not res.quality
+                    info.update(gain_dn_per_photon=res.gain_dn_per_photon if usable else NAN,
+                                ptc_dark_level_dn=res.dark_level_dn if usable or "dark" in res.dark_origin else NAN,
+                                read_noise_dn=res.read_noise_dn, ptc_points=res.n_points, ptc_r2=res.r2,
+                                ptc_quality=res.quality, ptc_dark_origin=res.dark_origin, ptc_bias=res.bias)
             if st.brightness is not None:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore", UserWarning)  # too short a session: NaN fit
@@ -284,8 +292,16 @@ class Engine:
             st.max_value = float(detector_max(frames[0].data.dtype, s.bit_depth))
             # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
             st.ptc = PhotonTransfer(max_value=st.max_value, pair_step=1)
-            for a, b in zip(stack[1:], stack[:-1]):
-                st.ptc.update(a, b)
+            # frames without structure (closed shutter) give the dark level and read noise; pairs of a dark and a
+            # lit frame are no photon-transfer sample
+            dark: list[bool] = []
+            for i, f in enumerate(frames):
+                prev = frames[i - 1].data if i and dark[i - 1] else None
+                dark.append(self._sort_dark(st, f.data, prev))
+            for i in range(1, len(frames)):
+                if dark[i] == dark[i - 1]:
+                    st.ptc.update(stack[i], stack[i - 1])
+            st.classified_upto = frames[-1].index
             st.ptc.pair_step = s.photon_transfer_every
             self._set_dark_level(st, stack)
             st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
@@ -333,15 +349,36 @@ class Engine:
             return
         res = None
         try:
-            res = st.ptc.result()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)  # undefined: NaN fields, handled below
+                res = st.ptc.result()
         except Exception:
             res = None
-        if res is not None and math.isfinite(res.dark_level_dn) and math.isfinite(res.gain_dn_per_photon) \
-                and res.gain_dn_per_photon > 0:
-            st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer"
+        dark = st.ptc.dark.result()
+        if res is not None and math.isfinite(res.gain_dn_per_photon) and res.gain_dn_per_photon > 0 \
+                and not res.quality:
             st.gain = float(res.gain_dn_per_photon)
+        if dark is not None:
+            st.dark_level, st.dark_origin = dark[0], f"dark frames ({st.ptc.dark.n_frames} at the start)"
+            return
+        if not math.isnan(st.gain) and math.isfinite(res.dark_level_dn):
+            st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer (read noise unknown)"
             return
         st.dark_level, st.dark_origin = float(estimate_dark_level(stack[0])), "low percentile"
+
+    def _sort_dark(self, st: _Stream, data: np.ndarray, prev: np.ndarray | None, sigma: float = NAN) -> bool:
+        """Whether a frame shows no structure (closed shutter); hands it to the dark-frame statistics or its mean to
+        the lit frames'. ``prev`` is the previous frame when it was structureless too."""
+        if not math.isfinite(sigma):
+            sigma = immerkaer_sigma(data)
+        dark = is_structureless(data, sigma)
+        if dark:
+            kind = data.dtype.kind
+            floor = 0 if kind == "u" else np.iinfo(data.dtype).min if kind == "i" else -np.inf
+            st.ptc.dark.add(data, prev, clipped_frac=float(np.mean((data >= st.max_value) | (data <= floor))))
+        else:
+            st.ptc.dark.add_lit(float(np.mean(data, dtype=np.float64)))
+        return dark
 
     def _measure_or_wait(self, st: _Stream, frame: Frame) -> list[dict]:
         mc = self.settings.motion_channel
@@ -444,10 +481,19 @@ class Engine:
             row.update(saturated_frac=sat, clipped_frac=clip)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
-            if st.prev is not None:
+            if frame.index > st.classified_upto:  # frames of the start-up were sorted when the reference was built
+                dark = _structureless_binned(binned, factor, sigma)
+                if dark:
+                    self._sort_dark(st, img, st.prev if st.prev_dark else None, sigma)
+                else:
+                    st.ptc.dark.add_lit(mean_raw)
+            else:
+                dark = is_structureless(img, sigma)
+            if st.prev is not None and dark == st.prev_dark:  # a dark and a lit frame make no sample
                 cur, prev = _overlap(img, st.prev, (ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1]))
                 if cur.size:
                     st.ptc.update(cur, prev)
+            st.prev_dark = dark
             gain = st.gain
             if math.isfinite(gain) and gain > 0:
                 photons = mean_f / gain
@@ -463,6 +509,17 @@ class Engine:
         self._shared_order.append(key)
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
+
+
+def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool:
+    """:func:`~qcmon.metrics.photon_transfer.is_structureless` on the frame binned by ``factor`` (already made for
+    the registration): its variance against what the pixel noise alone leaves after binning."""
+    if not math.isfinite(sigma):
+        return False
+    if factor < 2:
+        return is_structureless(binned, sigma)
+    # binned holds block sums: noise alone gives factor² σ²
+    return float(np.var(binned, dtype=np.float64)) <= 2.0 * max(sigma * sigma, 1.0 / 12.0) * (factor * factor)
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
