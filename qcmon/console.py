@@ -49,7 +49,8 @@ def format_event(ev: Event) -> str:
         verb = "begins" if ev.kind == "start" else "ends"
         head = f"[{t}] {sym} {ev.state} {verb}{where}: "
         return head + (ev.message or f"{ev.metric} = {ev.value:.4g} (limit {ev.limit:.4g}) at frame {ev.frame}")
-    label = {"note": "note", "reference": "reference", "problem": "input problem"}.get(ev.kind, ev.kind)
+    label = {"note": "note", "reference": "reference", "problem": "input problem",
+             "step": "! brightness step"}.get(ev.kind, ev.kind)
     return f"[{t}] {label}{where}: {ev.message}"
 
 

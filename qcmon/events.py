@@ -19,7 +19,8 @@ class Event:
     ----------
     kind : str
         "start" (a state begins), "end" (it ends), "note" (text from the experimenter), "reference" (a new
-        reference was taken), "problem" (bad input that was skipped).
+        reference was taken), "problem" (bad input that was skipped), "step" (a sudden, sustained step of the
+        above-dark brightness: detector gain or laser power changed).
     metric : str
         Metric name as in ``traces.csv`` (e.g. "displacement_um"); "" for notes.
     state : str

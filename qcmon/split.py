@@ -153,7 +153,7 @@ class RowContinuity:
                 warnings.simplefilter("ignore", UserWarning)
                 b = tr.update(float(r["time_s"]), float(r["mean_f"]))
             r.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
-                     bleach_pct_per_min=b.bleach_pct_per_min)
+                     bleach_pct_per_min=b.bleach_pct_per_min, level_step=b.step_factor)
             self._rows[key] = self._rows.get(key, 0) + 1
         return rows
 

@@ -290,6 +290,7 @@ _KIND_TEXT = {
     "note": "✎ note",
     "reference": "⟲ reference",
     "problem": "✗ problem",
+    "step": "! brightness step",
 }
 
 
@@ -329,7 +330,7 @@ class EventList(DataTable):
         """Append rows for ``events`` (oldest first) and scroll to the newest."""
         for event in events:
             when, stream, what, detail = event_cells(event)
-            style = {"start": event.state, "problem": "alarm"}.get(event.kind, "")
+            style = {"start": event.state, "problem": "alarm", "step": "warning"}.get(event.kind, "")
             cell_style = {"warning": "bold yellow", "alarm": "bold red"}.get(style, "")
             self.add_row(when, stream, Text(what, style=cell_style), detail)
         while self.row_count > self.MAX_ROWS:
