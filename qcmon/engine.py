@@ -157,6 +157,7 @@ class _Stream:
     t0: float = NAN
     new_reference_requested: bool = False
     prev_dark: bool = False          # the previous frame showed no structure (closed shutter?)
+    refit_gain: bool = False         # after a brightness step: take the gain from the new fit once it passes
     gain_checked_pairs: int = 0      # photon-transfer pairs at the last attempt to take the gain from the fit
     classified_upto: int = -1        # frames up to this index were sorted dark/lit when the reference was built
 
@@ -486,14 +487,14 @@ class Engine:
                 st.ptc.reset()
                 st.ptc.dark = dark
                 st.ptc.pair_step = 1
-                st.gain = NAN
-            elif math.isnan(st.gain) and st.ptc.n_pairs >= 30 and st.ptc.n_pairs % 10 == 0 \
+                st.gain, st.refit_gain = NAN, True
+            elif st.refit_gain and st.ptc.n_pairs >= 30 and st.ptc.n_pairs % 10 == 0 \
                     and st.ptc.n_pairs != st.gain_checked_pairs:
                 st.gain_checked_pairs = st.ptc.n_pairs
                 st.ptc.pair_step = s.photon_transfer_every
                 res = st.ptc.result()
                 if not res.quality and res.gain_dn_per_photon > 0:
-                    st.gain = res.gain_dn_per_photon
+                    st.gain, st.refit_gain = res.gain_dn_per_photon, False
             row.update(saturated_frac=sat, clipped_frac=clip)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN

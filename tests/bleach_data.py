@@ -28,14 +28,16 @@ def bleaching_means(*, seconds: float, tau_min: float, fs: float = 30.0, shape=(
     n_t = int(round(seconds * fs))
     t = np.arange(n_t) / fs
     decay = math.exp(-1.0 / (0.7 * fs))
+    warm = int(round(5.0 * fs))  # the activity runs 5 s before the first frame: stationary from the start
     activity = np.zeros((max(n, 1), n_t))
     for i in range(n):
-        hits = rng.random(n_t) < rate_hz / fs
-        kick = np.where(hits, rng.uniform(0.3, 1.0, n_t), 0.0)
+        hits = rng.random(n_t + warm) < rate_hz / fs
+        kick = np.where(hits, rng.uniform(0.3, 1.0, n_t + warm), 0.0)
         acc = 0.0
-        for j in range(n_t):
+        for j in range(n_t + warm):
             acc = acc * decay + kick[j]
-            activity[i, j] = acc
+            if j >= warm:
+                activity[i, j - warm] = acc
     means = np.empty(n_t)
     lab = labels.ravel()
     for j in range(n_t):

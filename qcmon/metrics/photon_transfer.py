@@ -23,8 +23,12 @@ _MIN_BIN_COUNT = 50
 #: result does not depend on the order of the pairs (bins set by the first pair rejected everything after a dark
 #: first pair). They are merged into about ``n_bins`` points for the fit.
 _FINE_BINS = 8192
-#: A fit is used only with r² at least this (weighted; a clean photon-transfer line gives > 0.99).
+#: A fit is used only with r² at least this (weighted; a clean photon-transfer line gives > 0.99) ...
 _MIN_R2 = 0.9
+#: ... unless the points scatter about the line no more than this (reduced χ²) times their own noise.
+_MAX_CHI2 = 4.0
+#: Largest relative standard error of the gain that is still a gain to use.
+_MAX_GAIN_SE = 0.1
 #: A break in the line: the slopes of the lower and upper halves of the signal range differ by more than this
 #: fraction (and by more than 4 standard errors).
 _BREAK_FRAC = 0.25
@@ -152,6 +156,8 @@ class PhotonTransfer:
         self._sum_x = np.zeros(_FINE_BINS)
         self._sum_y = np.zeros(_FINE_BINS)
         self._line: tuple[float, float] | None = None
+        self._chi2_dof = math.nan
+        self._slope_se = math.nan
         self.dark = DarkFrames()
 
     def update(self, frame, previous) -> bool:
@@ -201,7 +207,9 @@ class PhotonTransfer:
         self._sum_y += np.bincount(idx, weights=ys, minlength=_FINE_BINS)
         self.n_pairs += 1
         line = self._fit()
-        self._line = None if line is None else line[:2]
+        # Outliers are judged against the line only once it is one (a rising line that fits): a single pair at one
+        # level (a dark or flat first pair) gives a noise-driven line that would reject everything after it.
+        self._line = line[:2] if line is not None and line[0] > 0 and line[2] >= _MIN_R2 and line[3] >= 5 else None
         return True
 
     def _samples(self, a: np.ndarray, b: np.ndarray):
@@ -274,6 +282,10 @@ class PhotonTransfer:
         ybar = np.average(y, weights=w)
         ss_tot = float(np.sum(w * (y - ybar) ** 2))
         r2 = 1.0 - float(np.sum(w * resid**2)) / ss_tot if ss_tot > 0 else math.nan
+        # w / 2 are inverse variances of the bin means (variance samples of Gaussian noise: var = 2 E[y]**2 / n)
+        self._chi2_dof = float(np.sum(0.5 * w * resid**2)) / max(n.size - 2, 1)
+        dx = x - np.average(x, weights=w)
+        self._slope_se = math.sqrt(2.0 / max(float(np.dot(w, dx * dx)), 1e-300))
         return float(slope), float(intercept), r2, int(n.size)
 
     def _break(self) -> str:
@@ -314,10 +326,15 @@ class PhotonTransfer:
                                         quality="too few frame pairs or no spread of signal levels")
         slope, intercept, r2, n_points = fit
         quality = ""
-        if not r2 >= _MIN_R2:
-            quality = f"poor photon-transfer fit (r² {r2:.2f} < {_MIN_R2})"
+        if not r2 >= _MIN_R2 and not self._chi2_dof <= _MAX_CHI2:
+            # a low r² alone may be a narrow range of levels; with points scattering beyond their noise it is a
+            # line that does not fit (two gains mixed, a non-linear detector, structure leaking into the samples)
+            quality = (f"poor photon-transfer fit (r² {r2:.2f}; the points scatter {math.sqrt(self._chi2_dof):.1f}× "
+                       "beyond their noise)")
         else:
             quality = self._break()
+        if not quality and not self._slope_se <= _MAX_GAIN_SE * slope:
+            quality = f"too few samples: gain uncertain by ±{100 * self._slope_se / slope:.0f} %"
         bias = ""
         if dark is not None:
             # EMVA 1288: the dark level and dark noise are measured on dark images (release 4.0, section 6).
