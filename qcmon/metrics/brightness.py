@@ -26,10 +26,13 @@ _JUDGE_REL = 0.4
 #: laser power changed); common practice, no source. Bleaching by this much within ``_STEP_RECENT_S`` would need a
 #: time constant under 8 s; whole-field calcium transients last about a second.
 _STEP_FACTOR = 1.5
-#: The level after a step is the median of the blocks of the last this many seconds ...
+#: The level after a step is the low percentile of the blocks of the last this many seconds ...
 _STEP_RECENT_S = 3.0
-#: ... compared with the median of the blocks of this many seconds before them.
+#: ... compared with that of the blocks of this many seconds before them.
 _STEP_BEFORE_S = 10.0
+#: Levels are this low percentile of the blocks, not their median: a gain or power step scales the resting level
+#: too, while a burst of activity raises the low percentile much less than the median.
+_STEP_PERCENTILE = 20.0
 
 
 def bleach_rate(time_s, level, *, quantile: float = _QUANTILE, segments=None) -> tuple[float, float]:
@@ -151,10 +154,10 @@ def judgeable(slope_pct_per_min: float, se_pct_per_min: float) -> bool:
 class LevelSteps:
     """Sudden, sustained changes of the above-dark brightness (detector gain or laser power changed).
 
-    Fed block means; a step is found when the median of the last ``_STEP_RECENT_S`` seconds differs by more than
-    ``_STEP_FACTOR`` from the median of the ``_STEP_BEFORE_S`` seconds before them. Medians make it blind to
-    transients shorter than half the recent window; bleaching never changes the level by that factor within
-    seconds. After a step the comparison starts again from the blocks after it.
+    Fed block means; a step is found when the 20th percentile of the last ``_STEP_RECENT_S`` seconds differs by
+    more than ``_STEP_FACTOR`` from that of the ``_STEP_BEFORE_S`` seconds before them, and the level stayed on the
+    new side through the recent window. Low percentiles follow the resting level, which a gain or power step
+    scales and transients leave; bleaching never changes the level by that factor within seconds. After a step the comparison starts again from the blocks after it.
     """
 
     def __init__(self, block_s: float, *, factor: float = _STEP_FACTOR):
@@ -169,8 +172,8 @@ class LevelSteps:
         if len(self._blocks) < self._recent_n + max(3, self._before_n // 2):
             return None
         vals = np.fromiter((b for _, b in self._blocks), float)
-        before = float(np.median(vals[: -self._recent_n]))
-        after = float(np.median(vals[-self._recent_n:]))
+        before = float(np.percentile(vals[: -self._recent_n], _STEP_PERCENTILE))
+        after = float(np.percentile(vals[-self._recent_n:], _STEP_PERCENTILE))
         if not (before > 0 and after > 0):
             # levels at or below dark: a ratio means nothing; a change of sign of a big level is still a step
             return None
@@ -193,7 +196,8 @@ class LevelSteps:
             return None
         # the factor between the levels on either side of the step point
         n_before = len(self._blocks) - len(kept)
-        ratio = float(np.median([b for _, b in kept])) / float(np.median(vals[:n_before]))
+        ratio = float(np.percentile([b for _, b in kept], _STEP_PERCENTILE)) \
+            / float(np.percentile(vals[:n_before], _STEP_PERCENTILE))
         self._blocks.clear()
         for item in kept:
             self._blocks.append(item)
@@ -264,7 +268,7 @@ class BrightnessTracker:
     block_s : float, optional
         Frames are averaged in blocks of this length, s (default 0.25): the decimated series.
     max_history : int, optional
-        Points kept for :meth:`session_fit` (default 2048); when full, neighbouring points are merged in pairs.
+        Frame means kept for the bleach fit (default 1024); when full, neighbouring points are merged in pairs.
 
     Notes
     -----
@@ -344,6 +348,7 @@ class BrightnessTracker:
             self._block_start = t
         self._block_sum += f
         self._block_n += 1
+        self._add_history(t, f)
         if not math.isnan(self._step):  # reported once, on the update that found it
             step, self._step = self._step, math.nan
             st = self._state
@@ -364,7 +369,9 @@ class BrightnessTracker:
         self._state = BrightnessState(math.nan, math.nan, math.nan)
         self.n_steps += 1
         for t, b in kept[:-1]:
+            self._add_history(t, b)
             self._block(t, b)
+        self._add_history(*kept[-1])  # the block being closed (its frames went to the history just cleared)
 
     def _close_block(self) -> None:
         mid = self._block_start + 0.5 * self.block_s
@@ -384,7 +391,6 @@ class BrightnessTracker:
             self.initial_f = baseline
         # the bleach slope rests on the block means themselves, from the first block on (no trailing filter),
         # refitted once a second over every block since the start (or the last step), decimated in the history
-        self._add_history(mid, value)
         self._n_blocks += 1
         slope = self._state.bleach_pct_per_min
         if self._n_blocks >= 8 and self._n_blocks % max(1, int(round(1.0 / self.block_s))) == 0:
