@@ -200,3 +200,35 @@ def test_no_step_on_strong_transients_or_fast_bleaching(seed):
     t, f = bleaching_means(seconds=60.0, tau_min=1.0, seed=seed, rate_hz=1.0, fs=10.0)
     _, states = _run(t, f)
     assert all(math.isnan(s.step_factor) for s in states)
+
+
+def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
+    # qcmon's simulator (gain x16 at half a 20-s session, its scenario "gain_saturation"): the engine reports the
+    # step once, photons per pixel are blank until photon transfer has refitted, and the summary's brightness
+    # verdict is a warning with the step listed. (The step detector itself is held against outside data above.)
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+    from qcmon.live import step_event
+    from qcmon.record import rows_to_traces
+    from qcmon.simulate import simulate
+    from qcmon.simulate.scenarios import scenario_config
+    from qcmon.summary import summarize_traces
+    from qcmon.thresholds import load_profile
+
+    config = scenario_config("gain_saturation", n_frames=600, height=64, width=64, frame_rate_hz=30.0)
+    result = simulate(config)
+    eng = Engine(EngineSettings(frame_rate_hz=30.0))
+    rows = []
+    for i, page in enumerate(result.pages):
+        rows += eng.process(Frame(data=page, index=i, time_s=i / 30.0))
+    rows += eng.flush()
+    steps = [r for r in rows if math.isfinite(r["level_step"])]
+    assert len(steps) == 1 and steps[0]["level_step"] > 4  # x16, less what saturation clips
+    assert 10.0 <= steps[0]["time_s"] <= 13.5
+    after = [r for r in rows if r["time_s"] > steps[0]["time_s"]]
+    assert math.isnan(after[0]["photons_per_px"])
+    event = step_event(steps[0])
+    assert event.kind == "step" and "brightness ×" in event.message and "gain or laser power" in event.message
+    summary = summarize_traces(rows_to_traces(rows), [event], profile=load_profile("default"))
+    assert summary["brightness"]["verdict"] in ("warning", "fail") and len(summary["brightness"]["steps"]) == 1
+    assert any("brightness ×" in n for n in summary["notes"])

@@ -169,7 +169,7 @@ class LevelSteps:
     def update(self, t: float, level: float) -> tuple[float, float, list[tuple[float, float]]] | None:
         """Add a block; return (factor, time of the step, blocks after it) when a step is found, else None."""
         self._blocks.append((t, level))
-        if len(self._blocks) < self._recent_n + max(3, self._before_n // 2):
+        if len(self._blocks) < self._recent_n + max(3, self._before_n // 5):  # at least 2 s before the recent 3 s
             return None
         vals = np.fromiter((b for _, b in self._blocks), float)
         before = float(np.percentile(vals[: -self._recent_n], _STEP_PERCENTILE))
