@@ -232,3 +232,14 @@ def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
     summary = summarize_traces(rows_to_traces(rows), [event], profile=load_profile("default"))
     assert summary["brightness"]["verdict"] in ("warning", "fail") and len(summary["brightness"]["steps"]) == 1
     assert any("brightness ×" in n for n in summary["notes"])
+
+
+def test_percentile_helper_equals_numpy():
+    # numpy.percentile (linear interpolation) is the reference; the trackers use a faster sort-based copy.
+    from qcmon.metrics.brightness import _percentile
+
+    rng = np.random.default_rng(0)
+    for n in (1, 2, 3, 12, 40, 52):
+        a = rng.normal(size=n)
+        for q in (0.0, 20.0, 50.0, 99.0, 100.0):
+            assert _percentile(a, q) == pytest.approx(float(np.percentile(a, q)), abs=1e-12)

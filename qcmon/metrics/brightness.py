@@ -21,6 +21,8 @@ _QUANTILE = 0.1
 #: than ± ``_JUDGE_REL`` of the slope: the interval then spans the usual warning level (-1 %/min,
 #: thresholds/default.toml) or the sign and size of the slope are not settled.
 _JUDGE_ABS = 1.0
+#: Fewest points (frames) whose fit gets a standard error: with fewer, a slope is never judged.
+_MIN_POINTS = 30
 _JUDGE_REL = 0.4
 #: A sustained change of the above-dark level by more than this factor (up or down) is a step (detector gain or
 #: laser power changed); common practice, no source. Bleaching by this much within ``_STEP_RECENT_S`` would need a
@@ -55,7 +57,7 @@ def bleach_rate(time_s, level, *, quantile: float = _QUANTILE, segments=None) ->
         ``100 k`` for ``level ∝ exp(k t)``, k in 1/min: the slope in % of the current level per minute (negative
         = dimming). NaN with fewer than 4 points or no time span.
     se_pct_per_min : float
-        Its standard error (see Notes); NaN when undefined.
+        Its standard error (see Notes); NaN when undefined or with fewer than 30 points.
 
     Notes
     -----
@@ -78,6 +80,8 @@ def bleach_rate(time_s, level, *, quantile: float = _QUANTILE, segments=None) ->
     if t.size < 4 or np.ptp(t) <= 0:
         return math.nan, math.nan
     _, seg = np.unique(seg, return_inverse=True)
+    # the error needs residuals enough for their quantiles and autocorrelation: none below _MIN_POINTS
+    few = t.size < _MIN_POINTS
     nseg = int(seg.max()) + 1
     X = np.zeros((t.size, nseg + 1))
     X[np.arange(t.size), seg] = 1.0
@@ -123,7 +127,7 @@ def bleach_rate(time_s, level, *, quantile: float = _QUANTILE, segments=None) ->
         return 100.0 * float(beta[-1]), math.nan
     # iid quantile-regression variance q (1 - q) s² (X'X)⁻¹, inflated for serially correlated residuals (AR(1))
     se = sparsity * math.sqrt(quantile * (1 - quantile) * max(float(cov[-1, -1]), 0.0)) * inflation
-    return 100.0 * float(beta[-1]), 100.0 * se
+    return 100.0 * float(beta[-1]), math.nan if few else 100.0 * se
 
 
 def _correlation_inflation(r: np.ndarray) -> float:
@@ -141,6 +145,16 @@ def _correlation_inflation(r: np.ndarray) -> float:
     stop = int(neg[0]) + 1 if neg.size else acf.size
     tau = 1.0 + 2.0 * float(np.sum(acf[1:stop]))
     return math.sqrt(min(max(tau, 1.0), float(n)))
+
+
+def _percentile(values, q: float) -> float:
+    """``numpy.percentile(values, q)`` (its default linear interpolation) for the short arrays of the trackers, by
+    a sort: numpy's general routine costs about 100 µs a call, several times a block (the tests hold them equal)."""
+    a = np.sort(np.asarray(values, dtype=float))
+    pos = (a.size - 1) * q / 100.0
+    i = int(math.floor(pos))
+    j = min(i + 1, a.size - 1)
+    return float(a[i] + (a[j] - a[i]) * (pos - i))
 
 
 def judgeable(slope_pct_per_min: float, se_pct_per_min: float) -> bool:
@@ -172,8 +186,8 @@ class LevelSteps:
         if len(self._blocks) < self._recent_n + max(3, self._before_n // 5):  # at least 2 s before the recent 3 s
             return None
         vals = np.fromiter((b for _, b in self._blocks), float)
-        before = float(np.percentile(vals[: -self._recent_n], _STEP_PERCENTILE))
-        after = float(np.percentile(vals[-self._recent_n:], _STEP_PERCENTILE))
+        before = _percentile(vals[: -self._recent_n], _STEP_PERCENTILE)
+        after = _percentile(vals[-self._recent_n:], _STEP_PERCENTILE)
         if not (before > 0 and after > 0):
             # levels at or below dark: a ratio means nothing; a change of sign of a big level is still a step
             return None
@@ -196,8 +210,7 @@ class LevelSteps:
             return None
         # the factor between the levels on either side of the step point
         n_before = len(self._blocks) - len(kept)
-        ratio = float(np.percentile([b for _, b in kept], _STEP_PERCENTILE)) \
-            / float(np.percentile(vals[:n_before], _STEP_PERCENTILE))
+        ratio = _percentile([b for _, b in kept], _STEP_PERCENTILE) / _percentile(vals[:n_before], _STEP_PERCENTILE)
         self._blocks.clear()
         for item in kept:
             self._blocks.append(item)
@@ -315,6 +328,7 @@ class BrightnessTracker:
         self._state = BrightnessState(math.nan, math.nan, math.nan)
         self._steps = LevelSteps(self.block_s)
         self._n_blocks = 0
+        self._next_fit = 0
         self._step: float = math.nan
         self.n_steps = 0
 
@@ -366,6 +380,7 @@ class BrightnessTracker:
         self._t0 = t0
         self.initial_f = math.nan
         self._n_blocks = 0
+        self._next_fit = 0
         self._state = BrightnessState(math.nan, math.nan, math.nan)
         self.n_steps += 1
         for t, b in kept[:-1]:
@@ -385,7 +400,7 @@ class BrightnessTracker:
 
     def _block(self, mid: float, value: float) -> None:
         self._blocks.append(value)
-        baseline = float(np.percentile(np.fromiter(self._blocks, float), self.percentile))
+        baseline = _percentile(np.fromiter(self._blocks, float), self.percentile)
         ready = len(self._blocks) == self._blocks.maxlen
         if math.isnan(self.initial_f) and ready and mid - self._t0 >= self.initial_s:
             self.initial_f = baseline
@@ -393,7 +408,11 @@ class BrightnessTracker:
         # refitted once a second over every block since the start (or the last step), decimated in the history
         self._n_blocks += 1
         slope = self._state.bleach_pct_per_min
-        if self._n_blocks >= 8 and self._n_blocks % max(1, int(round(1.0 / self.block_s))) == 0:
+        # refitted every second for the first minute, then every 1/60 of the time elapsed (a few ms a fit; about
+        # 60 + 60 ln(T / 1 min) fits in a session of T minutes)
+        every = max(1, int(round(max(1.0, (mid - self._t0) / 60.0) / self.block_s)))
+        if self._n_blocks >= 8 and self._n_blocks >= self._next_fit:
+            self._next_fit = self._n_blocks + every
             rate, se = bleach_rate(self._hist_t, self._hist_b)
             slope = math.nan
             if judgeable(rate, se):
