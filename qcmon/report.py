@@ -238,6 +238,8 @@ def _fmt(v) -> str:
         return "—" if not math.isfinite(v) else f"{v:.4g}"
     if isinstance(v, (list, tuple)):
         return ", ".join(_fmt(x) for x in v)
+    if isinstance(v, Mapping) and "factor" in v:  # a brightness step
+        return f"×{_fmt(v['factor'])} at {_fmt(v.get('time_s'))} s (frame {v.get('frame')})"
     return str(v)
 
 

@@ -23,7 +23,7 @@ _QUANTILE = 0.1
 _JUDGE_ABS = 1.0
 #: Fewest points (frames) whose fit gets a standard error: with fewer, a slope is never judged.
 _MIN_POINTS = 30
-_JUDGE_REL = 0.4
+_JUDGE_REL = 0.3
 #: A sustained change of the above-dark level by more than this factor (up or down) is a step (detector gain or
 #: laser power changed); common practice, no source. Bleaching by this much within ``_STEP_RECENT_S`` would need a
 #: time constant under 8 s; whole-field calcium transients last about a second.
@@ -158,7 +158,7 @@ def _percentile(values, q: float) -> float:
 
 
 def judgeable(slope_pct_per_min: float, se_pct_per_min: float) -> bool:
-    """Whether a bleach slope is known well enough to print: its 95 % interval is within ± 1 %/min or ± 40 % of
+    """Whether a bleach slope is known well enough to print: its 95 % interval is within ± 1 %/min or ± 30 % of
     itself (see ``_JUDGE_ABS``)."""
     if not (math.isfinite(slope_pct_per_min) and math.isfinite(se_pct_per_min)):
         return False
