@@ -363,6 +363,12 @@ class Engine:
         if dark is not None:
             st.dark_level, st.dark_origin = dark[0], f"dark frames ({st.ptc.dark.n_frames} at the start)"
             return
+        if not math.isnan(st.gain):
+            # no dark frames: photon counting (gain well above the read noise) shows the zero-photon peak
+            peak = st.ptc.find_zero_photon_peak(stack[:, ::2, ::2])
+            if peak is not None:
+                st.dark_level, st.dark_origin = peak[0], "zero-photon peak"
+                return
         if not math.isnan(st.gain) and math.isfinite(res.dark_level_dn):
             st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer (read noise unknown)"
             return

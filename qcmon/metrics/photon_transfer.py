@@ -159,6 +159,7 @@ class PhotonTransfer:
         self._chi2_dof = math.nan
         self._slope_se = math.nan
         self.dark = DarkFrames()
+        self.peak: tuple[float, float] | None = None
 
     def update(self, frame, previous) -> bool:
         """Add the pair (``previous``, ``frame``) of the same channel and plane.
@@ -288,6 +289,78 @@ class PhotonTransfer:
         self._slope_se = math.sqrt(2.0 / max(float(np.dot(w, dx * dx)), 1e-300))
         return float(slope), float(intercept), r2, int(n.size)
 
+    def find_zero_photon_peak(self, values) -> tuple[float, float] | None:
+        """Dark level and read noise from the zero-photon peak of the pixel histogram, when the data show one.
+
+        Parameters
+        ----------
+        values : array_like
+            Pixel values of some frames of the session (any shape; clipped values are left out).
+
+        Returns
+        -------
+        (dark_level_dn, read_noise_dn) or None
+            Also kept in :attr:`peak` (used by :meth:`result` when there are no dark frames).
+
+        Notes
+        -----
+        At a few photons per pixel and a gain well above the read noise (photon counting with a PMT), pixels that
+        caught no photon form a Gaussian peak at the dark level with the read noise as its width, one gain below
+        the one-photon peak. The lowest peak of the histogram is taken as that only if it is narrow (read noise
+        below a quarter of the gain) and lies on the photon-transfer line: the intercept must equal
+        ``s² - K·D`` within ``K²/4`` — an n-photon peak misses it by ``n·K²``, a broad population of dim pixels
+        by its width. Common practice of photon-counting calibration (e.g. Janesick 2007, single-photon
+        histograms, from memory); the check against the line is ours.
+        """
+        fit = self._fit()
+        if fit is None or not fit[0] > 0:
+            return None
+        k, c = fit[0], fit[1]
+        v = np.asarray(values, dtype=np.float64).ravel()
+        v = v[(v > self.floor) & (v < self.max_value)]
+        if v.size < 1000:
+            return None
+        lo = float(np.percentile(v, 0.1))
+        if np.all(v == np.round(v)):  # integer data: whole-DN bins starting half a DN low (no aliasing)
+            width, lo = max(1.0, float(round(k / 20.0))), math.floor(lo) - 0.5
+        else:
+            width = k / 20.0
+        sel = v[v < lo + 1.5 * k]
+        if sel.size < 500:
+            return None
+        n_bins = max(int(math.ceil((float(sel.max()) - lo) / width)), 1)
+        hist, edges = np.histogram(sel, bins=n_bins, range=(lo, lo + n_bins * width))
+        mode = 0.5 * (edges[int(np.argmax(hist))] + edges[int(np.argmax(hist)) + 1])
+
+        def refine(centre: float, spread: float):
+            for _ in range(3):  # the peak's centre and width from the values near it
+                near = v[np.abs(v - centre) <= 2.0 * spread]
+                if near.size < 100:
+                    return None
+                centre = float(np.median(near))
+                lower = near[near < centre] - centre
+                # values equal to the centre (integer data) count half to each side; E[x² | 0 < x < 2σ] of a
+                # Gaussian is 0.774 σ²
+                n_low = lower.size + 0.5 * int(np.count_nonzero(near == centre))
+                spread = max(math.sqrt(float(np.sum(lower * lower)) / max(n_low, 1.0) / 0.774), 0.3)
+            return centre, spread
+
+        found = refine(mode, k / 4.0)
+        if found is None or not found[1] < k / 4.0:
+            return None
+        # the tallest narrow peak may be the n-photon one (dim background of a photon or two): the line says
+        # which n, and the zero-photon peak must then be found n gains lower
+        n = round((found[0] - (found[1] ** 2 - c) / k) / k)
+        if n >= 1:
+            found = refine(found[0] - n * k, found[1])
+            if found is None or not found[1] < k / 4.0:
+                return None
+        centre, spread = found
+        if abs(spread * spread - k * centre - c) > k * k / 4.0:
+            return None
+        self.peak = (centre, spread)
+        return self.peak
+
     def _break(self) -> str:
         """A break in the line: the lower and upper halves of the points (by samples) have different slopes."""
         n, x, y = self._points()
@@ -336,7 +409,10 @@ class PhotonTransfer:
         if not quality and not self._slope_se <= _MAX_GAIN_SE * slope:
             quality = f"too few samples: gain uncertain by ±{100 * self._slope_se / slope:.0f} %"
         bias = ""
-        if dark is not None:
+        if dark is None and self.peak is not None:
+            level, read = self.peak
+            origin = "zero-photon peak"
+        elif dark is not None:
             # EMVA 1288: the dark level and dark noise are measured on dark images (release 4.0, section 6).
             level, read = dark
             origin = f"dark frames ({self.dark.n_frames})"
