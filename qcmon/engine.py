@@ -157,6 +157,7 @@ class _Stream:
     t0: float = NAN
     new_reference_requested: bool = False
     prev_dark: bool = False          # the previous frame showed no structure (closed shutter?)
+    pending_dark: dict = field(default_factory=dict)  # start-up frames' dark/lit, by frame index, until measured
     refit_gain: bool = False         # after a brightness step: take the gain from the new fit once it passes
     gain_checked_pairs: int = 0      # photon-transfer pairs at the last attempt to take the gain from the fit
     classified_upto: int = -1        # frames up to this index were sorted dark/lit when the reference was built
@@ -300,6 +301,7 @@ class Engine:
             for i, f in enumerate(frames):
                 prev = frames[i - 1].data if i and dark[i - 1] else None
                 dark.append(self._sort_dark(st, f.data, prev))
+                st.pending_dark[f.index] = dark[-1]
             for i in range(1, len(frames)):
                 if dark[i] == dark[i - 1]:
                     st.ptc.update(stack[i], stack[i - 1])
@@ -381,12 +383,16 @@ class Engine:
             sigma = immerkaer_sigma(data)
         dark = is_structureless(data, sigma)
         if dark:
-            kind = data.dtype.kind
-            floor = 0 if kind == "u" else np.iinfo(data.dtype).min if kind == "i" else -np.inf
-            st.ptc.dark.add(data, prev, clipped_frac=float(np.mean((data >= st.max_value) | (data <= floor))))
+            self._add_dark(st, data, prev)
         else:
             st.ptc.dark.add_lit(float(np.mean(data, dtype=np.float64)))
         return dark
+
+    @staticmethod
+    def _add_dark(st: _Stream, data: np.ndarray, prev: np.ndarray | None) -> None:
+        kind = data.dtype.kind
+        floor = 0 if kind == "u" else np.iinfo(data.dtype).min if kind == "i" else -np.inf
+        st.ptc.dark.add(data, prev, clipped_frac=float(np.mean((data >= st.max_value) | (data <= floor))))
 
     def _measure_or_wait(self, st: _Stream, frame: Frame) -> list[dict]:
         mc = self.settings.motion_channel
@@ -506,12 +512,12 @@ class Engine:
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
             if frame.index > st.classified_upto:  # frames of the start-up were sorted when the reference was built
                 dark = _structureless_binned(binned, factor, sigma)
-                if dark:
-                    self._sort_dark(st, img, st.prev if st.prev_dark else None, sigma)
-                else:
+                if not dark:
                     st.ptc.dark.add_lit(mean_raw)
+                elif st.ptc.dark.n_frames < st.ptc.dark.MAX_FRAMES:  # a pass over the frame: only while needed
+                    self._add_dark(st, img, st.prev if st.prev_dark else None)
             else:
-                dark = is_structureless(img, sigma)
+                dark = st.pending_dark.pop(frame.index, False)
             if st.prev is not None and dark == st.prev_dark:  # a dark and a lit frame make no sample
                 cur, prev = _overlap(img, st.prev, (ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1]))
                 if cur.size:
@@ -539,10 +545,12 @@ def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool
     the registration): its variance against what the pixel noise alone leaves after binning."""
     if not math.isfinite(sigma):
         return False
-    if factor < 2:
-        return is_structureless(binned, sigma)
-    # binned holds block sums: noise alone gives factor² σ²
-    return float(np.var(binned, dtype=np.float64)) <= 2.0 * max(sigma * sigma, 1.0 / 12.0) * (factor * factor)
+    # binned further to blocks of about 8 px (cell-sized structure stays); it holds block sums: noise alone gives
+    # (side)² σ² per block
+    more = max(1, 8 // factor)
+    sums = bin_image(binned, more) if more > 1 and min(binned.shape) >= 2 * more else binned
+    side = factor * (more if sums is not binned else 1)
+    return float(np.var(sums, dtype=np.float64)) <= 2.0 * max(sigma * sigma, 1.0 / 12.0) * (side * side)
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

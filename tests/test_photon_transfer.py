@@ -331,3 +331,22 @@ def test_zero_photon_peak_gives_dark_level_without_dark_frames(scale, gain, read
     assert_allclose(peak[1], math.hypot(read_noise, math.sqrt(1 / 12)), rtol=0.15)
     res = pt.result()
     assert res.dark_origin == "zero-photon peak" and res.bias == ""
+
+
+def test_a_session_without_structure_gets_no_dark_level_from_itself():
+    # Frames that all look structureless (a flat lit field) are not dark: without lit frames clearly above them
+    # their mean is not taken as the dark level (EMVA 1288 flat field under detect; common practice).
+    from outside_data import detect
+
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+
+    rng = np.random.default_rng(9)
+    eng = Engine(EngineSettings(frame_rate_hz=30.0))
+    for i in range(40):
+        frame = detect(np.full((64, 64), 50.0), rng, gain=2.5, offset=100, read_noise_dn=8)
+        eng.process(Frame(data=frame, index=i, time_s=i / 30.0))
+    eng.flush()
+    info = eng.stream_info()[(0, 0)]
+    assert not info["dark_level_origin"].startswith("dark frames")
+    assert not info.get("ptc_dark_origin", "").startswith("dark frames")

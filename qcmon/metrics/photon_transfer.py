@@ -425,7 +425,7 @@ class PhotonTransfer:
         return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias)
 
 
-def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 4, ratio: float = 2.0) -> bool:
+def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 8, ratio: float = 2.0) -> bool:
     """Whether a frame shows no structure beyond its pixel noise (a closed shutter, no specimen).
 
     Parameters
@@ -435,7 +435,8 @@ def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 4, ratio: f
     noise_sigma : float
         Its pixel noise σ in DN (e.g. :func:`qcmon.metrics.noise.immerkaer_sigma`).
     bin_factor : int
-        Side of the blocks averaged before the variance is taken (default 4).
+        Side of the blocks averaged before the variance is taken (default 8: cell-sized structure stays, the
+        noise variance falls 64-fold).
     ratio : float
         A frame is structureless when the variance of its ``bin_factor``-binned image is below ``ratio`` times
         what noise alone gives (``σ² / bin_factor²``).
@@ -466,6 +467,9 @@ class DarkFrames:
     temporal dark noise from two dark images), which includes quantisation.
     """
 
+    #: Dark frames used at most (their statistics are settled long before; a session of structureless frames
+    #: would otherwise pay a pass over every frame).
+    MAX_FRAMES = 64
     #: Largest fraction of a dark frame's pixels at the detector's floor or ceiling: more, and its mean is biased.
     MAX_CLIPPED = 0.001
 
@@ -479,6 +483,8 @@ class DarkFrames:
 
     def add(self, frame: np.ndarray, previous_dark: np.ndarray | None, *, clipped_frac: float = 0.0) -> None:
         """Add a structureless frame (and, when the frame before it was one too, their pair)."""
+        if self.n_frames >= self.MAX_FRAMES:  # enough for both figures; each frame costs a pass over its pixels
+            return
         if clipped_frac > self.MAX_CLIPPED:
             self.refused = f"dark frames with {100 * clipped_frac:.2g} % of their pixels clipped: not used"
             return
@@ -502,7 +508,7 @@ class DarkFrames:
         level = self._sum_mean / self.n_frames
         read = math.sqrt(self._sum_var / self._n_pairs)
         # dark only if the lit frames sit clearly above: a flat, lit field is structureless too
-        if not self.lit_min_mean > level + 3.0 * max(read, 0.5):
+        if not (math.isfinite(self.lit_min_mean) and self.lit_min_mean > level + 3.0 * max(read, 0.5)):
             return None
         return level, read
 
