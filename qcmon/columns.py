@@ -32,7 +32,10 @@ COLUMNS: tuple[Column, ...] = (
     Column("mean_f", "DN", "mean pixel value above the dark level"),
     Column("baseline_f", "DN", "slow robust baseline of mean_f that neural activity does not move"),
     Column("brightness_pct", "%", "baseline_f as percent of the initial baseline"),
-    Column("bleach_pct_per_min", "%/min", "slope of the baseline over the trailing window, % of initial per min"),
+    Column("bleach_pct_per_min", "%/min", "bleach slope fitted to the brightness since the start (or the last "
+           "step), % of initial per min; blank while too uncertain to judge"),
+    Column("level_step", "", "new / old above-dark brightness at the frame where a sudden, sustained step was "
+           "found (detector gain or laser power changed?); blank elsewhere"),
     Column("saturated_frac", "", "fraction of pixels at the detector maximum (0..1)"),
     Column("clipped_frac", "", "fraction of pixels clipped at the floor (0 or below)"),
     Column("noise_sigma", "DN", "Immerkær noise standard deviation, from about 32 000 pixels of the frame (every k-th row)"),

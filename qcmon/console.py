@@ -59,7 +59,8 @@ def format_event(ev: Event) -> str:
         text = head + (ev.message or f"{ev.metric} = {ev.value:.4g} (limit {ev.limit:.4g}) at frame {ev.frame}")
     else:
         label = {"note": "note", "reference": "reference", "problem": "input problem",
-                 "idle": "no new frame", "resumed": "frames again"}.get(ev.kind, ev.kind)
+                 "idle": "no new frame", "resumed": "frames again",
+                 "step": "! brightness step"}.get(ev.kind, ev.kind)
         text = f"[{t}] {label}{where}: {ev.message}"
     if ev.advice:
         text += "\n" + " " * 13 + "→ " + ev.advice

@@ -33,7 +33,7 @@ from qcmon.metrics._imageops import auto_bin, bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
-from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level
+from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level, is_structureless
 from qcmon.metrics.registration import ShiftEstimator, build_reference
 from qcmon.metrics.saturation import RangeFinder
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
@@ -172,6 +172,11 @@ class _Stream:
     new_reference_requested: bool = False
     untimed: bool | None = None  # True: the brightness tracker runs on frames (no time when the stream began)
     last_brightness: object = None
+    prev_dark: bool = False          # the previous frame showed no structure (closed shutter?)
+    pending_dark: dict = field(default_factory=dict)  # start-up frames' dark/lit, by frame index, until measured
+    refit_gain: bool = False         # after a brightness step: take the gain from the new fit once it passes
+    gain_checked_pairs: int = 0      # photon-transfer pairs at the last attempt to take the gain from the fit
+    classified_upto: int = -1        # frames up to this index were sorted dark/lit when the reference was built
 
 
 class Engine:
@@ -286,8 +291,12 @@ class Engine:
                 except Exception:  # pragma: no cover - never lose the summary over a failed fit
                     res = None
                 if res is not None:
-                    info.update(gain_dn_per_photon=res.gain_dn_per_photon, ptc_dark_level_dn=res.dark_level_dn,
-                                read_noise_dn=res.read_noise_dn, ptc_points=res.n_points, ptc_r2=res.r2)
+                    # a fit that failed its checks is not a gain: blank, with the reason beside it
+                    usable = not res.quality
+                    info.update(gain_dn_per_photon=res.gain_dn_per_photon if usable else NAN,
+                                ptc_dark_level_dn=res.dark_level_dn if usable or "dark" in res.dark_origin else NAN,
+                                read_noise_dn=res.read_noise_dn, ptc_points=res.n_points, ptc_r2=res.r2,
+                                ptc_quality=res.quality, ptc_dark_origin=res.dark_origin, ptc_bias=res.bias)
             if st.brightness is not None:
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore", UserWarning)  # too short a session: NaN fit
@@ -445,9 +454,13 @@ class Engine:
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
             if math.isfinite(st.gain) and st.gain > 0:
                 row["photons_per_px"] = mean_f / st.gain
-        if st.prev is not None and st.prev.shape == img.shape:
-            st.ptc.update(img, st.prev)
-        st.prev, st.prev_shift = img, (0, 0)
+        if frame.index in st.pending_dark:  # sorted dark/lit with the first frames
+            dark = st.pending_dark.pop(frame.index)
+        else:
+            dark = self._sort_dark(st, data, st.prev if st.prev_dark else None)
+        if st.prev is not None and st.prev.shape == img.shape and dark == st.prev_dark:
+            st.ptc.update(img, st.prev)  # a dark and a lit frame make no photon-transfer sample
+        st.prev, st.prev_shift, st.prev_dark = img, (0, 0), dark
         self._note_blank(st, frame, "before any reference: dark, flat or clipped frames, or fewer than two frames "
                                     "with structure")
         st.n_measured += 1
@@ -489,10 +502,18 @@ class Engine:
             self._observe_range(st, fr)
         st.max_value = st.range.ceiling.value
         # every start-up pair counts for the dark level; later pairs are thinned by the accumulator itself
-        st.ptc = PhotonTransfer(max_value=_finite(st.max_value), floor=_finite(st.range.floor.value),
-                                pair_step=1)
-        for a, b in zip(stack[1:], stack[:-1]):
-            st.ptc.update(a, b)
+        st.ptc = PhotonTransfer(max_value=st.max_value, floor=st.range.floor.value, pair_step=1)
+        # frames without structure (closed shutter) give the dark level and read noise; pairs of a dark and a lit
+        # frame are no photon-transfer sample
+        dark: list[bool] = []
+        for i, f in enumerate(frames):
+            prev = frames[i - 1].data if i and dark[i - 1] else None
+            dark.append(self._sort_dark(st, f.data, prev))
+            st.pending_dark[f.index] = dark[-1]
+        for i in range(1, len(frames)):
+            if dark[i] == dark[i - 1]:
+                st.ptc.update(stack[i], stack[i - 1])
+        st.classified_upto = frames[-1].index
         st.ptc.pair_step = s.photon_transfer_every
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
@@ -576,8 +597,8 @@ class Engine:
         if notes:
             st.max_value = st.range.ceiling.value
             if st.ptc is not None:
-                st.ptc.max_value = _finite(st.max_value)
-                st.ptc.floor = _finite(st.range.floor.value)
+                st.ptc.max_value = st.max_value
+                st.ptc.floor = st.range.floor.value
             t = frame.time_s
             if not math.isfinite(t) and self.settings.frame_rate_hz:
                 t = frame.index / self.settings.frame_rate_hz
@@ -599,12 +620,41 @@ class Engine:
                 res = st.ptc.result()
         except Exception:
             res = None
-        if res is not None and math.isfinite(res.dark_level_dn) and math.isfinite(res.gain_dn_per_photon) \
-                and res.gain_dn_per_photon > 0:
-            st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer"
+        dark = st.ptc.dark.result()
+        if res is not None and math.isfinite(res.gain_dn_per_photon) and res.gain_dn_per_photon > 0 \
+                and not res.quality:
             st.gain = float(res.gain_dn_per_photon)
+        if dark is not None:
+            st.dark_level, st.dark_origin = dark[0], f"dark frames ({st.ptc.dark.n_frames} at the start)"
+            return
+        if not math.isnan(st.gain):
+            # no dark frames: photon counting (gain well above the read noise) shows the zero-photon peak
+            peak = st.ptc.find_zero_photon_peak(stack[:, ::2, ::2])
+            if peak is not None:
+                st.dark_level, st.dark_origin = peak[0], "zero-photon peak"
+                return
+        if not math.isnan(st.gain) and math.isfinite(res.dark_level_dn):
+            st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer (read noise unknown)"
             return
         st.dark_level, st.dark_origin = float(estimate_dark_level(stack[0])), "low percentile"
+
+    def _sort_dark(self, st: _Stream, data: np.ndarray, prev: np.ndarray | None, sigma: float = NAN) -> bool:
+        """Whether a frame shows no structure (closed shutter); hands it to the dark-frame statistics or its mean to
+        the lit frames'. ``prev`` is the previous frame when it was structureless too."""
+        if not math.isfinite(sigma):
+            sigma = immerkaer_sigma(data)
+        dark = is_structureless(data, sigma)
+        if dark:
+            self._add_dark(st, data, prev)
+        else:
+            st.ptc.dark.add_lit(float(np.mean(data, dtype=np.float64)))
+        return dark
+
+    @staticmethod
+    def _add_dark(st: _Stream, data: np.ndarray, prev: np.ndarray | None) -> None:
+        kind = data.dtype.kind
+        floor = 0 if kind == "u" else np.iinfo(data.dtype).min if kind == "i" else -np.inf
+        st.ptc.dark.add(data, prev, clipped_frac=float(np.mean((data >= st.max_value) | (data <= floor))))
 
     def _measure_or_wait(self, st: _Stream, frame: Frame) -> list[dict]:
         mc = self.settings.motion_channel
@@ -737,20 +787,48 @@ class Engine:
             # photometry
             mean_f = mean_raw - st.dark_level
             row["mean_f"] = mean_f
-            if math.isfinite(track_t):
+            fresh = math.isfinite(track_t)
+            if fresh:
                 b = st.last_brightness = st.brightness.update(track_t, mean_f)
             else:  # a frame without a timestamp in a session timed by timestamps: the tracker waits
                 b = st.last_brightness
             if b is not None:
                 row.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
-                           bleach_pct_per_min=b.bleach_pct_per_min * self._per_min_scale(st))
+                           bleach_pct_per_min=b.bleach_pct_per_min * self._per_min_scale(st),
+                           level_step=b.step_factor if fresh else NAN)
+            if fresh and not math.isnan(b.step_factor):
+                # detector gain or laser power changed: photon transfer starts again (the dark frames stay), and
+                # photons per pixel are blank until a new fit passes its checks
+                dark = st.ptc.dark
+                st.ptc.reset()
+                st.ptc.dark = dark
+                st.ptc.pair_step = 1
+                st.gain, st.refit_gain = NAN, True
+            elif st.refit_gain and st.ptc.n_pairs >= 30 and st.ptc.n_pairs % 10 == 0 \
+                    and st.ptc.n_pairs != st.gain_checked_pairs:
+                st.gain_checked_pairs = st.ptc.n_pairs
+                st.ptc.pair_step = s.photon_transfer_every
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", UserWarning)
+                    res = st.ptc.result()
+                if not res.quality and res.gain_dn_per_photon > 0:
+                    st.gain, st.refit_gain = res.gain_dn_per_photon, False
             row.update(saturated_frac=sat, clipped_frac=clip)
             row["noise_sigma"] = sigma
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
-            if st.prev is not None:
+            if frame.index > st.classified_upto:  # frames of the start-up were sorted when the reference was built
+                dark = _structureless_binned(binned, factor, sigma)
+                if not dark:
+                    st.ptc.dark.add_lit(mean_raw)
+                elif st.ptc.dark.n_frames < st.ptc.dark.MAX_FRAMES:  # a pass over the frame: only while needed
+                    self._add_dark(st, img, st.prev if st.prev_dark else None)
+            else:
+                dark = st.pending_dark.pop(frame.index, False)
+            if st.prev is not None and dark == st.prev_dark:  # a dark and a lit frame make no sample
                 cur, prev = _overlap(img, st.prev, (ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1]))
                 if cur.size:
                     st.ptc.update(cur, prev)
+            st.prev_dark = dark
             gain = st.gain
             if math.isfinite(gain) and gain > 0:
                 photons = mean_f / gain
@@ -768,9 +846,18 @@ class Engine:
             self._shared_motion.pop(self._shared_order.popleft(), None)
 
 
-def _finite(v: float) -> float:
-    """A limit for the photon-transfer accumulator, which needs finite ones (float data have none)."""
-    return v if math.isfinite(v) else math.copysign(float(np.finfo(np.float32).max), v)
+
+def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool:
+    """:func:`~qcmon.metrics.photon_transfer.is_structureless` on the frame binned by ``factor`` (already made for
+    the registration): its variance against what the pixel noise alone leaves after binning."""
+    if not math.isfinite(sigma):
+        return False
+    # binned further to blocks of about 8 px (cell-sized structure stays); it holds block sums: noise alone gives
+    # (side)² σ² per block
+    more = max(1, 8 // factor)
+    sums = bin_image(binned, more) if more > 1 and min(binned.shape) >= 2 * more else binned
+    side = factor * (more if sums is not binned else 1)
+    return float(np.var(sums, dtype=np.float64)) <= 2.0 * max(sigma * sigma, 1.0 / 12.0) * (side * side)
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

@@ -21,7 +21,8 @@ class Event:
         "start" (a state begins), "end" (it ends), "note" (text from the experimenter), "reference" (a new
         reference was taken), "problem" (bad input that was skipped), "detector" (a level of the detector's range
         found in the data or withdrawn), "idle" (no new frame for a while while watching), "resumed" (frames
-        arrive again after an idle event).
+        arrive again after an idle event), "step" (a sudden,
+        sustained step of the above-dark brightness: detector gain or laser power changed).
     metric : str
         Metric name as in ``traces.csv`` (e.g. "displacement_um"); "" for notes.
     state : str

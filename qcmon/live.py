@@ -47,6 +47,19 @@ from qcmon.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
+def step_event(row: dict) -> Event:
+    """The event of a sudden, sustained step of the above-dark brightness found at ``row``."""
+    t, factor = float(row["time_s"]), float(row["level_step"])
+    where = f" (channel {row['channel']}, plane {row['plane']})"
+    minutes, seconds = divmod(max(t, 0.0), 60.0)
+    return Event(kind="step", metric="level_step", value=factor, frame=int(row["frame"]), time_s=t,
+                 started_frame=int(row["frame"]), started_time_s=t, channel=int(row["channel"]),
+                 plane=int(row["plane"]),
+                 message=(f"brightness ×{factor:.3g} at {int(minutes)}:{seconds:04.1f}: detector gain or laser power "
+                          f"changed? Baseline, bleach slope and photon transfer start again from here{where}"),
+                 )
+
+
 @dataclass(slots=True)
 class MonitorOptions:
     """What to watch and how. See ``qcmon watch --help`` for the user-facing names."""
@@ -474,6 +487,9 @@ class Monitor:
         for row in rows:
             for ev in run.tracker.update(row):
                 self._emit(ev, record, listeners)
+            step = row.get("level_step", math.nan)
+            if isinstance(step, float) and math.isfinite(step):
+                self._emit(step_event(row), record, listeners)
         for lst in listeners:
             lst.on_rows(rows)
         run.last_row = rows[-1]
@@ -689,6 +705,9 @@ class Monitor:
                 "photon_transfer.dark_level": first.get("ptc_dark_level_dn", math.nan),
                 "photon_transfer.read_noise_dn": first.get("read_noise_dn", math.nan),
                 "photon_transfer.r2": first.get("ptc_r2", math.nan),
+                "photon_transfer.quality": first.get("ptc_quality", ""),
+                "photon_transfer.dark_origin": first.get("ptc_dark_origin", ""),
+                "photon_transfer.bias": first.get("ptc_bias", ""),
                 "dark_level.used_dn": first.get("dark_level_dn", math.nan),
                 "dark_level.origin": first.get("dark_level_origin", ""),
                 "saturation.level_dn": first.get("saturation_level_dn", math.nan),

@@ -278,6 +278,8 @@ def _fmt(v) -> str:
     if isinstance(v, (list, tuple)):
         return " × ".join(_fmt(x) for x in v) if all(isinstance(x, (int, np.integer)) for x in v) \
             else ", ".join(_fmt(x) for x in v)
+    if isinstance(v, Mapping) and "factor" in v:  # a brightness step
+        return f"×{_fmt(v['factor'])} at {_fmt(v.get('time_s'))} s (frame {v.get('frame')})"
     return str(v)
 
 

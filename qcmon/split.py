@@ -14,8 +14,10 @@ What is the same as in one process, and what is not:
 - Focus correlation, z and the line offset come from the running means of the last ``running_mean_frames`` frames,
   recomputed every ``z_every`` frames: the warm-up fills the running means with the same frames, summed in the same
   blocks, and keeps the same frames as recomputation points, so they are identical.
-- Baseline, brightness % and bleach slope have long trailing windows: they are recomputed here, in order, over all
-  rows (:class:`RowContinuity`), so they are identical.
+- Baseline, brightness %, bleach slope and brightness steps (``level_step``) depend on the whole series: they are
+  recomputed here, in order, over all rows (:class:`RowContinuity`), so they are identical.
+- After a brightness step one process blanks photons per pixel until photon transfer has refitted; a worker's engine
+  finds steps in its own chunk only, so photons per pixel after a step may differ (no step: identical).
 - The photon-transfer fit of ``summary.json`` (``photon_transfer.*``) uses the frame pairs of the first chunk only.
 """
 
@@ -164,7 +166,8 @@ class RowContinuity:
                 warnings.simplefilter("ignore", UserWarning)
                 b = tr.update(t, float(r["mean_f"]))
             r.update(baseline_f=b.baseline_f, brightness_pct=b.brightness_pct,
-                     bleach_pct_per_min=math.nan if untimed else b.bleach_pct_per_min)
+                     bleach_pct_per_min=math.nan if untimed else b.bleach_pct_per_min,
+                     level_step=b.step_factor)
         return rows
 
     def stream_info(self) -> dict[tuple[int, int], dict]:

@@ -83,6 +83,7 @@ import numpy as np
 import qcmon
 from qcmon.events import Event
 from qcmon.frames import RATE_UNKNOWN
+from qcmon.metrics.brightness import bleach_rate, judgeable
 from qcmon.thresholds import Profile, load_profile
 
 __all__ = [
@@ -267,12 +268,32 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
     for group, stats in _STATS.items():
         out[group] = {name: _stat(np.asarray(traces[col], dtype=float)[idx], how)
                       for name, (col, how) in stats.items()}
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        slope, tau = fit_bleaching(t, np.asarray(traces["baseline_f"], dtype=float)[idx])
-    for w in caught:
-        notes.append(f"channel {key[0]}, plane {key[1]}: {w.message}")
-    out["bleach"].update(slope_pct_per_min=slope, tau_min=tau)
+    # Bleach slope: quantile fit of every frame's above-dark mean from the first frame on (no trailing filter), one
+    # level per segment between brightness steps; blank with a reason when its uncertainty is too wide.
+    step_col = traces.get("level_step")
+    steps = np.zeros(idx.size, dtype=bool) if step_col is None else np.isfinite(np.asarray(step_col, float)[idx])
+    where = f"channel {key[0]}, plane {key[1]}"
+    mean_col = traces.get("mean_f")
+    slope = se = math.nan
+    if mean_col is not None:
+        slope, se = bleach_rate(t, np.asarray(mean_col, dtype=float)[idx], segments=np.cumsum(steps))
+    note = ""
+    if not math.isfinite(slope):
+        note = "too few frames with light above dark to fit"
+    elif not judgeable(slope, se):
+        note = f"too short to judge: {slope:.2g} ± {2 * se:.2g} %/min (95 %)"
+        notes.append(f"{where}: bleach slope {note}")
+        slope = math.nan
+    tau = -100.0 / slope if math.isfinite(slope) and slope < 0 else math.nan
+    out["bleach"].update(slope_pct_per_min=slope, tau_min=tau, slope_se_pct_per_min=se, note=note)
+    step_rows = np.flatnonzero(steps)
+    out["brightness"]["steps"] = [
+        {"frame": int(frames[i]), "time_s": float(t[i]), "factor": float(np.asarray(step_col, float)[idx][i])}
+        for i in step_rows]
+    for st in out["brightness"]["steps"]:
+        notes.append(f"{where}: brightness ×{st['factor']:.3g} at {st['time_s']:.1f} s (frame {st['frame']}): "
+                     "detector gain or laser power changed? Baseline, bleach slope and photon transfer start again "
+                     "after it")
     worst = "unknown"
     for group, metrics in GROUPS.items():
         g = out[group]
@@ -284,8 +305,8 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
                            else math.nan)  # no times (frame rate unknown): no durations
         if spans["alarm"]:
             g["verdict"] = "fail"
-        elif spans["warning"]:
-            g["verdict"] = "warning"
+        elif spans["warning"] or (group == "brightness" and step_rows.size):
+            g["verdict"] = "warning"  # a step of the level is never "pass": the brightness is not one session's
         else:
             g["verdict"] = "pass" if limited else "unknown"
         # frames excluded for a value beyond the alarm level (too briefly for a declared alarm) cannot sit under
@@ -412,6 +433,9 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
     b["slope_pct_per_min"] = _worst_final(slopes, prefer="min")
     taus = [s["bleach"]["tau_min"] for s in per if math.isfinite(s["bleach"]["tau_min"])]
     b["tau_min"] = min(taus) if taus else math.nan
+    b["note"] = "; ".join(s["bleach"]["note"] for s in per if s["bleach"].get("note"))
+    summary["brightness"]["steps"] = [dict(st, channel=s["channel"], plane=s["plane"])
+                                      for s in per for st in s["brightness"].get("steps", [])]
     summary["photon_transfer"] = {"gain": math.nan, "dark_level": math.nan}
     worst = "unknown"
     for group in GROUPS:

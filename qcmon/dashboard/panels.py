@@ -331,6 +331,7 @@ _KIND_TEXT = {
     "detector": "▣ detector",
     "idle": "⏸ no frames",
     "resumed": "▶ frames again",
+    "step": "! brightness step",
 }
 
 
@@ -397,7 +398,7 @@ class EventList(RichLog):
 
 def _event_text(event: Event) -> tuple[str, Text]:
     when, stream, what, detail = event_cells(event)
-    style = {"start": event.state, "problem": "alarm", "idle": "warning"}.get(event.kind, "")
+    style = {"start": event.state, "problem": "alarm", "idle": "warning", "step": "warning"}.get(event.kind, "")
     cell_style = {"warning": "bold yellow", "alarm": "bold red"}.get(style, "bold")
     text = Text(no_wrap=False, overflow="fold")
     text.append(f"{when} ", style="dim")

@@ -10,7 +10,8 @@ import numpy as np
 
 from qcmon.metrics._validate import as_image, finite_float, positive_int
 
-__all__ = ["PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "photons_per_px", "shot_snr"]
+__all__ = ["DarkFrames", "PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "is_structureless",
+           "photons_per_px", "shot_snr"]
 
 #: Samples whose squared high-passed difference exceeds this many predicted variances are outliers (6 sigma).
 _OUTLIER_VAR = 36.0
@@ -18,6 +19,19 @@ _OUTLIER_VAR = 36.0
 _FLAT_GRAD = 3.0
 #: Fewest samples a bin needs to enter the fit.
 _MIN_BIN_COUNT = 50
+#: Fine bins equally spaced in sqrt(level - floor) over the detector's whole range: fixed before any data, so the
+#: result does not depend on the order of the pairs (bins set by the first pair rejected everything after a dark
+#: first pair). They are merged into about ``n_bins`` points for the fit.
+_FINE_BINS = 8192
+#: A fit is used only with r² at least this (weighted; a clean photon-transfer line gives > 0.99) ...
+_MIN_R2 = 0.9
+#: ... unless the points scatter about the line no more than this (reduced χ²) times their own noise.
+_MAX_CHI2 = 4.0
+#: Largest relative standard error of the gain that is still a gain to use.
+_MAX_GAIN_SE = 0.1
+#: A break in the line: the slopes of the lower and upper halves of the signal range differ by more than this
+#: fraction (and by more than 4 standard errors).
+_BREAK_FRAC = 0.25
 
 
 @dataclass(frozen=True, slots=True)
@@ -36,6 +50,14 @@ class PhotonTransferResult:
         Mean–variance points (bins) in the fit.
     r2 : float
         Weighted coefficient of determination of the line fit.
+    quality : str
+        "" when the fit can be used; otherwise why not, in plain words (r² too low, a break in the line, too few
+        points). A caller must not use the gain when this is not empty.
+    dark_origin : str
+        Where dark level and read noise come from: "dark frames", "read noise given" or "intercept" (read noise
+        unknown: the dark level is low by ``read_noise**2 / gain``, see ``bias``).
+    bias : str
+        The bias that remains, in plain words ("" when none is known).
     """
 
     gain_dn_per_photon: float
@@ -43,6 +65,9 @@ class PhotonTransferResult:
     read_noise_dn: float
     n_points: int
     r2: float
+    quality: str = ""
+    dark_origin: str = ""
+    bias: str = ""
 
 
 class PhotonTransfer:
@@ -104,8 +129,11 @@ class PhotonTransfer:
 
     def __init__(self, *, max_value: float, floor: float = 0.0, read_noise_dn: float | None = None,
                  n_bins: int = 32, row_step: int = 8, pair_step: int = 8):
-        self.max_value = finite_float(max_value, "max_value")
-        self.floor = finite_float(floor, "floor")
+        # float data without a bit depth have no limits: +inf / -inf (the bins then follow the first data)
+        self.max_value, self.floor = float(max_value), float(floor)
+        for name, v in (("max_value", self.max_value), ("floor", self.floor)):
+            if math.isnan(v):
+                raise ValueError(f"{name} must be a number, got {v!r}")
         if self.floor >= self.max_value:
             raise ValueError(f"floor ({self.floor}) must be below max_value ({self.max_value})")
         if read_noise_dn is not None:
@@ -125,10 +153,16 @@ class PhotonTransfer:
         self._calls = 0
         self.n_pairs = 0
         self._edges: tuple[float, float] | None = None
-        self._count = np.zeros(self.n_bins)
-        self._sum_x = np.zeros(self.n_bins)
-        self._sum_y = np.zeros(self.n_bins)
+        if math.isfinite(self.max_value) and math.isfinite(self.floor):  # fixed before any data: independent of the order of the pairs
+            self._edges = (self.floor, _FINE_BINS / math.sqrt(self.max_value - self.floor))
+        self._count = np.zeros(_FINE_BINS)
+        self._sum_x = np.zeros(_FINE_BINS)
+        self._sum_y = np.zeros(_FINE_BINS)
         self._line: tuple[float, float] | None = None
+        self._chi2_dof = math.nan
+        self._slope_se = math.nan
+        self.dark = DarkFrames()
+        self.peak: tuple[float, float] | None = None
 
     def update(self, frame, previous) -> bool:
         """Add the pair (``previous``, ``frame``) of the same channel and plane.
@@ -170,14 +204,16 @@ class PhotonTransfer:
             ok &= grad2 <= _FLAT_GRAD * 8.0 * np.maximum(slope * nbr + intercept, 1e-6)
         lo, scale = self._edges
         idx = np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale
-        idx = np.minimum(idx.astype(np.intp), self.n_bins - 1)
+        idx = np.minimum(idx.astype(np.intp), _FINE_BINS - 1)
         xs, ys = x[ok], y[ok]
-        self._count += np.bincount(idx, minlength=self.n_bins)
-        self._sum_x += np.bincount(idx, weights=xs, minlength=self.n_bins)
-        self._sum_y += np.bincount(idx, weights=ys, minlength=self.n_bins)
+        self._count += np.bincount(idx, minlength=_FINE_BINS)
+        self._sum_x += np.bincount(idx, weights=xs, minlength=_FINE_BINS)
+        self._sum_y += np.bincount(idx, weights=ys, minlength=_FINE_BINS)
         self.n_pairs += 1
         line = self._fit()
-        self._line = None if line is None else line[:2]
+        # Outliers are judged against the line only once it is one (a rising line that fits): a single pair at one
+        # level (a dark or flat first pair) gives a noise-driven line that would reject everything after it.
+        self._line = line[:2] if line is not None and line[0] > 0 and line[2] >= _MIN_R2 and line[3] >= 5 else None
         return True
 
     def _samples(self, a: np.ndarray, b: np.ndarray):
@@ -206,23 +242,37 @@ class PhotonTransfer:
         return x.ravel(), y.ravel(), nbr.ravel(), grad2.ravel(), ok.ravel()
 
     def _set_edges(self, nbr: np.ndarray) -> None:
-        """Bins equally spaced in sqrt(neighbour mean - low end): about equal noise per bin (shot noise)."""
+        """Only for a detector without a finite maximum (float data without a bit depth): fine bins equally spaced
+        in sqrt(neighbour mean - low end) up to 16 times the span of the first pair with light."""
         if nbr.size < 100:
             return
         lo, hi = np.percentile(nbr, [0.5, 99.5])
         span = math.sqrt(max(hi - lo, 0.0))
-        if span <= 0:
+        if not span > 0:
             return
-        self._edges = (float(lo), self.n_bins / span)
+        self._edges = (float(min(lo, self.floor if math.isfinite(self.floor) else lo)), _FINE_BINS / (4.0 * span))
+
+    def _points(self):
+        """The fine bins merged, from the low end, into points of at least ``total / n_bins`` samples each (and
+        at least the minimum count): arrays (n, mean x, mean y)."""
+        total = float(self._count.sum())
+        if total <= 0:
+            return np.zeros(0), np.zeros(0), np.zeros(0)
+        need = max(_MIN_BIN_COUNT, total / (2 * self.n_bins))
+        cum = np.cumsum(self._count)
+        group = np.floor(cum / need).astype(np.intp)
+        group = np.concatenate(([0], group[:-1]))  # a bin closes its group when the group reaches `need`
+        n = np.bincount(group, weights=self._count)
+        sx = np.bincount(group, weights=self._sum_x)
+        sy = np.bincount(group, weights=self._sum_y)
+        keep = n >= _MIN_BIN_COUNT
+        return n[keep], sx[keep] / n[keep], sy[keep] / n[keep]
 
     def _fit(self):
         """Weighted line fit through the bins: (slope, intercept, r2, n_points) or None."""
-        good = self._count >= _MIN_BIN_COUNT
-        if good.sum() < 3:
+        n, x, y = self._points()
+        if n.size < 3:
             return None
-        n = self._count[good]
-        x = self._sum_x[good] / n
-        y = self._sum_y[good] / n
         if np.ptp(x) <= 0:
             return None
         # Weights from the fitted line, not from each bin's own scatter (which correlates with its mean and
@@ -236,20 +286,234 @@ class PhotonTransfer:
         ybar = np.average(y, weights=w)
         ss_tot = float(np.sum(w * (y - ybar) ** 2))
         r2 = 1.0 - float(np.sum(w * resid**2)) / ss_tot if ss_tot > 0 else math.nan
-        return float(slope), float(intercept), r2, int(good.sum())
+        # w / 2 are inverse variances of the bin means (variance samples of Gaussian noise: var = 2 E[y]**2 / n)
+        self._chi2_dof = float(np.sum(0.5 * w * resid**2)) / max(n.size - 2, 1)
+        dx = x - np.average(x, weights=w)
+        self._slope_se = math.sqrt(2.0 / max(float(np.dot(w, dx * dx)), 1e-300))
+        return float(slope), float(intercept), r2, int(n.size)
+
+    def find_zero_photon_peak(self, values) -> tuple[float, float] | None:
+        """Dark level and read noise from the zero-photon peak of the pixel histogram, when the data show one.
+
+        Parameters
+        ----------
+        values : array_like
+            Pixel values of some frames of the session (any shape; clipped values are left out).
+
+        Returns
+        -------
+        (dark_level_dn, read_noise_dn) or None
+            Also kept in :attr:`peak` (used by :meth:`result` when there are no dark frames).
+
+        Notes
+        -----
+        At a few photons per pixel and a gain well above the read noise (photon counting with a PMT), pixels that
+        caught no photon form a Gaussian peak at the dark level with the read noise as its width, one gain below
+        the one-photon peak. The lowest peak of the histogram is taken as that only if it is narrow (read noise
+        below a quarter of the gain) and lies on the photon-transfer line: the intercept must equal
+        ``s² - K·D`` within ``K²/4`` — an n-photon peak misses it by ``n·K²``, a broad population of dim pixels
+        by its width. Common practice of photon-counting calibration (e.g. Janesick 2007, single-photon
+        histograms, from memory); the check against the line is ours.
+        """
+        fit = self._fit()
+        if fit is None or not fit[0] > 0:
+            return None
+        k, c = fit[0], fit[1]
+        v = np.asarray(values, dtype=np.float64).ravel()
+        v = v[(v > self.floor) & (v < self.max_value)]
+        if v.size < 1000:
+            return None
+        lo = float(np.percentile(v, 0.1))
+        if np.all(v == np.round(v)):  # integer data: whole-DN bins starting half a DN low (no aliasing)
+            width, lo = max(1.0, float(round(k / 20.0))), math.floor(lo) - 0.5
+        else:
+            width = k / 20.0
+        sel = v[v < lo + 1.5 * k]
+        if sel.size < 500:
+            return None
+        n_bins = max(int(math.ceil((float(sel.max()) - lo) / width)), 1)
+        hist, edges = np.histogram(sel, bins=n_bins, range=(lo, lo + n_bins * width))
+        mode = 0.5 * (edges[int(np.argmax(hist))] + edges[int(np.argmax(hist)) + 1])
+
+        def refine(centre: float, spread: float):
+            for _ in range(3):  # the peak's centre and width from the values near it
+                near = v[np.abs(v - centre) <= 2.0 * spread]
+                if near.size < 100:
+                    return None
+                centre = float(np.median(near))
+                lower = near[near < centre] - centre
+                # values equal to the centre (integer data) count half to each side; E[x² | 0 < x < 2σ] of a
+                # Gaussian is 0.774 σ²
+                n_low = lower.size + 0.5 * int(np.count_nonzero(near == centre))
+                spread = max(math.sqrt(float(np.sum(lower * lower)) / max(n_low, 1.0) / 0.774), 0.3)
+            return centre, spread
+
+        found = refine(mode, k / 4.0)
+        if found is None or not found[1] < k / 4.0:
+            return None
+        # the tallest narrow peak may be the n-photon one (dim background of a photon or two): the line says
+        # which n, and the zero-photon peak must then be found n gains lower
+        n = round((found[0] - (found[1] ** 2 - c) / k) / k)
+        if n >= 1:
+            found = refine(found[0] - n * k, found[1])
+            if found is None or not found[1] < k / 4.0:
+                return None
+        centre, spread = found
+        if abs(spread * spread - k * centre - c) > k * k / 4.0:
+            return None
+        self.peak = (centre, spread)
+        return self.peak
+
+    def _break(self) -> str:
+        """A break in the line: the lower and upper halves of the points (by samples) have different slopes."""
+        n, x, y = self._points()
+        if n.size < 8:
+            return ""
+        half = np.searchsorted(np.cumsum(n), 0.5 * n.sum())
+        half = min(max(half, 4), n.size - 4)
+        fits = []
+        for sel in (slice(0, half), slice(half, None)):
+            nn, xx, yy = n[sel], x[sel], y[sel]
+            if np.ptp(xx) <= 0:
+                return ""
+            w = nn / np.maximum(yy, 1e-12) ** 2
+            for _ in range(2):
+                slope, icpt = _weighted_line(xx, yy, w)
+                w = nn / np.maximum(slope * xx + icpt, 1e-3 * max(float(np.max(yy)), 1e-12)) ** 2
+            # var(y mean of a bin) ~ 2 E[y]**2 / n (Gaussian variance samples): w / 2 are inverse variances
+            dx = xx - np.average(xx, weights=w)
+            fits.append((slope, math.sqrt(2.0 / float(np.dot(w, dx * dx)))))
+        (s1, e1), (s2, e2) = fits
+        ref = max(abs(s1), abs(s2), 1e-12)
+        if abs(s2 - s1) > _BREAK_FRAC * ref and abs(s2 - s1) > 4.0 * math.hypot(e1, e2):
+            return (f"break in the photon-transfer line: slope {s1:.3g} DN/photon in the lower half of the signal "
+                    f"range, {s2:.3g} in the upper (detector gain changed, or a non-linear detector?)")
+        return ""
 
     def result(self) -> PhotonTransferResult:
         """The current fit; NaN fields with a UserWarning when it is undefined (too few pairs, no light range)."""
         fit = self._fit()
+        dark = self.dark.result()
         read = math.nan if self.read_noise_dn is None else self.read_noise_dn
         if fit is None or not fit[0] > 0:
             warnings.warn("photon transfer undefined: too few frame pairs or no spread of signal levels yet",
                           UserWarning, stacklevel=2)
-            return PhotonTransferResult(math.nan, math.nan, read, 0 if fit is None else fit[3], math.nan)
+            return PhotonTransferResult(math.nan, math.nan, read, 0 if fit is None else fit[3], math.nan,
+                                        quality="too few frame pairs or no spread of signal levels")
         slope, intercept, r2, n_points = fit
-        read_var = 0.0 if self.read_noise_dn is None else self.read_noise_dn**2
-        dark = (read_var - intercept) / slope
-        return PhotonTransferResult(slope, float(dark), read, n_points, r2)
+        quality = ""
+        if not r2 >= _MIN_R2 and not self._chi2_dof <= _MAX_CHI2:
+            # a low r² alone may be a narrow range of levels; with points scattering beyond their noise it is a
+            # line that does not fit (two gains mixed, a non-linear detector, structure leaking into the samples)
+            quality = (f"poor photon-transfer fit (r² {r2:.2f}; the points scatter {math.sqrt(self._chi2_dof):.1f}× "
+                       "beyond their noise)")
+        else:
+            quality = self._break()
+        if not quality and not self._slope_se <= _MAX_GAIN_SE * slope:
+            quality = f"too few samples: gain uncertain by ±{100 * self._slope_se / slope:.0f} %"
+        bias = ""
+        if dark is None and self.peak is not None:
+            level, read = self.peak
+            origin = "zero-photon peak"
+        elif dark is not None:
+            # EMVA 1288: the dark level and dark noise are measured on dark images (release 4.0, section 6).
+            level, read = dark
+            origin = f"dark frames ({self.dark.n_frames})"
+        elif self.read_noise_dn is not None:
+            level, origin = (self.read_noise_dn**2 - intercept) / slope, "read noise given"
+        else:
+            level, origin = -intercept / slope, "intercept"
+            bias = (f"no dark frames and read noise unknown: the dark level is low by read noise² / gain "
+                    f"({100.0 / slope:.3g} DN for each 10 DN of read noise), photons per pixel high accordingly")
+        return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias)
+
+
+def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 8, ratio: float = 2.0) -> bool:
+    """Whether a frame shows no structure beyond its pixel noise (a closed shutter, no specimen).
+
+    Parameters
+    ----------
+    frame : (M, N) array_like
+        One frame.
+    noise_sigma : float
+        Its pixel noise σ in DN (e.g. :func:`qcmon.metrics.noise.immerkaer_sigma`).
+    bin_factor : int
+        Side of the blocks averaged before the variance is taken (default 8: cell-sized structure stays, the
+        noise variance falls 64-fold).
+    ratio : float
+        A frame is structureless when the variance of its ``bin_factor``-binned image is below ``ratio`` times
+        what noise alone gives (``σ² / bin_factor²``).
+
+    Notes
+    -----
+    Binning keeps structure (cells, vessels, the illumination's fall-off) and averages independent noise down by
+    the block's area, so the test does not need to know the gain. A uniformly lit field (a flat field) is
+    structureless too: whether structureless frames are *dark* is decided against the session's other frames
+    (see :class:`DarkFrames`). Common practice, no source.
+    """
+    a = as_image(frame, "frame", min_shape=(2, 2))
+    b = max(1, min(int(bin_factor), a.shape[0] // 2, a.shape[1] // 2))
+    h, w = (a.shape[0] // b) * b, (a.shape[1] // b) * b
+    binned = a[:h, :w].astype(np.float64).reshape(h // b, b, w // b, b).mean(axis=(1, 3))
+    s2 = float(noise_sigma) ** 2
+    if not math.isfinite(s2):
+        return False
+    return float(binned.var()) <= ratio * max(s2, 1.0 / 12.0) / (b * b)
+
+
+class DarkFrames:
+    """Dark level and read noise from the session's dark frames (closed shutter at its start or end).
+
+    The engine hands on frames that showed no structure (:func:`is_structureless`) with their mean; the frames are
+    counted as dark only if the session also holds lit frames (with structure) clearly above them. The read noise
+    is half the variance of the difference of two consecutive dark frames (EMVA 1288 release 4.0, section 6:
+    temporal dark noise from two dark images), which includes quantisation.
+    """
+
+    #: Dark frames used at most (their statistics are settled long before; a session of structureless frames
+    #: would otherwise pay a pass over every frame).
+    MAX_FRAMES = 64
+    #: Largest fraction of a dark frame's pixels at the detector's floor or ceiling: more, and its mean is biased.
+    MAX_CLIPPED = 0.001
+
+    def __init__(self) -> None:
+        self.n_frames = 0
+        self._sum_mean = 0.0
+        self._n_pairs = 0
+        self._sum_var = 0.0
+        self.lit_min_mean = math.inf
+        self.refused = ""
+
+    def add(self, frame: np.ndarray, previous_dark: np.ndarray | None, *, clipped_frac: float = 0.0) -> None:
+        """Add a structureless frame (and, when the frame before it was one too, their pair)."""
+        if self.n_frames >= self.MAX_FRAMES:  # enough for both figures; each frame costs a pass over its pixels
+            return
+        if clipped_frac > self.MAX_CLIPPED:
+            self.refused = f"dark frames with {100 * clipped_frac:.2g} % of their pixels clipped: not used"
+            return
+        a = np.asarray(frame, dtype=np.float64)
+        self.n_frames += 1
+        self._sum_mean += float(a.mean())
+        if previous_dark is not None and previous_dark.shape == a.shape:
+            d = a - np.asarray(previous_dark, dtype=np.float64)
+            self._n_pairs += 1
+            self._sum_var += 0.5 * float(d.var())
+
+    def add_lit(self, mean: float) -> None:
+        """A frame with structure (light): its mean."""
+        if math.isfinite(mean):
+            self.lit_min_mean = min(self.lit_min_mean, float(mean))
+
+    def result(self) -> tuple[float, float] | None:
+        """(dark level, read noise) in DN, or None when there are no usable dark frames."""
+        if self.n_frames < 2 or self._n_pairs < 1:
+            return None
+        level = self._sum_mean / self.n_frames
+        read = math.sqrt(self._sum_var / self._n_pairs)
+        # dark only if the lit frames sit clearly above: a flat, lit field is structureless too
+        if not (math.isfinite(self.lit_min_mean) and self.lit_min_mean > level + 3.0 * max(read, 0.5)):
+            return None
+        return level, read
 
 
 def _weighted_line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float]:
