@@ -293,16 +293,17 @@ def test_a_missing_frame_file_is_a_blank_with_its_reason(tmp_path):
 def test_advice_of_the_events_is_shown_when_the_record_has_it(session):
     # events.jsonl gains an "advice" field (what a warning likely means and what to check); the page shows it
     # when the record has it, and a record without it still gives a page
-    from types import SimpleNamespace
+    from dataclasses import replace
 
     prof, traces, events, facts, summary = session
-    with_advice = [SimpleNamespace(**{k: getattr(ev, k) for k in Event.__slots__}, advice="") for ev in events]
-    first_alarm = next(ev for ev in with_advice if ev.kind == "start" and ev.state == "alarm")
-    first_alarm.advice = "check the head fixation; take a new reference after it settles"
+    plain = [replace(ev, advice="") for ev in events]  # a record written before events had advice
+    i = next(i for i, ev in enumerate(plain) if ev.kind == "start" and ev.state == "alarm")
+    with_advice = list(plain)
+    with_advice[i] = replace(plain[i], advice="check the head fixation; take a new reference after it settles")
     body = _text(report_html(summary, traces, with_advice, prof, facts))
     assert "What to check" in body and "check the head fixation" in body
     assert body.count("check the head fixation") == 2  # in the list at the top and beside its event
-    assert "What to check" not in _text(report_html(summary, traces, events, prof, facts))
+    assert "What to check" not in _text(report_html(summary, traces, plain, prof, facts))
 
 
 def test_summarize_prints_the_verdict_line_first_and_the_report_shows_the_field(tmp_path):
