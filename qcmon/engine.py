@@ -178,6 +178,9 @@ class Engine:
         self._shared_motion: dict[tuple[int, int], tuple[float, float, float]] = {}
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
+        #: messages about frames that were measured but left partly blank (e.g. moved beyond the searched range);
+        #: the caller reports and clears them (:meth:`take_problems`)
+        self.problems: list[str] = []
 
     # ------------------------------------------------------------------ public
     @property
@@ -206,6 +209,11 @@ class Engine:
                 rows.extend(self._measure(self._streams[(fr.channel, fr.plane)], fr, None))
             del self._waiting[key]
         return rows
+
+    def take_problems(self) -> list[str]:
+        """The problems noted since the last call (and forget them)."""
+        out, self.problems = self.problems, []
+        return out
 
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
         """Take a new reference from the next frames (after the experimenter refocused)."""
@@ -293,8 +301,17 @@ class Engine:
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
             st.reference = build_reference(stack, upsample=s.upsample)
             max_shift = s.max_shift_px or min(st.reference.shape) / 4
+            read_noise = NAN
+            try:
+                res = st.ptc.result() if st.ptc is not None else None
+                if res is not None:
+                    read_noise = float(res.read_noise_dn)
+            except Exception:  # no photon transfer yet: the estimator falls back to its own floor
+                pass
+            # the likelihood refinement models photon counts: the detector's dark level, gain and read noise
             st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
-                                      max_shift_px=max_shift)
+                                      max_shift_px=max_shift, dark_level=st.dark_level, gain=st.gain,
+                                      read_noise_dn=read_noise, reference_frames=len(frames))
         # Two running means in block sums of gcd(running_mean_frames, z_every) frames (at every estimate each is
         # over exactly the last running_mean_frames frames): the frame binned as for the registration, for focus
         # and z, which need no finer sampling (their correlations bin further; the sharpness is of cell-sized
@@ -400,6 +417,11 @@ class Engine:
                     res = st.shift.estimate_binned(binned, mean=mean_binned)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img)
+            if motion is None and st.shift.out_of_range:
+                where = f"{frame.source} page {frame.page}: " if frame.source else ""
+                self.problems.append(
+                    f"{where}frame {frame.index} (channel {frame.channel}, plane {frame.plane}) moved beyond the "
+                    f"searched range of ±{st.shift.max_shift_px:g} px; its displacement is left blank")
             if motion is None:
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if s.motion_channel is not None:
