@@ -311,7 +311,8 @@ class Engine:
             # the likelihood refinement models photon counts: the detector's dark level, gain and read noise
             st.shift = ShiftEstimator(st.reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                       max_shift_px=max_shift, dark_level=st.dark_level, gain=st.gain,
-                                      read_noise_dn=read_noise, reference_frames=len(frames))
+                                      read_noise_dn=read_noise, reference_frames=len(frames),
+                                      reference_valid=_unsaturated(st.reference, st.max_value))
         # Two running means in block sums of gcd(running_mean_frames, z_every) frames (at every estimate each is
         # over exactly the last running_mean_frames frames): the frame binned as for the registration, for focus
         # and z, which need no finer sampling (their correlations bin further; the sharpness is of cell-sized
@@ -485,6 +486,15 @@ class Engine:
         self._shared_order.append(key)
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
+
+
+def _unsaturated(reference: np.ndarray, max_value: float) -> np.ndarray | None:
+    """Pixels of the reference below the detector's ceiling (a pixel saturated in its frames carries no shift
+    information), or None if all are."""
+    if not math.isfinite(max_value):
+        return None
+    ok = reference < np.float32(max_value) - 0.5
+    return None if ok.all() else ok
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

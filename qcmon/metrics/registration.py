@@ -86,6 +86,16 @@ class ShiftEstimator:
         surface (up to half the image size).
     workers : int, optional
         Threads for ``scipy.fft`` (default 1).
+    dark_level, gain, read_noise_dn : float, optional
+        The detector's offset (DN), conversion gain (DN per photon) and read noise (DN), e.g. from photon transfer;
+        NaN or None when unknown. The likelihood refinement models the frame's photon counts with them; without a
+        gain it estimates the reference's noise from its highest frequencies, without a dark level it takes 0
+        (then the likelihood tends to plain cross-correlation, the estimator for uniform Gaussian noise).
+    reference_frames : int, optional
+        How many frames the reference is the mean of (its noise is the frames' over this number).
+    reference_valid : (M, N) bool ndarray, optional
+        True where a reference pixel is usable; the others (e.g. saturated in the frames it was built from) are
+        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift.
 
     Notes
     -----
@@ -138,14 +148,27 @@ class ShiftEstimator:
     _BAND = 0.5  # fraction of the binned frequencies kept along each axis
     _TAPER = 0.35  # outer fraction of the band over which the cosine taper falls to zero
     _ALPHA = 0.25  # Tukey window parameter
+    # A peak beyond the range must be twice the best one inside and top it by this many standard deviations of the
+    # coarse surface (a weak frame's side lobe outside may top a weak true peak inside a little)
+    _OUT_OF_RANGE = 3.0
     _ML_FLOOR = 0.02  # least expected count of the likelihood model, as a fraction of the reference's mean
     _ML_STEPS = 4  # Newton steps of the maximum-likelihood refinement
     _ML_BAND = (0.5, 1.0)  # the likelihood's frequencies roll off between these fractions of the Nyquist frequency
 
     def __init__(self, reference, *, upsample: int = 20, bin_factor: int | None = None, window: bool = True,
                  max_shift_px: float | None = None, workers: int = 1, dark_level: float | None = None,
-                 gain: float | None = None, read_noise_dn: float | None = None, reference_frames: int | None = None):
+                 gain: float | None = None, read_noise_dn: float | None = None, reference_frames: int | None = None,
+                 reference_valid: np.ndarray | None = None):
         ref = as_image(reference, "reference", min_size=16)
+        if reference_valid is not None:
+            rv = np.asarray(reference_valid)
+            if rv.shape != ref.shape or rv.dtype != np.bool_:
+                raise ValueError(f"reference_valid must be a boolean mask of shape {ref.shape}, got {rv.dtype} "
+                                 f"{rv.shape}")
+            if not rv.any():
+                raise ValueError("reference_valid marks no pixel of the reference as usable")
+            if not rv.all():  # unusable pixels (e.g. saturated) become featureless: the mean of the usable ones
+                ref = np.where(rv, ref, np.float32(ref[rv].mean()))
         if isinstance(upsample, bool) or not isinstance(upsample, (int, np.integer)) or upsample < 1:
             raise ValueError(f"upsample must be a positive integer, got {upsample!r}")
         if bin_factor is None:
@@ -250,7 +273,13 @@ class ShiftEstimator:
         dark = float(dark_level) if dark_level is not None and math.isfinite(dark_level) else 0.0
         self._dark_b = b2 * dark
         rb = refb.astype(np.float64) - self._dark_b
-        rd, wiener = _wiener_denoise(rb, self._ml_rolloff())
+        noise = None
+        if gain is not None and math.isfinite(gain) and gain > 0 and reference_frames:
+            # the reference is the mean of reference_frames frames: its noise power per frequency (unnormalised
+            # transform) is the sum of its pixels' variances, gain * counts + read noise^2, over the frames
+            rn2 = read_noise_dn ** 2 if read_noise_dn is not None and math.isfinite(read_noise_dn) else 0.0
+            noise = (gain * float(np.clip(rb, 0.0, None).sum()) + rb.size * b2 * rn2) / float(reference_frames)
+        rd, wiener = _wiener_denoise(rb, self._ml_rolloff(), noise=noise)
         mean_sig = float(np.mean(np.clip(rd, 0.0, None)))
         floor = 0.0
         if gain is not None and read_noise_dn is not None and math.isfinite(gain) and gain > 0 \
@@ -259,7 +288,10 @@ class ShiftEstimator:
         floor = max(floor, self._ML_FLOOR * mean_sig, 1e-6 * max(abs(mean_sig), 1e-30))
         # a constant added to the model keeps the frame's expected counts and the model equal up to a constant
         # (which the likelihood's window correction absorbs); clipping negative ringing would not
-        lam = rd + (floor + max(0.0, -float(rd.min())))
+        # The same constant is added to the frame (as read noise is in the model of Huang et al. 2013, Nat. Methods
+        # 10:653): then the frame's expected counts and the model agree, and the reference registers to itself at 0.
+        self._ml_add = floor + max(0.0, -float(rd.min()))
+        lam = rd + self._ml_add
         w = self._win if self._win is not None else np.ones((mb, nb), np.float32)
         h = np.full((mb, nb // 2 + 1), 2.0)
         h[:, 0] = 1.0
@@ -302,7 +334,7 @@ class ShiftEstimator:
         two derivatives at any subpixel ``d`` are sums over the spectrum (no interpolation); the maximum is found
         to machine precision in 2-4 Newton steps. Returns None if Newton's method does not stay near the start.
         """
-        c1 = mean - self._dark_b
+        c1 = mean - self._dark_b + self._ml_add
         swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
         a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
         r = g_full * self._ml_conjl
@@ -493,11 +525,15 @@ class ShiftEstimator:
             rc = _crop(r, self._coarse[0], self._kcc) * self._coarse_taper
             surf = _fft.irfft2(rc, self._coarse, self.workers)
         if self._coarse_mask is not None:
-            if not np.isfinite(self._coarse_mask.flat[int(surf.argmax())]):
-                # the correlation peaks beyond the searched range: a shift there is not measured, and a peak
-                # inside the range would be a side lobe (or a wrapped-around one)
-                self.out_of_range = True
-                return _NAN_RESULT
+            top = int(surf.argmax())
+            if not np.isfinite(self._coarse_mask.flat[top]):
+                inside = float((surf + self._coarse_mask).max())
+                outside = float(surf.flat[top])
+                if outside > 2.0 * inside and outside - inside > self._OUT_OF_RANGE * float(surf.std()):
+                    # the correlation peaks clearly beyond the searched range: a shift there is not measured, and
+                    # the best peak inside the range would be a side lobe (or a wrapped-around one)
+                    self.out_of_range = True
+                    return _NAN_RESULT
             surf += self._coarse_mask
         i, j = divmod(int(surf.argmax()), surf.shape[1])
         cy, cx = float(self._coarse_r[i]), float(self._coarse_c[j])
@@ -610,12 +646,14 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
     return np.ascontiguousarray(ref, dtype=np.float32)
 
 
-def _wiener_denoise(image: np.ndarray, band: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+def _wiener_denoise(image: np.ndarray, band: np.ndarray | None = None, *,
+                    noise: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """``image`` with its white noise removed by a Wiener filter estimated from the image itself, and the filter
     (over the half spectrum of ``scipy.fft.rfft2``).
 
-    The noise power per frequency is the mean of ``|F|^2`` over the outer quarter of frequencies along both axes
-    (where a microscope image holds little signal); the signal power is ``|F|^2`` smoothed over 5 x 5
+    The noise power per frequency is ``noise`` if given (white noise: the sum of the pixels' variances), else the
+    mean of ``|F|^2`` over the outer quarter of frequencies along both axes (where a microscope image holds little
+    signal); the signal power is ``|F|^2`` smoothed over 5 x 5
     neighbouring frequencies, less the noise; the filter is ``S / (S + N)`` (Wiener 1949).
     """
     from scipy import ndimage
@@ -626,7 +664,8 @@ def _wiener_denoise(image: np.ndarray, band: np.ndarray | None = None) -> tuple[
     p = np.abs(spec) ** 2
     r0 = math.ceil(0.375 * m)
     c0 = min(math.ceil(0.375 * n), p.shape[1] - 1)
-    noise = float(np.mean(p[r0:max(r0 + 1, m - r0 + 1), c0:]))
+    if noise is None:
+        noise = float(np.mean(p[r0:max(r0 + 1, m - r0 + 1), c0:]))
     smooth = ndimage.uniform_filter(p, 5, mode=("wrap", "nearest"))
     sig = np.clip(smooth - noise, 0.0, None)
     filt = sig / np.maximum(sig + noise, 1e-300)

@@ -15,29 +15,26 @@ from qcmon.metrics._imageops import as_image
 __all__ = ["shift_crb", "spectral_gradient"]
 
 
-def spectral_gradient(image: np.ndarray, *, pad: int = 32) -> tuple[np.ndarray, np.ndarray]:
+def spectral_gradient(image: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Row and column derivatives of ``image`` (per pixel) by the Fourier derivative theorem.
 
-    The image is mirrored at its edges (``numpy.pad``, ``symmetric``) by ``pad`` px before the transform, so its
-    non-periodic edges do not ring; the Nyquist frequency, whose derivative is not defined for a real signal, is
-    dropped. Finite differences act as a low-pass filter (the central difference's response is ``sin(w)/w``)
-    and understate the derivative of fine detail.
+    The transform is of the image's even (mirror) extension to twice its size, which is continuous across every
+    period boundary, so the image's non-periodic edges do not ring (a slope through an edge leaves a kink there:
+    within a few px of it the derivative is a few per cent off); the Nyquist frequency, whose derivative is not
+    defined for a real signal, is dropped. Finite differences act as a low-pass filter (the central difference's
+    response is ``sin(w)/w``) and understate the derivative of fine detail.
     """
     img = np.asarray(image, dtype=np.float64)
     m, n = img.shape
-    pm = sfft.next_fast_len(m + 2 * pad, real=True)
-    pn = sfft.next_fast_len(n + 2 * pad, real=True)
-    top, left = (pm - m) // 2, (pn - n) // 2
-    big = np.pad(img, ((top, pm - m - top), (left, pn - n - left)), mode="symmetric")
+    big = np.pad(img, ((0, m), (0, n)), mode="symmetric")
+    pm, pn = big.shape
     spec = sfft.rfft2(big)
     ky = 2j * np.pi * sfft.fftfreq(pm)
     kx = 2j * np.pi * sfft.rfftfreq(pn)
-    if pm % 2 == 0:
-        ky[pm // 2] = 0.0
-    if pn % 2 == 0:
-        kx[-1] = 0.0
-    gy = sfft.irfft2(spec * ky[:, None], s=(pm, pn))[top:top + m, left:left + n]
-    gx = sfft.irfft2(spec * kx[None, :], s=(pm, pn))[top:top + m, left:left + n]
+    ky[pm // 2] = 0.0  # pm, pn are even
+    kx[-1] = 0.0
+    gy = sfft.irfft2(spec * ky[:, None], s=(pm, pn))[:m, :n]
+    gx = sfft.irfft2(spec * kx[None, :], s=(pm, pn))[:m, :n]
     return gy, gx
 
 
@@ -82,7 +79,9 @@ def shift_crb(image, photons_per_px: float, *, background_photons: float = 0.0,
     lam = img * (photons_per_px / mean)
     gy, gx = spectral_gradient(lam)
     var = lam + background_photons + read_noise_photons ** 2
-    w = 1.0 / np.maximum(var, 1e-12 * photons_per_px)
+    # pixels expecting under 1e-9 of the brightest one's count contribute nothing measurable (their derivative is
+    # below the transform's rounding error, whose square divided by a vanishing count would dominate)
+    w = 1.0 / np.maximum(var, 1e-9 * float(var.max()))
     fisher = np.array([[np.sum(gy * gy * w), np.sum(gy * gx * w)],
                        [np.sum(gx * gy * w), np.sum(gx * gx * w)]])
     det = fisher[0, 0] * fisher[1, 1] - fisher[0, 1] ** 2
