@@ -152,7 +152,7 @@ class ShiftEstimator:
     # coarse surface (a weak frame's side lobe outside may top a weak true peak inside a little)
     _OUT_OF_RANGE = 3.0
     _ML_FLOOR = 0.02  # least expected count of the likelihood model, as a fraction of the reference's mean
-    _ML_STEPS = 4  # Newton steps of the maximum-likelihood refinement
+    _ML_STEPS = 2  # Newton steps of the maximum-likelihood refinement (from within 0.1 binned px: quadratic)
     _ML_BAND = (0.5, 1.0)  # the likelihood's frequencies roll off between these fractions of the Nyquist frequency
 
     def __init__(self, reference, *, upsample: int = 20, bin_factor: int | None = None, window: bool = True,
@@ -305,8 +305,17 @@ class ShiftEstimator:
         lamf = sfft.rfft2(lam)
         hl = h * wiener * np.conj(lf)
         self._ml_conjl = hl.astype(np.complex64)
-        self._ml_p1 = (wf * hl).astype(np.complex64)
-        self._ml_p2 = (h * wf * np.conj(lamf)).astype(np.complex64)
+        # The window's terms (c1 W conj(L) and a W conj(Lam), see _ml_refine) matter only where the window's
+        # spectrum does: a small block of the lowest frequencies (|W| above 1e-5 of its peak), added there only.
+        big = np.abs(wf) > 1e-5 * abs(wf[0, 0])
+        ky = np.abs(_signed_freqs(mb, mb))
+        kr = int(ky[big.any(axis=1)].max())
+        kc = int(np.nonzero(big.any(axis=0))[0].max()) + 1
+        self._ml_blocks = [(slice(0, kr + 1), slice(0, kc))]
+        if kr > 0:
+            self._ml_blocks.append((slice(mb - kr, mb), slice(0, kc)))
+        self._ml_p1 = [(wf * hl)[blk].astype(np.complex64) for blk in self._ml_blocks]
+        self._ml_p2 = [(h * wf * np.conj(lamf))[blk].astype(np.complex64) for blk in self._ml_blocks]
         self._ml_sum_w = float(w.sum(dtype=np.float64))
         self._ml_sum_wlam = float(np.sum(w * lam))
         taper = self._ALPHA / 2 if self._win is not None else 0.0
@@ -338,8 +347,9 @@ class ShiftEstimator:
         swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
         a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
         r = g_full * self._ml_conjl
-        r += np.complex64(c1) * self._ml_p1
-        r -= np.complex64(a) * self._ml_p2
+        c1_, a_ = np.complex64(c1), np.complex64(a)
+        for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
+            r[blk] += c1_ * p1 - a_ * p2
         uy, ux = self._ml_uy, self._ml_ux
         y, x = cy, cx
         for _ in range(self._ML_STEPS):
@@ -538,7 +548,14 @@ class ShiftEstimator:
         i, j = divmod(int(surf.argmax()), surf.shape[1])
         cy, cx = float(self._coarse_r[i]), float(self._coarse_c[j])
         ramp_r, ramp_c = self._ramp_r[i], self._ramp_c[j]
-        for offs_y, offs_x, er0, ec0 in self._stages:
+        # The likelihood refinement holds the circularly moved reference against the apodised frame: beyond half
+        # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
+        # larger shifts keep the phase-correlation estimate. Newton's method needs no grid finer than the
+        # second-last stage's (steps of 1/3 binned px at 512 px), so the last stage runs only if it is not used.
+        use_ml = (self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
+                  and abs(cx) <= self._ml_reach[1] + self._coarse_step[1])
+        stages = self._stages[:-1] if use_ml and len(self._stages) > 1 else self._stages
+        for offs_y, offs_x, er0, ec0 in stages:
             # grid matrices moved to the current peak; the row of the chosen point is the next stage's ramp
             er = er0 * ramp_r
             ec = ec0 * ramp_c[:, None]
@@ -547,14 +564,19 @@ class ShiftEstimator:
             cy += float(offs_y[a])
             cx += float(offs_x[b])
             ramp_r, ramp_c = er[a], ec[:, b]
-        # The likelihood refinement holds the circularly moved reference against the apodised frame: beyond half
-        # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
-        # larger shifts keep the phase-correlation estimate.
         ml = None
-        if abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
+        if use_ml and abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
             ml = self._ml_refine(g_full, mean, cy, cx)
         if ml is not None:
             cy, cx = ml
+        elif len(stages) < len(self._stages):  # no refinement after all: the last grid stage
+            offs_y, offs_x, er0, ec0 = self._stages[-1]
+            er = er0 * ramp_r
+            ec = ec0 * ramp_c[:, None]
+            vals = er @ (r @ ec)
+            a, b = divmod(int(vals.real.argmax()), vals.shape[1])
+            cy += float(offs_y[a])
+            cx += float(offs_x[b])
         lim_r, lim_c = self._lim
         if abs(cy) > lim_r or abs(cx) > lim_c:
             self.out_of_range = True
