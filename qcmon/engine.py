@@ -200,6 +200,9 @@ class Engine:
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
         self._events: list[Event] = []
+        #: messages about frames that were measured but left partly blank (e.g. moved beyond the searched range);
+        #: the caller reports and clears them (:meth:`take_problems`)
+        self.problems: list[str] = []
 
     # ------------------------------------------------------------------ public
     @property
@@ -261,9 +264,15 @@ class Engine:
             return 1.0
         rate = self.settings.frame_rate_hz
         return rate / UNTIMED_FRAMES_PER_S if rate else NAN
+
     def take_events(self) -> list[Event]:
         """Events the engine raised since the last call (a detector level found or withdrawn), oldest first."""
         out, self._events = self._events, []
+        return out
+
+    def take_problems(self) -> list[str]:
+        """The problems noted since the last call (and forget them)."""
+        out, self.problems = self.problems, []
         return out
 
     def new_reference(self, channel: int | None = None, plane: int | None = None) -> None:
@@ -547,8 +556,20 @@ class Engine:
             try:
                 reference = self._clean_reference(st, build_reference(stack, upsample=s.upsample), stack)
                 max_shift = s.max_shift_px or min(reference.shape) / 4
+                read_noise = NAN
+                try:
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore", UserWarning)
+                        res = st.ptc.result() if st.ptc is not None else None
+                    if res is not None:
+                        read_noise = float(res.read_noise_dn)
+                except Exception:  # no photon transfer yet: the estimator falls back to its own floor
+                    pass
+                # the likelihood refinement models photon counts: the detector's dark level, gain and read noise
                 shift = ShiftEstimator(reference, upsample=s.upsample, bin_factor=s.bin_factor,
-                                       max_shift_px=max_shift)
+                                       max_shift_px=max_shift, dark_level=st.dark_level, gain=st.gain,
+                                       read_noise_dn=read_noise, reference_frames=len(use),
+                                       reference_valid=_unsaturated(reference, st.max_value))
             except ValueError:  # nothing to register to (e.g. frames too small for the registration)
                 if first:
                     return [r for fr in frames for r in self._measure_early(st, fr)]
@@ -745,6 +766,11 @@ class Engine:
                     res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img, valid=valid)
+            if structured and motion is None and st.shift.out_of_range:
+                where = f"{frame.source} page {frame.page}: " if frame.source else ""
+                self.problems.append(
+                    f"{where}frame {frame.index} (channel {frame.channel}, plane {frame.plane}) moved beyond the "
+                    f"searched range of ±{st.shift.max_shift_px:g} px; its displacement is left blank")
             if not structured:
                 dy, dx, corr = res
             elif motion is None:
@@ -858,6 +884,15 @@ def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool
     sums = bin_image(binned, more) if more > 1 and min(binned.shape) >= 2 * more else binned
     side = factor * (more if sums is not binned else 1)
     return float(np.var(sums, dtype=np.float64)) <= 2.0 * max(sigma * sigma, 1.0 / 12.0) * (side * side)
+
+
+def _unsaturated(reference: np.ndarray, max_value: float) -> np.ndarray | None:
+    """Pixels of the reference below the detector's ceiling (a pixel saturated in its frames carries no shift
+    information), or None if all are."""
+    if not math.isfinite(max_value):
+        return None
+    ok = reference < np.float32(max_value) - 0.5
+    return None if ok.all() else ok
 
 
 def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:

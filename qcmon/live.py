@@ -301,6 +301,8 @@ class Monitor:
                     break
             if run.engine is not None:
                 self._deliver(run, run.engine.flush(), record, listeners)
+                for msg in run.engine.take_problems():
+                    self._problem_to(record, listeners)(QcmonError(msg))
             if run.split is not None and run.split.launched and not self._stop.is_set():
                 self._collect_split(run, source, record, listeners)
             self._handle_commands(run, record, listeners)
@@ -385,6 +387,8 @@ class Monitor:
                 except FrameError as err:
                     self._problem_to(record, listeners)(err)
                     continue
+                for msg in run.engine.take_problems():
+                    self._problem_to(record, listeners)(QcmonError(msg))
                 rows.extend(new)
                 if sp is not None and not sp.decided:
                     sp.note_rows(new)

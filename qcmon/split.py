@@ -130,6 +130,7 @@ def measure_chunk(job: ChunkJob) -> dict:
         frames.close()
         if job.stop is None:
             rows.extend(engine.flush())
+        problems.extend(engine.take_problems())  # the warm-up's are the previous chunk's too: reported once
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
     events = [e for e in engine.take_events() if e.frame >= job.first and (job.stop is None or e.frame < job.stop)]
     return {"rows": keep, "problems": problems, "events": events}

@@ -130,7 +130,9 @@ def test_corr_is_pearson_of_aligned_images():
     est = ShiftEstimator(ref, window=False)
     same = est.estimate(ref)
     assert_allclose(same.corr, 1.0, atol=1e-4)
-    assert_allclose((same.dy_px, same.dx_px), (0, 0), atol=1e-6)
+    # The likelihood refinement's model is the reference filtered (Wiener, band roll-off) with single-precision
+    # spectra: registering an image to itself gives zero within a small fraction of a pixel (measured 0.0005).
+    assert_allclose((same.dy_px, same.dx_px), (0, 0), atol=2e-3)
     # Gain and offset do not change a Pearson correlation.
     assert_allclose(est.estimate(3.0 * ref + 50).corr, 1.0, atol=1e-4)
     # Independent noise: compare with numpy's corrcoef on the same (unshifted) pair.
@@ -146,8 +148,14 @@ def test_max_shift_limits_search():
     ref = shifted_crop(field, 0, 0, (128, 128))
     frame = shifted_crop(field, 15.0, -15.0, (128, 128))
     assert_allclose(ShiftEstimator(ref).estimate(frame)[:2], (15.0, -15.0), atol=0.05)
-    r = ShiftEstimator(ref, max_shift_px=5).estimate(frame)
-    assert abs(r.dy_px) <= 5 and abs(r.dx_px) <= 5
+    # Beyond the searched range the shift is not measured: NaN and flagged, never a value clamped or wrapped
+    # into the range (issue 14, item 3).
+    est = ShiftEstimator(ref, max_shift_px=5)
+    r = est.estimate(frame)
+    assert math.isnan(r.dy_px) and math.isnan(r.dx_px) and est.out_of_range
+    near = shifted_crop(field, 3.0, -2.5, (128, 128))
+    assert_allclose(est.estimate(near)[:2], (3.0, -2.5), atol=0.05)
+    assert not est.out_of_range
 
 
 def test_build_reference_is_sharper_than_mean_and_centred():

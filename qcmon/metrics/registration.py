@@ -86,6 +86,16 @@ class ShiftEstimator:
         surface (up to half the image size).
     workers : int, optional
         Threads for ``scipy.fft`` (default 1).
+    dark_level, gain, read_noise_dn : float, optional
+        The detector's offset (DN), conversion gain (DN per photon) and read noise (DN), e.g. from photon transfer;
+        NaN or None when unknown. The likelihood refinement models the frame's photon counts with them; without a
+        gain it estimates the reference's noise from its highest frequencies, without a dark level it takes 0
+        (then the likelihood tends to plain cross-correlation, the estimator for uniform Gaussian noise).
+    reference_frames : int, optional
+        How many frames the reference is the mean of (its noise is the frames' over this number).
+    reference_valid : (M, N) bool ndarray, optional
+        True where a reference pixel is usable; the others (e.g. saturated in the frames it was built from) are
+        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift.
 
     Notes
     -----
@@ -138,10 +148,27 @@ class ShiftEstimator:
     _BAND = 0.5  # fraction of the binned frequencies kept along each axis
     _TAPER = 0.35  # outer fraction of the band over which the cosine taper falls to zero
     _ALPHA = 0.25  # Tukey window parameter
+    # A peak beyond the range must be twice the best one inside and top it by this many standard deviations of the
+    # coarse surface (a weak frame's side lobe outside may top a weak true peak inside a little)
+    _OUT_OF_RANGE = 3.0
+    _ML_FLOOR = 0.02  # least expected count of the likelihood model, as a fraction of the reference's mean
+    _ML_STEPS = 2  # Newton steps of the maximum-likelihood refinement (from within 0.1 binned px: quadratic)
+    _ML_BAND = (0.5, 1.0)  # the likelihood's frequencies roll off between these fractions of the Nyquist frequency
 
     def __init__(self, reference, *, upsample: int = 20, bin_factor: int | None = None, window: bool = True,
-                 max_shift_px: float | None = None, workers: int = 1):
+                 max_shift_px: float | None = None, workers: int = 1, dark_level: float | None = None,
+                 gain: float | None = None, read_noise_dn: float | None = None, reference_frames: int | None = None,
+                 reference_valid: np.ndarray | None = None):
         ref = as_image(reference, "reference", min_size=16)
+        if reference_valid is not None:
+            rv = np.asarray(reference_valid)
+            if rv.shape != ref.shape or rv.dtype != np.bool_:
+                raise ValueError(f"reference_valid must be a boolean mask of shape {ref.shape}, got {rv.dtype} "
+                                 f"{rv.shape}")
+            if not rv.any():
+                raise ValueError("reference_valid marks no pixel of the reference as usable")
+            if not rv.all():  # unusable pixels (e.g. saturated) become featureless: the mean of the usable ones
+                ref = np.where(rv, ref, np.float32(ref[rv].mean()))
         if isinstance(upsample, bool) or not isinstance(upsample, (int, np.integer)) or upsample < 1:
             raise ValueError(f"upsample must be a positive integer, got {upsample!r}")
         if bin_factor is None:
@@ -234,6 +261,119 @@ class ShiftEstimator:
         # look-up instead of complex exponentials per frame. Later stages reuse the rows of the grid matrices.
         self._ramp_r = np.exp((1j * _TWO_PI / mb) * np.outer(self._coarse_r, self._kr)).astype(np.complex64)
         self._ramp_c = np.exp((1j * _TWO_PI / nb) * np.outer(self._coarse_c, self._kc)).astype(np.complex64)
+        #: True when the last frame's correlation peak lay beyond ``max_shift_px`` (its shift is then NaN)
+        self.out_of_range = False
+        self._ml_setup(refb, dark_level, gain, read_noise_dn, reference_frames)
+
+    # ------------------------------------------------------------------ maximum likelihood
+    def _ml_setup(self, refb: np.ndarray, dark_level, gain, read_noise_dn, reference_frames) -> None:
+        """Precompute the Poisson log-likelihood surface's reference factors (see :meth:`_ml_refine`)."""
+        mb, nb = self._bshape
+        b2 = float(self.bin_factor ** 2)
+        dark = float(dark_level) if dark_level is not None and math.isfinite(dark_level) else 0.0
+        self._dark_b = b2 * dark
+        rb = refb.astype(np.float64) - self._dark_b
+        noise = None
+        if gain is not None and math.isfinite(gain) and gain > 0 and reference_frames:
+            # the reference is the mean of reference_frames frames: its noise power per frequency (unnormalised
+            # transform) is the sum of its pixels' variances, gain * counts + read noise^2, over the frames
+            rn2 = read_noise_dn ** 2 if read_noise_dn is not None and math.isfinite(read_noise_dn) else 0.0
+            noise = (gain * float(np.clip(rb, 0.0, None).sum()) + rb.size * b2 * rn2) / float(reference_frames)
+        rd, wiener = _wiener_denoise(rb, self._ml_rolloff(), noise=noise)
+        mean_sig = float(np.mean(np.clip(rd, 0.0, None)))
+        floor = 0.0
+        if gain is not None and read_noise_dn is not None and math.isfinite(gain) and gain > 0 \
+                and math.isfinite(read_noise_dn):
+            floor = b2 * read_noise_dn ** 2 / gain  # read noise as extra Poisson counts (DN above dark)
+        floor = max(floor, self._ML_FLOOR * mean_sig, 1e-6 * max(abs(mean_sig), 1e-30))
+        # a constant added to the model keeps the frame's expected counts and the model equal up to a constant
+        # (which the likelihood's window correction absorbs); clipping negative ringing would not
+        # The same constant is added to the frame (as read noise is in the model of Huang et al. 2013, Nat. Methods
+        # 10:653): then the frame's expected counts and the model agree, and the reference registers to itself at 0.
+        self._ml_add = floor + max(0.0, -float(rd.min()))
+        lam = rd + self._ml_add
+        w = self._win if self._win is not None else np.ones((mb, nb), np.float32)
+        h = np.full((mb, nb // 2 + 1), 2.0)
+        h[:, 0] = 1.0
+        if nb % 2 == 0:
+            h[:, -1] = 1.0
+        h[0, 0] = 0.0
+        # The frame is filtered as the reference was (Wiener, roll-off), so that the frame's expected counts and
+        # the model differ by a constant only: registering the reference to itself gives zero.
+        lf = sfft.rfft2(np.log(lam))
+        wf = sfft.rfft2(w.astype(np.float64))
+        lamf = sfft.rfft2(lam)
+        hl = h * wiener * np.conj(lf)
+        self._ml_conjl = hl.astype(np.complex64)
+        # The window's terms (c1 W conj(L) and a W conj(Lam), see _ml_refine) matter only where the window's
+        # spectrum does: a small block of the lowest frequencies (|W| above 1e-5 of its peak), added there only.
+        big = np.abs(wf) > 1e-5 * abs(wf[0, 0])
+        ky = np.abs(_signed_freqs(mb, mb))
+        kr = int(ky[big.any(axis=1)].max())
+        kc = int(np.nonzero(big.any(axis=0))[0].max()) + 1
+        self._ml_blocks = [(slice(0, kr + 1), slice(0, kc))]
+        if kr > 0:
+            self._ml_blocks.append((slice(mb - kr, mb), slice(0, kc)))
+        self._ml_p1 = [(wf * hl)[blk].astype(np.complex64) for blk in self._ml_blocks]
+        self._ml_p2 = [(h * wf * np.conj(lamf))[blk].astype(np.complex64) for blk in self._ml_blocks]
+        self._ml_sum_w = float(w.sum(dtype=np.float64))
+        self._ml_sum_wlam = float(np.sum(w * lam))
+        taper = self._ALPHA / 2 if self._win is not None else 0.0
+        self._ml_reach = (max(0.5 * taper * mb, 1.0), max(0.5 * taper * nb, 1.0))  # binned px
+        self._ml_uy = (_TWO_PI / mb) * _signed_freqs(mb, mb)
+        self._ml_ux = (_TWO_PI / nb) * np.arange(nb // 2 + 1, dtype=np.float64)
+
+    def _ml_rolloff(self) -> np.ndarray:
+        """Radial cosine roll-off of the highest binned frequencies (between the fractions ``_ML_BAND`` of the
+        Nyquist frequency), over the half spectrum."""
+        mb, nb = self._bshape
+        fy = np.abs(_signed_freqs(mb, mb)) / (mb / 2)
+        fx = np.arange(nb // 2 + 1) / (nb / 2)
+        rad = np.hypot(fy[:, None], fx[None, :])
+        lo, hi = self._ML_BAND
+        return 0.5 * (1 + np.cos(np.pi * np.clip((rad - lo) / max(hi - lo, 1e-9), 0.0, 1.0)))
+
+    def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float) -> tuple[float, float] | None:
+        """Maximise the Poisson log-likelihood of the frame over the shift by Newton's method, from (cy, cx).
+
+        The frame's expected counts are the reference moved by ``d`` and scaled by the frame's brightness ``a``:
+        ``lambda(x) = a * lam_ref(x - d)``; the log-likelihood of the apodised frame is, up to terms free of ``d``,
+        ``J(d) = sum_x w(x) [g(x) log lam_ref(x - d) - a lam_ref(x - d)]`` — the correlation of the frame (less its
+        dark level) with the logarithm of the reference, less a correction for the window. Its value and first
+        two derivatives at any subpixel ``d`` are sums over the spectrum (no interpolation); the maximum is found
+        to machine precision in 2-4 Newton steps. Returns None if Newton's method does not stay near the start.
+        """
+        c1 = mean - self._dark_b + self._ml_add
+        swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
+        a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
+        r = g_full * self._ml_conjl
+        c1_, a_ = np.complex64(c1), np.complex64(a)
+        for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
+            r[blk] += c1_ * p1 - a_ * p2
+        uy, ux = self._ml_uy, self._ml_ux
+        y, x = cy, cx
+        for _ in range(self._ML_STEPS):
+            ec = np.exp(1j * ux * x)
+            cols = np.stack([ec, ux * ec, ux * ux * ec], axis=1).astype(np.complex64)
+            v = r @ cols
+            er = np.exp(1j * uy * y)
+            s0 = er @ v  # sum over rows of (V0, V1, V2)
+            s1 = (er * uy) @ v[:, :2]
+            s2 = (er * uy * uy) @ v[:, 0]
+            gy, gx = -s1[0].imag, -s0[1].imag
+            hyy, hxy, hxx = -s2.real, -s1[1].real, -s0[2].real
+            det = hyy * hxx - hxy * hxy
+            if not (hyy < 0 and det > 0):
+                return None
+            dy = -(hxx * gy - hxy * gx) / det
+            dx = -(hyy * gx - hxy * gy) / det
+            y += dy
+            x += dx
+            if abs(y - cy) > 1.0 or abs(x - cx) > 1.0:
+                return None
+            if abs(dy) < 1e-4 and abs(dx) < 1e-4:
+                break
+        return y, x
 
     # ------------------------------------------------------------------ helpers
     def _taper(self, frac: np.ndarray) -> np.ndarray:
@@ -311,8 +451,9 @@ class ShiftEstimator:
             Image of the reference's shape, any real integer or floating dtype. Non-finite pixels are replaced by
             the mean of the finite ones.
         valid : (M, N) bool ndarray, optional
-            True where a pixel may be used; False pixels (saturated or clipped) get zero weight (see
-            :meth:`_valid_weight`). None: every pixel is usable.
+            True where a pixel is usable; False (e.g. saturated or clipped at the detector's floor) carries no
+            weight: every binned pixel that holds one is left out of the coarse search and of the likelihood.
+            None: every pixel is usable.
 
         Returns
         -------
@@ -320,13 +461,27 @@ class ShiftEstimator:
             ``(dy_px, dx_px, corr)`` in original pixels; all NaN (with a UserWarning) when the frame is constant
             (its apodised variance below 1e-12 of its squared mean) or has no finite pixel.
         """
+        self.out_of_range = False
         arr = as_image(frame, "frame", shape=self.shape, min_size=16)
         gb = bin_image(arr, self.bin_factor)
         if np.issubdtype(arr.dtype, np.floating) and not np.isfinite(gb).all():
             gb = finite_float32(gb, "frame", stacklevel=3)
             if gb is None:
                 return _NAN_RESULT
-        return self._estimate_binned(gb, stacklevel=3, weight=self._valid_weight(valid))
+        return self._estimate_binned(gb, stacklevel=3, vmask=self._binned_valid(valid))
+
+    def _binned_valid(self, valid) -> np.ndarray | None:
+        """1 where every pixel of a bin is valid, else 0 (float32, binned shape); None if all are."""
+        if valid is None:
+            return None
+        v = np.asarray(valid)
+        if v.shape != self.shape or v.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {self.shape}, got {v.dtype} {v.shape}")
+        if v.all():
+            return None
+        b = self.bin_factor
+        vb = bin_image(v.view(np.uint8), b) if b > 1 else v.astype(np.float32)
+        return (vb >= b * b - 0.5).astype(np.float32)
 
     def estimate_binned(self, binned: np.ndarray, *, mean: float | None = None,
                         valid: np.ndarray | None = None) -> ShiftResult:
@@ -338,57 +493,33 @@ class ShiftEstimator:
         binned : (M // bin_factor, N // bin_factor) float32 ndarray
             ``bin_image(frame, bin_factor)`` of a finite frame (not modified).
         mean : float, optional
-            Mean of ``binned``, if the caller has computed it already (ignored with ``valid``).
+            Mean of ``binned``, if the caller has computed it already.
         valid : (M, N) bool ndarray, optional
-            At full resolution: True where a pixel may be used (the estimator bins it itself). None: all usable.
+            Full-resolution mask of usable pixels, as for :meth:`estimate`.
         """
+        self.out_of_range = False
         if binned.shape != self._bshape or binned.dtype != np.float32:
             raise ValueError(f"binned must be a float32 image of shape {self._bshape}, got {binned.dtype} "
                              f"{binned.shape}")
-        return self._estimate_binned(binned, stacklevel=3, mean=mean, weight=self._valid_weight(valid))
-
-    def _valid_weight(self, valid) -> np.ndarray | None:
-        """Weights of the binned pixels from a full-resolution ``valid`` mask; None when every pixel is valid.
-
-        A binned pixel with any unusable pixel in it gets weight 0; the weight of the usable ones next to them
-        rises over one binned pixel (``w0 · box3(w0)²``, ``w0`` the 0/1 weights, ``box3`` the 3 × 3 mean), so that
-        the edge of an unusable region — a stationary saturated patch — is soft and carries no shift of its own.
-        """
-        if valid is None:
-            return None
-        v = np.asarray(valid)
-        if v.shape != self.shape or v.dtype != np.bool_:
-            raise ValueError(f"valid must be a boolean mask of shape {self.shape}, got {v.dtype} {v.shape}")
-        b = self.bin_factor
-        counts = bin_image(v.view(np.uint8), b)
-        w0 = (counts >= b * b).astype(np.float32)
-        if w0.all():
-            return None
-        pad = np.pad(w0, 1, mode="edge")
-        box = np.zeros_like(w0)
-        for i in range(3):
-            for j in range(3):
-                box += pad[i:i + w0.shape[0], j:j + w0.shape[1]]
-        box *= np.float32(1.0 / 9.0)
-        return w0 * box * box
+        return self._estimate_binned(binned, stacklevel=3, mean=mean, vmask=self._binned_valid(valid))
 
     def _estimate_binned(self, gb: np.ndarray, *, stacklevel: int, mean: float | None = None,
-                         weight: np.ndarray | None = None) -> ShiftResult:
-        if weight is not None:
-            total_w = float(weight.sum(dtype=np.float64))
-            if total_w < 0.05 * weight.size:
+                         vmask: np.ndarray | None = None) -> ShiftResult:
+        self.out_of_range = False
+        if vmask is not None:
+            n_valid = float(vmask.sum())
+            if n_valid < 0.05 * vmask.size:
                 warnings.warn("fewer than 5 % of the frame's pixels are usable; shift is NaN", UserWarning,
                               stacklevel=stacklevel)
                 return _NAN_RESULT
-            mean = float(np.dot(gb.ravel().astype(np.float64), weight.ravel())) / total_w
-            gb = np.subtract(gb, np.float32(mean))
-            gb *= weight
-            mean = 0.0
-        if mean is None:
+            mean = float(np.dot(gb.ravel(), vmask.ravel())) / n_valid  # mean of the usable bins
+        elif mean is None:
             mean = float(np.add.reduce(gb, axis=None)) / gb.size  # float32 pairwise summation: rel. error ~1e-7
         gb = np.subtract(gb, np.float32(mean))  # a new array: the caller's binned frame is not modified
         if self._win is not None:
             gb *= self._win
+        if vmask is not None:
+            gb *= vmask
         gw = gb.ravel()
         g_full = _fft.rfft2(gb, self.workers)
         gsum = float(g_full[0, 0].real)  # the sum of the apodised frame
@@ -404,11 +535,27 @@ class ShiftEstimator:
             rc = _crop(r, self._coarse[0], self._kcc) * self._coarse_taper
             surf = _fft.irfft2(rc, self._coarse, self.workers)
         if self._coarse_mask is not None:
+            top = int(surf.argmax())
+            if not np.isfinite(self._coarse_mask.flat[top]):
+                inside = float((surf + self._coarse_mask).max())
+                outside = float(surf.flat[top])
+                if outside > 2.0 * inside and outside - inside > self._OUT_OF_RANGE * float(surf.std()):
+                    # the correlation peaks clearly beyond the searched range: a shift there is not measured, and
+                    # the best peak inside the range would be a side lobe (or a wrapped-around one)
+                    self.out_of_range = True
+                    return _NAN_RESULT
             surf += self._coarse_mask
         i, j = divmod(int(surf.argmax()), surf.shape[1])
         cy, cx = float(self._coarse_r[i]), float(self._coarse_c[j])
         ramp_r, ramp_c = self._ramp_r[i], self._ramp_c[j]
-        for offs_y, offs_x, er0, ec0 in self._stages:
+        # The likelihood refinement holds the circularly moved reference against the apodised frame: beyond half
+        # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
+        # larger shifts keep the phase-correlation estimate. Newton's method needs no grid finer than the
+        # second-last stage's (steps of 1/3 binned px at 512 px), so the last stage runs only if it is not used.
+        use_ml = (self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
+                  and abs(cx) <= self._ml_reach[1] + self._coarse_step[1])
+        stages = self._stages[:-1] if use_ml and len(self._stages) > 1 else self._stages
+        for offs_y, offs_x, er0, ec0 in stages:
             # grid matrices moved to the current peak; the row of the chosen point is the next stage's ramp
             er = er0 * ramp_r
             ec = ec0 * ramp_c[:, None]
@@ -417,12 +564,26 @@ class ShiftEstimator:
             cy += float(offs_y[a])
             cx += float(offs_x[b])
             ramp_r, ramp_c = er[a], ec[:, b]
+        ml = None
+        if use_ml and abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
+            ml = self._ml_refine(g_full, mean, cy, cx)
+        if ml is not None:
+            cy, cx = ml
+        elif len(stages) < len(self._stages):  # no refinement after all: the last grid stage
+            offs_y, offs_x, er0, ec0 = self._stages[-1]
+            er = er0 * ramp_r
+            ec = ec0 * ramp_c[:, None]
+            vals = er @ (r @ ec)
+            a, b = divmod(int(vals.real.argmax()), vals.shape[1])
+            cy += float(offs_y[a])
+            cx += float(offs_x[b])
         lim_r, lim_c = self._lim
-        cy = min(max(cy, -lim_r), lim_r)
-        cx = min(max(cx, -lim_c), lim_c)
+        if abs(cy) > lim_r or abs(cx) > lim_c:
+            self.out_of_range = True
+            return _NAN_RESULT
         corr = self._pearson(g_full, gnorm2, cy, cx)
         b = self.bin_factor
-        return ShiftResult(cy * b, cx * b, corr)
+        return ShiftResult(float(cy * b), float(cx * b), corr)
 
     def _pearson(self, g_full: np.ndarray, gnorm2: float, sy: float, sx: float) -> float:
         mb, nb = self._bshape
@@ -491,6 +652,7 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
             shifts = np.array([est.estimate(f)[:2] for f in data], dtype=np.float64)
         shifts = np.where(np.isfinite(shifts), shifts, np.nanmedian(shifts, axis=0))
         shifts -= np.median(shifts, axis=0)
+        shifts = np.round(shifts * upsample) / upsample  # the alignment's stated precision, 1/upsample px
         if last:
             _fourier_unshift(data, shifts, aligned)
         else:
@@ -504,6 +666,38 @@ def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: fl
         else:
             ref = aligned.mean(axis=0)
     return np.ascontiguousarray(ref, dtype=np.float32)
+
+
+def _wiener_denoise(image: np.ndarray, band: np.ndarray | None = None, *,
+                    noise: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """``image`` with its white noise removed by a Wiener filter estimated from the image itself, and the filter
+    (over the half spectrum of ``scipy.fft.rfft2``).
+
+    The noise power per frequency is ``noise`` if given (white noise: the sum of the pixels' variances), else the
+    mean of ``|F|^2`` over the outer quarter of frequencies along both axes (where a microscope image holds little
+    signal); the signal power is ``|F|^2`` smoothed over 5 x 5
+    neighbouring frequencies, less the noise; the filter is ``S / (S + N)`` (Wiener 1949).
+    """
+    from scipy import ndimage
+
+    m, n = image.shape
+    mu = float(image.mean())
+    spec = sfft.rfft2(image - mu)
+    p = np.abs(spec) ** 2
+    r0 = math.ceil(0.375 * m)
+    c0 = min(math.ceil(0.375 * n), p.shape[1] - 1)
+    if noise is None:
+        noise = float(np.mean(p[r0:max(r0 + 1, m - r0 + 1), c0:]))
+    smooth = ndimage.uniform_filter(p, 5, mode=("wrap", "nearest"))
+    sig = np.clip(smooth - noise, 0.0, None)
+    filt = sig / np.maximum(sig + noise, 1e-300)
+    # the columns that hold both k and -k (0, and n/2 for even n) must weigh them alike, as irfft2 assumes
+    mirror = (-np.arange(m)) % m
+    for col in ((0, n // 2) if n % 2 == 0 else (0,)):
+        filt[:, col] = 0.5 * (filt[:, col] + filt[mirror, col])
+    if band is not None:  # a band limit of the caller's, applied with the filter
+        filt *= band
+    return sfft.irfft2(spec * filt, s=(m, n)) + mu, filt
 
 
 def _fourier_unshift(data: np.ndarray, shifts: np.ndarray, out: np.ndarray) -> None:

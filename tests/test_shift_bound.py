@@ -1,0 +1,152 @@
+"""The Cramér–Rao bound of a rigid shift (qcmon.metrics.shift_bound) and the registration held against it on
+outside data (a real fluorescence image, tests/outside_data.py), plus the engine's handling of shifts beyond range."""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import ndimage, stats
+from skimage.registration import phase_cross_correlation
+
+from outside_data import detect, nuclei_2d, specimen_crop
+from qcmon.engine import Engine, EngineSettings
+from qcmon.frames import Frame
+from qcmon.metrics.registration import ShiftEstimator
+from qcmon.metrics.shift_bound import shift_crb, spectral_gradient
+
+
+def _gaussian_spot(shape, centre, sigma):
+    """A Gaussian spot integrated over each pixel (exact, from the normal CDF)."""
+    def axis(n, c):
+        x = np.arange(n)
+        return stats.norm.cdf(x + 0.5, c, sigma) - stats.norm.cdf(x - 0.5, c, sigma)
+    return np.outer(axis(shape[0], centre[0]), axis(shape[1], centre[1]))
+
+
+@pytest.mark.parametrize("sigma, photons", [(2.0, 500.0), (2.5, 3000.0)])
+def test_bound_of_a_gaussian_spot(sigma, photons):
+    # Published value: a Gaussian spot of width s on pixels of size a with N photons and no background has a
+    # localisation bound of sqrt((s^2 + a^2/12) / N) per axis (Mortensen, Churchman, Spudich & Flyvbjerg 2010,
+    # Nat. Methods 7:377, the background-free limit of their eq. 6; Thompson, Larson & Webb 2002 without
+    # pixelation). The pixel term is itself an approximation there, good for spots sampled at s >= 2 px (at 1.5 px
+    # the spectral derivative of the pixel-integrated spot aliases): we hold ours within 2 %.
+    img = _gaussian_spot((64, 64), (31.7, 32.2), sigma)
+    sy, sx = shift_crb(img, photons / img.size)
+    expected = math.sqrt((sigma ** 2 + 1 / 12) / photons)
+    assert_allclose((sy, sx), (expected, expected), rtol=0.02)
+
+
+def test_bound_scales_with_photons_and_background():
+    img = nuclei_2d()[100:228, 100:228].astype(np.float64) + 1.0
+    a = shift_crb(img, 1.0)
+    b = shift_crb(img, 4.0)
+    # Poisson information grows in proportion to the photon count: the bound falls as 1/sqrt (exact)
+    assert_allclose(np.array(b) * 2.0, a, rtol=1e-9)
+    # a uniform background adds noise and no information: the bound rises
+    assert shift_crb(img, 1.0, background_photons=1.0)[0] > a[0]
+
+
+def test_spectral_gradient_against_analytic_derivative():
+    # A smooth blob inside the frame whose derivative is known in closed form (calculus).
+    y, x = np.mgrid[0:96, 0:80].astype(np.float64)
+    f = np.exp(-((x - 37.3) ** 2 + (y - 50.1) ** 2) / (2 * 5.0 ** 2))
+    gy, gx = spectral_gradient(f)
+    assert_allclose(gx, -(x - 37.3) / 25.0 * f, atol=1e-6)
+    assert_allclose(gy, -(y - 50.1) / 25.0 * f, atol=1e-6)
+    # Finite differences (numpy.gradient) understate the derivative of fine detail: on a pattern of period 3 px
+    # the central difference's response is sin(w)/w = 0.41 of the true derivative (standard result).
+    fine = np.sin(2 * np.pi * x / 3.0)
+    gfy, gfx = spectral_gradient(fine)
+    true_amp = 2 * np.pi / 3.0
+    inner = (slice(8, -8), slice(8, -8))
+    assert np.max(np.abs(gfx[inner])) == pytest.approx(true_amp, rel=0.05)
+    assert np.max(np.abs(np.gradient(fine, axis=1)[inner])) < 0.5 * true_amp
+
+
+def _fourier_crop(image, shape, dy, dx):
+    """Central window of ``image`` with its content moved by (dy, dx) by the Fourier shift theorem (band-limited;
+    the window's edges are not periodic)."""
+    moved = np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(image), (dy, dx))).real
+    t, le = (image.shape[0] - shape[0]) // 2, (image.shape[1] - shape[1]) // 2
+    return np.clip(moved[t:t + shape[0], le:le + shape[1]], 0, None)
+
+
+def test_estimator_against_the_bound_on_a_real_specimen():
+    # Outside data: the real nuclei image (stardist wheel) moved by known subpixel shifts (specimen_crop: cubic
+    # spline, real edges), EMVA 1288 detector (Poisson x gain 20 + offset 100), 1.5 photons/px; the reference is
+    # the mean of 30 such frames, as the engine builds it. Measured at 480 px: 5-6x the bound with a 30-frame
+    # reference (the reference's own noise dominates; 2x with a noise-free one); scikit-image 8-10x.
+    rng = np.random.default_rng(5)
+    img = nuclei_2d().astype(np.float64) + 1.0
+    shape = (256, 256)
+    photons, gain, dark = 1.5, 20.0, 100.0
+    scale = photons / img.mean()
+    clean = specimen_crop(img, shape, 0.0, 0.0) * scale
+    reference = np.mean([detect(clean, rng, gain=gain, offset=dark) for _ in range(30)], axis=0)
+    est = ShiftEstimator(reference, dark_level=dark, gain=gain, read_noise_dn=0.0, reference_frames=30)
+    ours, theirs = [], []
+    for _ in range(16):
+        d = rng.uniform(-6, 6, 2)
+        frame = detect(specimen_crop(img, shape, *d) * scale, rng, gain=gain, offset=dark)
+        r = est.estimate(frame)
+        ours.append((r.dy_px - d[0], r.dx_px - d[1]))
+        s, _, _ = phase_cross_correlation(reference, frame.astype(np.float64), upsample_factor=100)
+        theirs.append((-s[0] - d[0], -s[1] - d[1]))
+    bound = np.array(shift_crb(clean, photons))
+    rms = np.sqrt(np.mean(np.square(ours), axis=0))
+    rms_sk = np.sqrt(np.mean(np.square(theirs), axis=0))
+    print("RMS / bound:", rms / bound, "scikit-image:", rms_sk / bound)
+    assert np.all(rms < 8.0 * bound), (rms, bound)
+    assert np.mean(rms) < 0.8 * np.mean(rms_sk)
+
+
+def test_saturated_stationary_patch_does_not_capture_the_shift():
+    # A bright patch fixed on the detector (e.g. a reflection), saturated in every frame, over a real specimen that
+    # moves: with the patch's pixels marked unusable the shift is the specimen's, not zero.
+    rng = np.random.default_rng(9)
+    img = nuclei_2d().astype(np.float64) + 1.0
+    shape = (192, 192)
+    scale = 3.0 / img.mean()
+    patch = (slice(60, 110), slice(70, 130))
+
+    def frame_at(d):
+        f = detect(specimen_crop(img, shape, *d) * scale, rng, gain=20.0, offset=100.0, bits=12)
+        f[patch] = 4095
+        return f
+
+    reference = np.mean([frame_at((0.0, 0.0)) for _ in range(20)], axis=0)
+    valid = np.ones(shape, bool)
+    valid[patch] = False
+    est = ShiftEstimator(reference, dark_level=100.0, reference_valid=valid)
+    d = (2.6, -3.3)
+    frame = frame_at(d)
+    r = est.estimate(frame, valid=valid)
+    # Measured: 0.3-0.4 px short of the planted shift (the edges of the masked region still pull toward zero;
+    # a known limit, see docs/accuracy.md); without the masks the patch holds the estimate tens of px off.
+    assert_allclose((r.dy_px, r.dx_px), d, atol=0.5)
+    bad = ShiftEstimator(reference, dark_level=100.0).estimate(frame)
+    assert max(abs(bad.dy_px - d[0]), abs(bad.dx_px - d[1])) > 1.0
+
+
+def test_engine_reports_a_shift_beyond_range_as_blank_and_problem():
+    rng = np.random.default_rng(2)
+    img = nuclei_2d().astype(np.float64) + 1.0
+    shape = (128, 128)
+    scale = 5.0 / img.mean()
+    eng = Engine(EngineSettings(frame_rate_hz=30.0, max_shift_px=16.0))
+    rows = []
+    shifts = [(0.0, 0.0)] * 32 + [(40.0, -45.0), (1.0, 0.5)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        for i, d in enumerate(shifts):
+            data = detect(specimen_crop(img, shape, *d) * scale, rng, gain=20.0, offset=100.0)
+            rows += eng.process(Frame(data=data, index=i, time_s=i / 30.0, source="run.tif", page=i))
+    problems = eng.take_problems()
+    assert len(problems) == 1 and "frame 32" in problems[0] and "run.tif page 32" in problems[0]
+    assert math.isnan(rows[32]["dx_px"]) and math.isnan(rows[32]["dy_px"])
+    assert_allclose((rows[33]["dy_px"], rows[33]["dx_px"]), (1.0, 0.5), atol=0.2)
+    assert eng.take_problems() == []
