@@ -29,7 +29,7 @@ from qcmon.errors import FrameError
 from qcmon.events import Event
 from qcmon.frames import UNTIMED_FRAMES_PER_S, Frame
 from qcmon.metrics.brightness import BrightnessTracker
-from qcmon.metrics._imageops import auto_bin, bin_image
+from qcmon.metrics._imageops import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
@@ -221,6 +221,7 @@ class Engine:
             # The reference waits for frames with structure (a closed shutter, a flat or saturated field has none):
             # frames without structure ahead of the first one with structure are measured without motion (or
             # against the old reference). The last frame is always held: it shows structure if the next shares it.
+            self._observe_range(st, frame)  # the detector's limits first: a mostly clipped frame has no structure
             structured = self._structured(st, frame)
             if structured and st.pending and not st.pending_flags[-1]:
                 st.pending_flags[-1] = True  # the previous frame shares this one's structure
@@ -417,28 +418,21 @@ class Engine:
             return False
         return float(np.dot(prev, st.prev_cells)) > 5.0 / math.sqrt(cells.size)
 
-    def _clean_reference(self, st: _Stream, reference: np.ndarray, stack: np.ndarray) -> np.ndarray:
-        """The reference with its clipped parts given zero weight, as every frame's are in the registration.
-
-        A pixel clipped in at least half of the reference's frames (and its neighbours: 1 px) is unusable; the
-        reference is drawn to its mean there, over a soft edge as wide as a registration bin, so that a frame
-        whose clipped pixels are left out (a hole at its mean) meets a reference with the same hole rather than a
-        bright blob — moving saturated cells then still register by their surroundings.
-        """
+    def _reference_valid(self, st: _Stream, reference: np.ndarray, stack: np.ndarray) -> np.ndarray | None:
+        """Pixels of the reference usable for the registration, or None if all are: not clipped in half of the
+        reference's frames or more, nor at the detector's ceiling in the reference itself. The estimator makes the
+        rest featureless, as every frame's clipped pixels get zero weight (moving saturated cells then still
+        register by their surroundings, a stationary bright patch does not capture the shift)."""
         hi, lo = st.range.ceiling.value, st.range.floor.value
         bad = (stack >= hi).mean(axis=0) >= 0.5
         if st.range.clip_floor:
             bad |= (stack <= lo).mean(axis=0) >= 0.5
+        unsat = _unsaturated(reference, st.max_value)
+        if unsat is not None:
+            bad |= ~unsat
         if not bad.any() or bad.mean() > 0.95:
-            return reference
-        from scipy import ndimage
-
-        b = auto_bin(reference.shape) if self.settings.bin_factor is None else self.settings.bin_factor
-        good = ~ndimage.binary_dilation(bad)
-        weight = ndimage.uniform_filter(good.astype(np.float32), size=2 * b + 1) * good
-        weight *= weight
-        m = float(reference[good].mean())
-        return (m + (reference - m) * weight).astype(np.float32)
+            return None
+        return ~bad
 
     def _measure_early(self, st: _Stream, frame: Frame) -> list[dict]:
         """The row of a frame without structure before any reference exists: no motion, focus or z."""
@@ -514,15 +508,10 @@ class Engine:
         st.ptc = PhotonTransfer(max_value=st.max_value, floor=st.range.floor.value, pair_step=1)
         # frames without structure (closed shutter) give the dark level and read noise; pairs of a dark and a lit
         # frame are no photon-transfer sample
-        dark: list[bool] = []
-        for i, f in enumerate(frames):
-            prev = frames[i - 1].data if i and dark[i - 1] else None
-            dark.append(self._sort_dark(st, f.data, prev))
-            st.pending_dark[f.index] = dark[-1]
+        dark = self._sort_frames(st, frames)
         for i in range(1, len(frames)):
             if dark[i] == dark[i - 1]:
                 st.ptc.update(stack[i], stack[i - 1])
-        st.classified_upto = frames[-1].index
         st.ptc.pair_step = s.photon_transfer_every
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
@@ -542,6 +531,13 @@ class Engine:
         elif first:  # frames without structure came first: the dark level again, now from frames with structure
             for fr in frames:
                 self._observe_range(st, fr)
+            # the lit frames tell dark frames from a flat, lit field; their pairs all count, as at a first start
+            dark = self._sort_frames(st, frames)
+            st.ptc.pair_step = 1
+            for i in range(1, len(frames)):
+                if dark[i] == dark[i - 1]:
+                    st.ptc.update(frames[i].data, frames[i - 1].data)
+            st.ptc.pair_step = s.photon_transfer_every
             if s.dark_level is None:
                 self._set_dark_level(st, np.stack([f.data for f in frames]).astype(np.float32, copy=False))
         use = [f for f, ok in zip(frames, flags) if ok]
@@ -554,7 +550,7 @@ class Engine:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
             try:
-                reference = self._clean_reference(st, build_reference(stack, upsample=s.upsample), stack)
+                reference = build_reference(stack, upsample=s.upsample)
                 max_shift = s.max_shift_px or min(reference.shape) / 4
                 read_noise = NAN
                 try:
@@ -569,7 +565,7 @@ class Engine:
                 shift = ShiftEstimator(reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                        max_shift_px=max_shift, dark_level=st.dark_level, gain=st.gain,
                                        read_noise_dn=read_noise, reference_frames=len(use),
-                                       reference_valid=_unsaturated(reference, st.max_value))
+                                       reference_valid=self._reference_valid(st, reference, stack))
             except ValueError:  # nothing to register to (e.g. frames too small for the registration)
                 if first:
                     return [r for fr in frames for r in self._measure_early(st, fr)]
@@ -658,6 +654,19 @@ class Engine:
             st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer (read noise unknown)"
             return
         st.dark_level, st.dark_origin = float(estimate_dark_level(stack[0])), "low percentile"
+
+    def _sort_frames(self, st: _Stream, frames: list[Frame]) -> list[bool]:
+        """Sort held-back frames into dark (no structure) and lit before they are measured; their flags wait in
+        ``st.pending_dark`` for :meth:`_measure`. Returns the flags."""
+        dark: list[bool] = []
+        prev_dark = st.prev_dark if st.prev is not None else False
+        prev = st.prev if prev_dark else None
+        for f in frames:
+            dark.append(self._sort_dark(st, f.data, prev))
+            st.pending_dark[f.index] = dark[-1]
+            prev = f.data if dark[-1] else None
+        st.classified_upto = max(st.classified_upto, frames[-1].index)
+        return dark
 
     def _sort_dark(self, st: _Stream, data: np.ndarray, prev: np.ndarray | None, sigma: float = NAN) -> bool:
         """Whether a frame shows no structure (closed shutter); hands it to the dark-frame statistics or its mean to

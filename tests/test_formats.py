@@ -266,7 +266,7 @@ def test_nwb_schema_says_frame_x_y():
     assert data["dims"] == [["frame", "x", "y"], ["frame", "x", "y", "z"]]
 
 
-def test_nwb_series_get_the_numbers_of_the_tiff(frames, reference, tmp_path):
+def test_nwb_series_get_the_numbers_of_the_tiff(frames, reference, tmp_path, capsys):
     path = tmp_path / "s.nwb"
     _nwb(path, {"TwoPhotonSeries": frames, "TwoPhotonSeriesDim": frames // 2})
     before = _digest(path)
@@ -275,10 +275,13 @@ def test_nwb_series_get_the_numbers_of_the_tiff(frames, reference, tmp_path):
     facts = source.facts
     assert facts.get("frame_rate_hz") == RATE_HZ and facts.get("pixel_size_um") == pytest.approx(PIXEL_UM)
     assert facts.get("indicator") == "GCaMP" and facts.get("imaging_plane") == "plane0"
-    # several series and no choice: a clear message naming the file and the series
-    assert main(["summarize", str(path), "--out", str(tmp_path / "x")]) == 0
-    events = (tmp_path / "x" / "events.jsonl").read_text(encoding="utf-8")
-    assert "holds 2 image series" in events and "--dataset" in events and str(path) in events
+    # several series and no choice: nothing measurable, an input error (exit 2) whose message names the file and
+    # the series, and no record started
+    capsys.readouterr()
+    assert main(["summarize", str(path), "--out", str(tmp_path / "x")]) == 2
+    err = capsys.readouterr().err
+    assert "holds 2 image series" in err and "--dataset" in err and str(path) in err, err
+    assert not (tmp_path / "x").exists()
     _same_numbers(_summarize(path, tmp_path / "s.qcmon", "--dataset", "TwoPhotonSeries"), reference)
     assert _digest(path) == before
 

@@ -167,8 +167,6 @@ class ShiftEstimator:
                                  f"{rv.shape}")
             if not rv.any():
                 raise ValueError("reference_valid marks no pixel of the reference as usable")
-            if not rv.all():  # unusable pixels (e.g. saturated) become featureless: the mean of the usable ones
-                ref = np.where(rv, ref, np.float32(ref[rv].mean()))
         if isinstance(upsample, bool) or not isinstance(upsample, (int, np.integer)) or upsample < 1:
             raise ValueError(f"upsample must be a positive integer, got {upsample!r}")
         if bin_factor is None:
@@ -177,6 +175,8 @@ class ShiftEstimator:
             raise ValueError(f"bin_factor must be a positive integer or None, got {bin_factor!r}")
         if min(ref.shape) // int(bin_factor) < 16:
             raise ValueError(f"bin_factor={bin_factor} leaves fewer than 16 px of the {ref.shape} reference")
+        if reference_valid is not None and not rv.all():
+            ref = _featureless(ref, rv, int(bin_factor))
         if max_shift_px is not None and not (max_shift_px > 0):
             raise ValueError(f"max_shift_px must be positive or None, got {max_shift_px!r}")
         self.shape: tuple[int, int] = ref.shape
@@ -471,7 +471,14 @@ class ShiftEstimator:
         return self._estimate_binned(gb, stacklevel=3, vmask=self._binned_valid(valid))
 
     def _binned_valid(self, valid) -> np.ndarray | None:
-        """1 where every pixel of a bin is valid, else 0 (float32, binned shape); None if all are."""
+        """Weights of the binned pixels from a full-resolution ``valid`` mask (float32, binned shape); None when
+        every pixel is valid.
+
+        A binned pixel with any unusable pixel in it gets weight 0; the weight of the usable ones next to them
+        rises over one binned pixel (``w0 · box3(w0)²``, ``w0`` the 0/1 weights, ``box3`` the 3 × 3 mean), so that
+        the edge of an unusable region — a stationary saturated patch — is soft and carries no shift of its own
+        (a hard edge correlates with itself and pulls the shift toward zero).
+        """
         if valid is None:
             return None
         v = np.asarray(valid)
@@ -481,7 +488,14 @@ class ShiftEstimator:
             return None
         b = self.bin_factor
         vb = bin_image(v.view(np.uint8), b) if b > 1 else v.astype(np.float32)
-        return (vb >= b * b - 0.5).astype(np.float32)
+        w0 = (vb >= b * b - 0.5).astype(np.float32)
+        pad = np.pad(w0, 1, mode="edge")
+        box = np.zeros_like(w0)
+        for i in range(3):
+            for j in range(3):
+                box += pad[i:i + w0.shape[0], j:j + w0.shape[1]]
+        box *= np.float32(1.0 / 9.0)
+        return w0 * box * box
 
     def estimate_binned(self, binned: np.ndarray, *, mean: float | None = None,
                         valid: np.ndarray | None = None) -> ShiftResult:
@@ -552,7 +566,10 @@ class ShiftEstimator:
         # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
         # larger shifts keep the phase-correlation estimate. Newton's method needs no grid finer than the
         # second-last stage's (steps of 1/3 binned px at 512 px), so the last stage runs only if it is not used.
-        use_ml = (self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
+        # Frames with unusable (clipped) pixels keep the weighted phase-correlation estimate: the likelihood's
+        # window would have to follow each frame's mask (its precomputed spectra assume the whole window), and
+        # without that the masked region biases it (0.19 px toward the patch, tests/test_range.py).
+        use_ml = (vmask is None and self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
                   and abs(cx) <= self._ml_reach[1] + self._coarse_step[1])
         stages = self._stages[:-1] if use_ml and len(self._stages) > 1 else self._stages
         for offs_y, offs_x, er0, ec0 in stages:
@@ -592,6 +609,21 @@ class ShiftEstimator:
         g_full *= self._hconjf_full  # g_full is not used after this
         cross = float((er @ g_full @ ec).real) / (mb * nb)
         return cross / (math.sqrt(gnorm2) * self._ref_norm)
+
+
+def _featureless(ref: np.ndarray, valid: np.ndarray, bin_factor: int) -> np.ndarray:
+    """``ref`` drawn to the mean of its usable pixels where ``valid`` is False (and 1 px around), over a soft edge
+    as wide as a registration bin, so that a frame whose unusable pixels get zero weight meets a reference with
+    the same featureless hole rather than a bright blob or a hard edge (either pulls the shift toward zero)."""
+    from scipy import ndimage
+
+    good = ~ndimage.binary_dilation(~valid)
+    if not good.any():
+        good = valid
+    weight = ndimage.uniform_filter(good.astype(np.float32), size=2 * bin_factor + 1) * good
+    weight *= weight
+    m = np.float32(ref[good].mean())
+    return (m + (ref.astype(np.float32) - m) * weight).astype(np.float32)
 
 
 def build_reference(frames, *, iterations: int = 3, upsample: int = 10, trim: float = 0.1,
