@@ -47,8 +47,9 @@ from qcmon.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
-def step_event(row: dict) -> Event:
-    """The event of a sudden, sustained step of the above-dark brightness found at ``row``."""
+def step_event(row: dict, caution: str = "") -> Event:
+    """The event of a sudden, sustained step of the above-dark brightness found at ``row``, with advice (and the
+    profile's ``caution``, as the advice touches gain and excitation power)."""
     t, factor = float(row["time_s"]), float(row["level_step"])
     where = f" (channel {row['channel']}, plane {row['plane']})"
     minutes, seconds = divmod(max(t, 0.0), 60.0)
@@ -57,7 +58,11 @@ def step_event(row: dict) -> Event:
                  plane=int(row["plane"]),
                  message=(f"brightness ×{factor:.3g} at {int(minutes)}:{seconds:04.1f}: detector gain or laser power "
                           f"changed? Baseline, bleach slope and photon transfer start again from here{where}"),
-                 )
+                 advice=(f"brightness ×{factor:.3g} within seconds — if the detector gain or the excitation power was "
+                         "changed on purpose, add a note (n) saying so; if not, check the light source and the "
+                         "detector: brightness, bleaching and photon numbers before and after this point are not "
+                         "comparable. (see caution: qcmon never changes the microscope; follow your local rules)"),
+                 caution=caution)
 
 
 @dataclass(slots=True)
@@ -493,7 +498,7 @@ class Monitor:
                 self._emit(ev, record, listeners)
             step = row.get("level_step", math.nan)
             if isinstance(step, float) and math.isfinite(step):
-                self._emit(step_event(row), record, listeners)
+                self._emit(step_event(row, self.profile.caution), record, listeners)
         for lst in listeners:
             lst.on_rows(rows)
         run.last_row = rows[-1]

@@ -227,8 +227,11 @@ def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
     assert 10.0 <= steps[0]["time_s"] <= 13.5
     after = [r for r in rows if r["time_s"] > steps[0]["time_s"]]
     assert math.isnan(after[0]["photons_per_px"])
-    event = step_event(steps[0])
+    event = step_event(steps[0], "follow your local rules")
     assert event.kind == "step" and "brightness ×" in event.message and "gain or laser power" in event.message
+    # what to check, and the caution beside it (the advice touches gain and excitation power)
+    assert "add a note" in event.advice and "see caution" in event.advice
+    assert event.caution == "follow your local rules"
     summary = summarize_traces(rows_to_traces(rows), [event], profile=load_profile("default"))
     assert summary["brightness"]["verdict"] in ("warning", "fail") and len(summary["brightness"]["steps"]) == 1
     assert any("brightness ×" in n for n in summary["notes"])
