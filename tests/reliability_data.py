@@ -7,6 +7,7 @@ import os
 import shutil
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -92,3 +93,22 @@ def as_unprivileged() -> list[str]:
 def unprivileged_env(home: os.PathLike) -> dict[str, str]:
     """Environment for :func:`as_unprivileged` commands: a home and a matplotlib folder that user may write."""
     return dict(os.environ, HOME=str(home), MPLCONFIGDIR=str(Path(home) / ".mpl"))
+
+
+def recorded_rows(out_dir: str | os.PathLike) -> int:
+    """Rows in a record's traces.csv so far (0 before it exists)."""
+    try:
+        with open(Path(out_dir) / "traces.csv", "rb") as fh:
+            return max(0, fh.read().count(b"\n") - 1)
+    except FileNotFoundError:
+        return 0
+
+
+def wait_until(cond, timeout: float, step: float = 0.05) -> bool:
+    """Poll ``cond`` until it is true or ``timeout`` seconds passed; its last value."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if cond():
+            return True
+        time.sleep(step)
+    return cond()

@@ -22,28 +22,20 @@ import tifffile
 from qcmon.live import Monitor, MonitorOptions
 from qcmon.record import LOCK_FILE, read_traces
 from qcmon.simulate import scenario_config, write_session
-from reliability_data import good_pages, qcmon_cmd, run_qcmon, snapshot
+from reliability_data import good_pages, qcmon_cmd, run_qcmon, snapshot, wait_until
+from reliability_data import recorded_rows as _rows
 
 N_FRAMES = 300  # 10 s at 30 Hz
+
+
+def _wait(cond, timeout: float) -> bool:
+    return wait_until(cond, timeout, step=0.1)
+
+
 FLOAT_COLUMNS = ("time_s", "dx_px", "dy_px", "displacement_px", "reg_corr", "focus_corr", "focus_measure",
                  "mean_f", "baseline_f", "saturated_frac", "noise_sigma", "snr", "line_offset_px")
 
 
-def _rows(out_dir: Path) -> int:
-    try:
-        with open(out_dir / "traces.csv", "rb") as fh:
-            return max(0, fh.read().count(b"\n") - 1)
-    except FileNotFoundError:
-        return 0
-
-
-def _wait(cond, timeout: float, step: float = 0.1) -> bool:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if cond():
-            return True
-        time.sleep(step)
-    return cond()
 
 
 def test_kill_9_mid_watch_then_restart_measures_every_frame_once_as_summarize_does(tmp_path):

@@ -26,25 +26,12 @@ import tifffile
 
 from qcmon.record import read_events, read_traces
 from reliability_data import as_unprivileged, good_pages, problem_events, qcmon_cmd, run_qcmon, unprivileged_env
+from reliability_data import recorded_rows as _rows
+from reliability_data import wait_until as _wait
 
 RATE = "30"  # frames per second given on the command line (the files carry none)
 
 
-def _rows(out: Path) -> int:
-    try:
-        with open(out / "traces.csv", "rb") as fh:
-            return max(0, fh.read().count(b"\n") - 1)
-    except FileNotFoundError:
-        return 0
-
-
-def _wait(cond, timeout: float, step: float = 0.05) -> bool:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if cond():
-            return True
-        time.sleep(step)
-    return cond()
 
 
 def _saturating_pages(n: int, periods) -> np.ndarray:
