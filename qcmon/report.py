@@ -15,7 +15,7 @@ import numpy as np
 
 from qcmon.events import SYMBOLS, Event
 from qcmon.frames import RATE_UNKNOWN
-from qcmon.summary import GROUP_LABELS, GROUPS, _periods, _streams, session_clock, verdict_parts
+from qcmon.summary import GROUP_LABELS, GROUPS, _periods, _streams, readable_number, session_clock, verdict_parts
 from qcmon.thresholds import Profile
 
 __all__ = ["envelope", "write_report", "report_html", "worst_moment", "PanelDrawing", "PlotWorkers"]
@@ -269,12 +269,7 @@ def _fmt(v) -> str:
         return f"{int(v):,}"
     if isinstance(v, (float, np.floating)):
         v = float(v)
-        if not math.isfinite(v):
-            return "—"
-        if v == 0:
-            return "0"
-        decimals = min(4, max(0, 2 - math.floor(math.log10(abs(v)))))
-        return f"{v:,.{decimals}f}"
+        return readable_number(v) if math.isfinite(v) else "—"
     if isinstance(v, (list, tuple)):
         return " × ".join(_fmt(x) for x in v) if all(isinstance(x, (int, np.integer)) for x in v) \
             else ", ".join(_fmt(x) for x in v)

@@ -88,6 +88,7 @@ from qcmon.thresholds import Profile, load_profile
 
 __all__ = [
     "GROUPS",
+    "readable_number",
     "SCHEMA",
     "ExcludeRange",
     "exclude_ranges",
@@ -522,6 +523,15 @@ def usable_frames(traces: Mapping[str, np.ndarray], ranges: Iterable[ExcludeRang
     n = int(fr.size)
     usable = n - int(out.sum())
     return {"frames": usable, "fraction": usable / n if n else math.nan}
+
+
+def readable_number(v: float, *, max_decimals: int = 4) -> str:
+    """A finite value for reading: about three significant digits, thousands separated, never in exponent
+    notation (``0.00123``, ``4.57``, ``65,535``); at most ``max_decimals`` decimals."""
+    if v == 0:
+        return "0"
+    decimals = min(max_decimals, max(0, 2 - math.floor(math.log10(abs(v)))))
+    return f"{v:,.{decimals}f}"
 
 
 def session_clock(seconds: float) -> str:

@@ -14,7 +14,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from qcmon.summary import GROUP_LABELS, GROUPS
+from qcmon.summary import GROUP_LABELS, GROUPS, readable_number
 
 #: Columns of ``audit.csv`` (units in the names).
 AUDIT_COLUMNS: tuple[str, ...] = (
@@ -271,12 +271,7 @@ def _show(v, scale: float = 1.0) -> str:
         return ""
     if isinstance(v, (float, np.floating)):
         v = float(v) * scale
-        if not math.isfinite(v):
-            return ""
-        if v == 0:
-            return "0"
-        decimals = min(3, max(0, 2 - math.floor(math.log10(abs(v)))))
-        return f"{v:,.{decimals}f}"
+        return readable_number(v, max_decimals=3) if math.isfinite(v) else ""
     if isinstance(v, (int, np.integer)) and not isinstance(v, bool):
         return f"{int(v) * scale:,.0f}"
     return str(v)
