@@ -3,71 +3,32 @@
 from __future__ import annotations
 
 import argparse
-import math
 import signal
 import sys
 import threading
 from pathlib import Path
 
 from qcmon import __version__
+from qcmon.arguments import EXIT_ERROR, EXIT_INTERRUPTED, EXIT_OK, finite, positive, raw_dtype
 from qcmon.errors import QcmonError, display_path
 from qcmon.frames import RATE_UNKNOWN
 
-#: Exit statuses (documented in the README).
-EXIT_OK, EXIT_FLAGGED, EXIT_ERROR, EXIT_INTERRUPTED = 0, 1, 2, 130
-
-
-def _positive(kind):
-    def parse(text: str):
-        try:
-            v = kind(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected a {kind.__name__}, got {text!r}") from None
-        if not v > 0:
-            raise argparse.ArgumentTypeError(f"must be greater than 0, got {text!r}")
-        if not math.isfinite(v):
-            raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
-        return v
-    return parse
-
-
-def _finite(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not math.isfinite(v):
-        raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
-    return v
-
-
-def _raw_dtype(text: str) -> str:
-    """An unsigned-integer pixel type, checked when the options are read (not at the first raw file)."""
-    from qcmon.sources.raw import parse_dtype
-
-    try:
-        parse_dtype(text, what="--raw-dtype")
-    except ValueError as err:
-        raise argparse.ArgumentTypeError(str(err).removeprefix("--raw-dtype: ")) from None
-    return text
-
-
 def _add_acquisition(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("acquisition facts (used when the files do not carry them)")
-    g.add_argument("--frame-rate", type=_positive(float), metavar="HZ", help="time points per second")
-    g.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
+    g.add_argument("--frame-rate", type=positive(float), metavar="HZ", help="time points per second")
+    g.add_argument("--pixel-size", type=positive(float), metavar="UM", help="pixel size in µm")
     g.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N",
                    help="detector bit depth (8..16); the saturation level is 2^N − 1 (default: where the data pile up, "
                         "else the dtype's maximum)")
-    g.add_argument("--dark-level", type=_finite, metavar="DN",
+    g.add_argument("--dark-level", type=finite, metavar="DN",
                    help="detector offset in DN (default: estimated by photon transfer)")
     g.add_argument("--zstack", type=Path, metavar="FILE", help="reference z-stack TIFF, superficial → deep")
-    g.add_argument("--z-step", type=_positive(float), metavar="UM", help="plane spacing of the z-stack in µm")
-    g.add_argument("--channels", type=_positive(int), metavar="N", help="channels interleaved page by page")
-    g.add_argument("--planes", type=_positive(int), metavar="N", help="planes interleaved page by page")
+    g.add_argument("--z-step", type=positive(float), metavar="UM", help="plane spacing of the z-stack in µm")
+    g.add_argument("--channels", type=positive(int), metavar="N", help="channels interleaved page by page")
+    g.add_argument("--planes", type=positive(int), metavar="N", help="planes interleaved page by page")
     g.add_argument("--motion-channel", type=int, metavar="C",
                    help="measure motion on channel C and apply it to the others")
-    g.add_argument("--raw-dtype", type=_raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
+    g.add_argument("--raw-dtype", type=raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar, e.g. uint16")
     g.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
     g.add_argument("--dataset", metavar="PATH",
                    help="the image series to read in an HDF5, NWB or Zarr file (a dataset path or NWB series name); "
@@ -115,7 +76,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
         p.add_argument("path", type=Path, metavar="PATH")
         _add_acquisition(p)
         p.add_argument("--restart", action="store_true", help=_RESTART_HELP)
-        p.add_argument("--workers", type=_positive(int), default=1, metavar="N",
+        p.add_argument("--workers", type=positive(int), default=1, metavar="N",
                        help="processes measuring chunks of a long session side by side, the reference carried "
                             "across (default: %(default)s)")
         p.set_defaults(func=cmd_summarize)
@@ -124,9 +85,9 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
     if p is not None:
         p.add_argument("path", type=Path, metavar="DIR")
         _add_acquisition(p)
-        p.add_argument("--poll", type=_positive(float), metavar="SECONDS",
+        p.add_argument("--poll", type=positive(float), metavar="SECONDS",
                        help="look for changes every SECONDS instead of file-system events (network shares)")
-        p.add_argument("--until-idle", type=_positive(float), metavar="SECONDS",
+        p.add_argument("--until-idle", type=positive(float), metavar="SECONDS",
                        help="end the watch when no new frame came for SECONDS")
         p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
         p.add_argument("--on-alarm", metavar="COMMAND",
@@ -155,7 +116,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
     p = command("demo", "watch a session the simulator writes live (nothing else needed)")
     if p is not None:
         p.add_argument("--plain", action="store_true", help="line output instead of the dashboard")
-        p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
+        p.add_argument("--seconds", type=positive(float), default=None, metavar="S",
                        help="length of the simulated session (default: the scenario's)")
         p.add_argument("--out", type=Path, metavar="DIR", help="keep the session and its record here")
         p.set_defaults(func=cmd_demo)

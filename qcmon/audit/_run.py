@@ -15,12 +15,13 @@ from typing import TextIO
 
 import numpy as np
 
+from qcmon.arguments import EXIT_ERROR, EXIT_FLAGGED, EXIT_OK
 from qcmon.audit._chronic import SAME_FIELD_CORR, chronic_table, field_keys, match_fields, shared_path_names
 from qcmon.audit._discover import SessionEntry, discover_sessions, session_date
 from qcmon.audit._measure import MONITOR_KEYS, measure_session, profile_fingerprint, reusable
 from qcmon.audit._write import AUDIT_COLUMNS, CHRONIC_COLUMNS, session_row, sparkline, write_csv, write_html
 
-EXIT_OK, EXIT_FLAGGED, EXIT_USAGE = 0, 1, 2
+EXIT_USAGE = EXIT_ERROR  # usage or configuration error
 
 _TRACE_COLUMNS = ("time_s", "displacement_um", "displacement_px", "brightness_pct", "baseline_f", "photons_per_px")
 

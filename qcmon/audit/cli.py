@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 from qcmon.audit._chronic import SAME_FIELD_CORR
-from qcmon.cli import _finite, _positive, _raw_dtype
+from qcmon.arguments import finite, positive, raw_dtype
 from qcmon.errors import QcmonError
 
 
@@ -29,7 +29,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "(default: ./qcmon-audit)")
     parser.add_argument("--profile", default="default", metavar="NAME|FILE",
                         help="threshold profile: a name from thresholds/ or a TOML file (default: %(default)s)")
-    parser.add_argument("--workers", type=_positive(int), default=1, metavar="N",
+    parser.add_argument("--workers", type=positive(int), default=1, metavar="N",
                         help="sessions measured in parallel by local processes (default: %(default)s)")
     parser.add_argument("--cluster", metavar="ADDRESS",
                         help="measure on a dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
@@ -48,21 +48,21 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     g.add_argument("--same-field-corr", type=_fraction, default=SAME_FIELD_CORR, metavar="R",
                    help="correlation of registered reference images from which two sessions show the same field "
                         "(default: %(default)s)")
-    g.add_argument("--shift-limit", type=_positive(float), default=10.0, metavar="UM",
+    g.add_argument("--shift-limit", type=positive(float), default=10.0, metavar="UM",
                    help="flag a field that moved more than this between sessions, µm (default: %(default)s)")
-    g.add_argument("--fade-limit", type=_positive(float), default=10.0, metavar="PCT_PER_WEEK",
+    g.add_argument("--fade-limit", type=positive(float), default=10.0, metavar="PCT_PER_WEEK",
                    help="flag a field whose brightness falls faster than this, %%/week (default: %(default)s)")
     a = parser.add_argument_group("acquisition facts (used when the files do not carry them)")
-    a.add_argument("--frame-rate", type=_positive(float), metavar="HZ", help="time points per second")
-    a.add_argument("--pixel-size", type=_positive(float), metavar="UM", help="pixel size in µm")
+    a.add_argument("--frame-rate", type=positive(float), metavar="HZ", help="time points per second")
+    a.add_argument("--pixel-size", type=positive(float), metavar="UM", help="pixel size in µm")
     a.add_argument("--bit-depth", type=int, choices=range(8, 17), metavar="N", help="detector bit depth (8..16)")
-    a.add_argument("--dark-level", type=_finite, metavar="DN", help="detector offset in DN")
-    a.add_argument("--z-step", type=_positive(float), metavar="UM",
+    a.add_argument("--dark-level", type=finite, metavar="DN", help="detector offset in DN")
+    a.add_argument("--z-step", type=positive(float), metavar="UM",
                    help="plane spacing of the sessions' zstack*.tif files in µm")
     a.add_argument("--no-zstack", action="store_true", help="ignore zstack*.tif files beside the sessions")
-    a.add_argument("--channels", type=_positive(int), metavar="N", help="channels interleaved page by page")
-    a.add_argument("--planes", type=_positive(int), metavar="N", help="planes interleaved page by page")
-    a.add_argument("--raw-dtype", type=_raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar")
+    a.add_argument("--channels", type=positive(int), metavar="N", help="channels interleaved page by page")
+    a.add_argument("--planes", type=positive(int), metavar="N", help="planes interleaved page by page")
+    a.add_argument("--raw-dtype", type=raw_dtype, metavar="DTYPE", help="pixel type of raw streams without a sidecar")
     a.add_argument("--raw-shape", type=int, nargs=2, metavar=("H", "W"), help="frame size of raw streams")
 
 
