@@ -3,9 +3,7 @@
 from __future__ import annotations
 
 import argparse
-import signal
 import sys
-import threading
 from pathlib import Path
 
 from qcmon import __version__
@@ -140,7 +138,7 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def cmd_summarize(args) -> int:
-    from qcmon.console import format_event
+    from qcmon.ui.console import format_event
     from qcmon.live import Monitor
 
     mon = Monitor(_options(args, follow=False))
@@ -168,67 +166,10 @@ def cmd_summarize(args) -> int:
     return EXIT_OK
 
 
-def _stop_on_signals(monitor) -> None:
-    """First Ctrl-C or SIGTERM ends the watch cleanly (the summary is written); a second Ctrl-C aborts without
-    writing the summary, report, exclude list and reference image (``Monitor.abort``)."""
-    hits = {"n": 0}
-
-    def handler(signum, frame):
-        hits["n"] += 1
-        if hits["n"] > 1 and signum == signal.SIGINT:
-            monitor.abort()
-            raise KeyboardInterrupt
-        print("\nqcmon: ending the watch, writing the summary…", file=sys.stderr, flush=True)
-        monitor.stop()
-
-    if threading.current_thread() is threading.main_thread():
-        signal.signal(signal.SIGINT, handler)
-        signal.signal(signal.SIGTERM, handler)
-
-
-def _read_commands(monitor, stream) -> None:
-    """Plain mode: lines on standard input are commands ("r" new reference, "n TEXT" note, "q" end)."""
-    for line in stream:
-        line = line.strip()
-        if not line:
-            continue
-        word, _, rest = line.partition(" ")
-        if word in ("r", "ref", "reference"):
-            monitor.new_reference()
-        elif word in ("n", "note") and rest:
-            monitor.add_note(rest)
-        elif word in ("q", "quit"):
-            monitor.stop()
-            return
-
-
-def run_watch(monitor, *, plain: bool) -> int:
-    _stop_on_signals(monitor)
-    if not plain:
-        from qcmon.dashboard.app import run_dashboard
-
-        return run_dashboard(monitor)
-    from qcmon.console import PlainConsole
-
-    console = PlainConsole()
-    print(f"qcmon {__version__}: watching {display_path(monitor.path)} → record in {display_path(monitor.out_dir)} "
-          f"(profile {monitor.profile.name})", flush=True)
-    if monitor.profile.caution:
-        print(f"caution: {monitor.profile.caution}", flush=True)
-    if sys.stdin is not None and sys.stdin.isatty():
-        print("commands: r = new reference, n TEXT = add a note, q = end the watch", flush=True)
-        threading.Thread(target=_read_commands, args=(monitor, sys.stdin), daemon=True).start()
-    paths = monitor.run(console)
-    if "frame_rate_hz" not in monitor.facts.facts and not monitor.timed:
-        print(f"qcmon: {RATE_UNKNOWN}: times, durations and per-minute values (bleaching) are blank", flush=True)
-    if "earlier" in paths:
-        print(f"earlier record moved to {display_path(paths['earlier'])}", flush=True)
-    print(f"verdict: {paths['verdict']}\nsummary: {display_path(paths['summary'])}\nreport:  {display_path(paths['report'])}", flush=True)
-    return EXIT_OK
-
-
 def cmd_watch(args) -> int:
     from qcmon.live import Monitor
+
+    from qcmon.ui.watch import run_watch
 
     plain = args.plain or not sys.stdout.isatty()
     return run_watch(Monitor(_options(args, follow=True)), plain=plain)

@@ -12,8 +12,8 @@ import tempfile
 import time
 from pathlib import Path
 
-from qcmon.cli import run_watch
 from qcmon.live import Monitor, MonitorOptions
+from qcmon.ui.watch import run_watch
 
 
 def start_writer(out: Path, *, scenario: str = "demo", seconds: float | None = None, layout: str = "chunks",

@@ -19,11 +19,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from qcmon.dashboard import QcmonApp
-from qcmon.dashboard.history import StreamHistory
-from qcmon.dashboard.panels import EventList, MetricPanel, event_cells, format_clock
-from qcmon.dashboard.plot import Level, TrendPlot, render_plot
-from qcmon.dashboard.screens import CAUTION, HelpScreen, NoteScreen
+from qcmon.ui.dashboard import QcmonApp
+from qcmon.ui.dashboard.history import StreamHistory
+from qcmon.ui.dashboard.panels import EventList, MetricPanel, event_cells, format_clock
+from qcmon.ui.dashboard.plot import Level, TrendPlot, render_plot
+from qcmon.ui.dashboard.screens import CAUTION, HelpScreen, NoteScreen
 from qcmon.events import Event
 from qcmon.status import Status
 
@@ -576,7 +576,7 @@ def test_plot_keeps_every_spike_and_draws_levels():
 
 
 def test_plot_column_ranges_match_a_plain_numpy_reference():
-    from qcmon.dashboard.plot import _column_ranges
+    from qcmon.ui.dashboard.plot import _column_ranges
 
     rng = np.random.default_rng(3)
     t = np.sort(rng.uniform(0, 300, 5000))

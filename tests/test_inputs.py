@@ -214,7 +214,7 @@ def test_thresholds_without_a_rate_count_frames():
 
 
 def test_plain_console_and_dashboard_header_say_the_rate_is_unknown():
-    from qcmon.console import format_status
+    from qcmon.ui.console import format_status
     from qcmon.status import Status
 
     line = format_status(Status(elapsed_s=math.nan), {})

@@ -186,7 +186,7 @@ def test_simulated_rig_start_through_the_engine():
 
 
 def test_level_and_origin_reach_console_status():
-    from qcmon.console import format_status
+    from qcmon.ui.console import format_status
     from qcmon.status import Status
 
     rng = np.random.default_rng(4)

@@ -232,7 +232,7 @@ def test_nothing_arriving_is_news_and_a_new_reference_waits_for_frames(tmp_path,
     import time
 
     import qcmon.live as live
-    from qcmon.console import format_event
+    from qcmon.ui.console import format_event
     from qcmon.events import Event
     from qcmon.live import Monitor, MonitorOptions
     from qcmon.simulate import write_session
@@ -294,8 +294,8 @@ def test_nothing_arriving_is_news_and_a_new_reference_waits_for_frames(tmp_path,
 
 
 def test_console_and_dashboard_show_advice_caution_and_no_recovery_at_the_end():
-    from qcmon.console import PlainConsole
-    from qcmon.dashboard.panels import event_cells
+    from qcmon.ui.console import PlainConsole
+    from qcmon.ui.dashboard.panels import event_cells
     import io
 
     prof = load_profile("default")

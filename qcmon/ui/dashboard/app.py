@@ -17,8 +17,8 @@ from textual.containers import Grid
 from textual.reactive import reactive
 from textual.widgets import Footer
 
-from qcmon.dashboard.history import StreamHistory
-from qcmon.dashboard.messages import (
+from qcmon.ui.dashboard.history import StreamHistory
+from qcmon.ui.dashboard.messages import (
     AppListener,
     EventArrived,
     RowsArrived,
@@ -26,8 +26,8 @@ from qcmon.dashboard.messages import (
     WatchFailed,
     WatchFinished,
 )
-from qcmon.dashboard.panels import PANELS, EventList, MetricPanel, SessionHeader, shown_window_s
-from qcmon.dashboard.screens import HelpScreen, NoteScreen
+from qcmon.ui.dashboard.panels import PANELS, EventList, MetricPanel, SessionHeader, shown_window_s
+from qcmon.ui.dashboard.screens import HelpScreen, NoteScreen
 from qcmon.events import Event
 from qcmon.status import Status
 

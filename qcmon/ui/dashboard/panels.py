@@ -15,8 +15,8 @@ from textual.widget import Widget
 from textual.widgets import RichLog, Static
 
 from qcmon.columns import BY_NAME
-from qcmon.dashboard.history import StreamHistory
-from qcmon.dashboard.plot import Level, TrendPlot
+from qcmon.ui.dashboard.history import StreamHistory
+from qcmon.ui.dashboard.plot import Level, TrendPlot
 from qcmon.events import STATES, SYMBOLS, Event
 from qcmon.frames import RATE_UNKNOWN
 from qcmon.status import Status

@@ -2,6 +2,6 @@
 
 from __future__ import annotations
 
-from qcmon.dashboard.app import QcmonApp, run_dashboard
+from qcmon.ui.dashboard.app import QcmonApp, run_dashboard
 
 __all__ = ["QcmonApp", "run_dashboard"]
