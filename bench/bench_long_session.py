@@ -1,7 +1,7 @@
 """Long sessions: memory of the engine and the record does not grow with the number of frames.
 
 Small Poisson frames (a fixed random field of cells, shifted by whole pixels, plus shot noise) are generated on
-the fly and driven through :class:`qcmon.engine.Engine` and :class:`qcmon.record.SessionRecord`, as the monitor
+the fly and driven through :class:`qcmon.engine.Engine` and :class:`qcmon.record.journal.SessionRecord`, as the monitor
 does. The resident memory (psutil RSS) and the process's peak (``ru_maxrss``) are printed at 10⁴, 10⁵ and 10⁶
 frames (and 3×10⁴, 3×10⁵), with the throughput, and at the end the record is closed, reopened and appended to (``traces.csv`` stays
 appendable). Figures only, no assertion.
@@ -23,7 +23,7 @@ from threadpoolctl import threadpool_limits
 
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
-from qcmon.record import SessionRecord, read_traces
+from qcmon.record.journal import SessionRecord, read_traces
 
 CHECKPOINTS = (10_000, 30_000, 100_000, 300_000, 1_000_000)
 

@@ -1,8 +1,8 @@
 """Cost of the session record, the summary and the report, against plain references in the same run.
 
 Run: ``python bench/bench_record.py [--rows N]``. Prints seconds for: appending N rows with
-:class:`qcmon.record.SessionRecord` vs. the standard library's ``csv.writer`` with ``str`` formatting (no fsync);
-reading them back with :func:`qcmon.record.read_traces` vs. ``numpy.genfromtxt``; the tracker per row; the summary;
+:class:`qcmon.record.journal.SessionRecord` vs. the standard library's ``csv.writer`` with ``str`` formatting (no fsync);
+reading them back with :func:`qcmon.record.journal.read_traces` vs. ``numpy.genfromtxt``; the tracker per row; the summary;
 and ``report.html`` vs. one matplotlib PNG of every raw point of a single trace. No assertions.
 """
 
@@ -20,7 +20,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from qcmon.columns import NAMES
-from qcmon.record import SessionRecord, read_traces
+from qcmon.record.journal import SessionRecord, read_traces
 from qcmon.report import write_report
 from qcmon.summary import summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile

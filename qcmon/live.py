@@ -35,7 +35,7 @@ from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError, display_path
 from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
-from qcmon.record import (EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE, SUMMARY_FILE, SessionRecord,
+from qcmon.record.journal import (EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE, SUMMARY_FILE, SessionRecord,
                           write_atomic_set)
 from qcmon.report import PanelDrawing, PlotWorkers, report_html
 from qcmon.sources.arrays import container_kind

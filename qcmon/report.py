@@ -425,7 +425,7 @@ def _field_images(out_dir: Path | None, summary: Mapping, traces: Mapping[str, n
                   reference: np.ndarray | None = None) -> list[tuple[str, str, str | None]]:
     """``(title, caption, base64 PNG or None)`` for the reference image and the field at the worst moment; the
     caption says why an image is missing."""
-    from qcmon.record import REFERENCE_FILE
+    from qcmon.record.journal import REFERENCE_FILE
 
     out: list[tuple[str, str, str | None]] = []
     ref_path = Path(out_dir) / REFERENCE_FILE if out_dir is not None else None
@@ -735,7 +735,7 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     pathlib.Path
         The report's path.
     """
-    from qcmon.record import REPORT_FILE, write_atomic
+    from qcmon.record.journal import REPORT_FILE, write_atomic
 
     return write_atomic(Path(out_dir) / REPORT_FILE,
                         report_html(summary, traces, events, profile, facts, plots=plots, panels=panels,

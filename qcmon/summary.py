@@ -377,7 +377,7 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
     Parameters
     ----------
     traces : dict of str to ndarray
-        Columns of ``traces.csv`` (:func:`qcmon.record.read_traces` or :func:`qcmon.record.rows_to_traces`).
+        Columns of ``traces.csv`` (:func:`qcmon.record.journal.read_traces` or :func:`qcmon.record.journal.rows_to_traces`).
     events : sequence of Event
         The session's events in order.
     facts : mapping, optional
@@ -631,7 +631,7 @@ def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events:
     dict
         The summary.
     """
-    from qcmon.record import EXCLUDE_FILE, REPORT_FILE, SUMMARY_FILE, write_atomic_set
+    from qcmon.record.journal import EXCLUDE_FILE, REPORT_FILE, SUMMARY_FILE, write_atomic_set
     from qcmon.report import report_html
 
     out_dir = Path(out_dir)
@@ -660,7 +660,7 @@ def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
     dict
         The summary written.
     """
-    from qcmon.record import SUMMARY_FILE, read_events, read_info, read_traces
+    from qcmon.record.journal import SUMMARY_FILE, read_events, read_info, read_traces
 
     out_dir = Path(out_dir)
     info = read_info(out_dir)

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from qcmon.record import read_events, read_traces
+from qcmon.record.journal import read_events, read_traces
 from qcmon.simulate import scenario_config, simulate
 
 #: Frame size of the reliability sessions (px): small, so that the tests are quick.

@@ -209,7 +209,7 @@ def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
     from qcmon.engine import Engine, EngineSettings
     from qcmon.frames import Frame
     from qcmon.live import step_event
-    from qcmon.record import rows_to_traces
+    from qcmon.record.journal import rows_to_traces
     from qcmon.simulate import simulate
     from qcmon.simulate.scenarios import scenario_config
     from qcmon.summary import summarize_traces

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from qcmon.live import Monitor, MonitorOptions
-from qcmon.record import read_events, read_traces
+from qcmon.record.journal import read_events, read_traces
 from qcmon.simulate import write_session
 from qcmon.simulate.scenarios import scenario_config
 

@@ -16,7 +16,7 @@ from numpy.testing import assert_allclose
 from qcmon.columns import NAMES
 from qcmon.errors import QcmonError
 from qcmon.events import Event
-from qcmon.record import SessionRecord, read_events, read_traces, rows_to_traces, write_atomic
+from qcmon.record.journal import SessionRecord, read_events, read_traces, rows_to_traces, write_atomic
 from qcmon.summary import exclude_ranges, fit_bleaching, rebuild, summarize_traces, summary_json
 from qcmon.thresholds import ThresholdTracker, load_profile
 from reliability_data import as_unprivileged, unprivileged_env
@@ -161,7 +161,7 @@ def test_read_only_folder(open_dir):
     d = open_dir / "ro"
     d.mkdir()
     d.chmod(0o555)
-    code = "import sys; from qcmon.record import SessionRecord; SessionRecord(sys.argv[1])"
+    code = "import sys; from qcmon.record.journal import SessionRecord; SessionRecord(sys.argv[1])"
     res = subprocess.run(as_unprivileged() + [sys.executable, "-c", code, str(d)], capture_output=True, text=True,
                          env=unprivileged_env(open_dir), timeout=60)
     assert res.returncode == 1 and "QcmonError" in res.stderr and "read-only" in res.stderr, res.stderr
@@ -282,14 +282,14 @@ def test_record_in_unwritable_folder_gives_qcmon_error_and_keeps_old_record(tmp_
     with SessionRecord(tmp_path) as rec:
         rec.append_rows(make_rows(7))
     before = (tmp_path / "traces.csv").read_bytes()
-    import qcmon.record
+    import qcmon.record.journal
 
     def refuse(path, mode="r", *a, **k):
         if any(c in mode for c in "wa+"):
             raise PermissionError(errno.EACCES, "Permission denied", str(path))
         return open(path, mode, *a, **k)
 
-    monkeypatch.setattr(qcmon.record, "open", refuse, raising=False)
+    monkeypatch.setattr(qcmon.record.journal, "open", refuse, raising=False)
     with pytest.raises(QcmonError, match="read-only") as info:
         SessionRecord(tmp_path, resume=True)
     assert str(tmp_path) in str(info.value)

@@ -1,7 +1,7 @@
 """Faults: a watch killed mid-session and restarted, an output folder that cannot be written, a clock that jumps,
 a writer that pauses. Nothing measured is lost, no frame is measured twice.
 
-The contract checked is qcmon's own (see qcmon.record: "a crash, kill -9 or power cut loses at most the last
+The contract checked is qcmon's own (see qcmon.record.journal: "a crash, kill -9 or power cut loses at most the last
 second"; qcmon.live: "only frames after the last recorded one are appended"); the frames come from qcmon's
 simulator, written live by a separate process.
 """
@@ -20,7 +20,7 @@ import pytest
 import tifffile
 
 from qcmon.live import Monitor, MonitorOptions
-from qcmon.record import LOCK_FILE, read_traces
+from qcmon.record.journal import LOCK_FILE, read_traces
 from qcmon.simulate import scenario_config, write_session
 from reliability_data import good_pages, qcmon_cmd, run_qcmon, snapshot, wait_until
 from reliability_data import recorded_rows as _rows

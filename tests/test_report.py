@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from qcmon.events import Event
-from qcmon.record import rows_to_traces
+from qcmon.record.journal import rows_to_traces
 from qcmon.report import envelope, report_html, write_report
 from qcmon.summary import summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from qcmon.record import read_events, read_traces
+from qcmon.record.journal import read_events, read_traces
 from reliability_data import as_unprivileged, good_pages, problem_events, qcmon_cmd, run_qcmon, unprivileged_env
 from reliability_data import recorded_rows as _rows
 from reliability_data import wait_until as _wait

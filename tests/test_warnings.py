@@ -14,7 +14,7 @@ import pytest
 
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
-from qcmon.record import rows_to_traces
+from qcmon.record.journal import rows_to_traces
 from qcmon.summary import exclude_ranges, summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile
 

@@ -183,7 +183,7 @@ def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
     stored = {k: v for k, v in outcome.items() if k != "summary"}
     try:
         record.parent.mkdir(parents=True, exist_ok=True)
-        from qcmon.record import write_atomic
+        from qcmon.record.journal import write_atomic
 
         write_atomic(manifest_path(record), json.dumps({"manifest": manifest, "outcome": stored}, indent=1,
                                                        default=str))

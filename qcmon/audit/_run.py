@@ -186,7 +186,7 @@ def _plot_workers():
 
 
 def _read_traces(record: Path):
-    from qcmon.record import read_traces
+    from qcmon.record.journal import read_traces
 
     if not (record / "traces.csv").is_file():
         return None

@@ -120,7 +120,7 @@ def _fmt(v) -> str:
 
 def write_csv(path: Path, rows: Sequence[Mapping], columns: Sequence[str]) -> Path:
     """Write rows as CSV (blank for unknown values) atomically."""
-    from qcmon.record import write_atomic
+    from qcmon.record.journal import write_atomic
 
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
@@ -301,7 +301,7 @@ def write_html(path: Path, rows: Sequence[Mapping], sparks: Mapping[str, str], c
                title: str, header: str) -> Path:
     """Write ``audit.html``: self-contained (inline CSS, JS and PNG), fits a 1,400 px screen without sideways
     scrolling, worst sessions first, the error next to the verdict, sortable tables, relative report links."""
-    from qcmon.record import write_atomic
+    from qcmon.record.journal import write_atomic
 
     out = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
            "<meta name='viewport' content='width=device-width, initial-scale=1'>",
