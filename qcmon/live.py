@@ -43,7 +43,7 @@ from qcmon.sources.raw import RAW_SUFFIXES
 from qcmon.sources.session import TIFF_SUFFIXES, SessionSource
 from qcmon.split import SplitRun
 from qcmon.status import Listener, Status
-from qcmon.summary import exclude_ranges, summarize_traces, verdict_line
+from qcmon.record.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
@@ -206,7 +206,7 @@ class Monitor:
         """Measure until stopped (or idle, or, with ``follow=False``, until everything on disk is measured).
 
         Returns ``{"verdict": line, "summary": path, "report": path, "exclude": path, "out_dir": path}`` (the
-        verdict line of :func:`qcmon.summary.verdict_line`), and ``"earlier"``: where an earlier record in
+        verdict line of :func:`qcmon.record.summary.verdict_line`), and ``"earlier"``: where an earlier record in
         ``out_dir`` was moved (``resume=False``).
         """
         # Frames are read into new arrays: keep freed memory for the next ones (see qcmon._memory).

@@ -15,7 +15,7 @@ import numpy as np
 
 from qcmon.events import SYMBOLS, Event
 from qcmon.frames import RATE_UNKNOWN
-from qcmon.summary import GROUP_LABELS, GROUPS, _periods, _streams, readable_number, session_clock, verdict_parts
+from qcmon.record.summary import GROUP_LABELS, GROUPS, _periods, _streams, readable_number, session_clock, verdict_parts
 from qcmon.thresholds import Profile
 
 __all__ = ["envelope", "write_report", "report_html", "worst_moment", "PanelDrawing", "PlotWorkers"]
@@ -718,7 +718,7 @@ def write_report(out_dir: str | Path, summary: Mapping, traces: Mapping[str, np.
     ----------
     out_dir : path-like
     summary : mapping
-        From :func:`qcmon.summary.summarize_traces`.
+        From :func:`qcmon.record.summary.summarize_traces`.
     traces : dict of str to ndarray
         Columns of ``traces.csv``.
     events : sequence of Event

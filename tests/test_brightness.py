@@ -212,7 +212,7 @@ def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
     from qcmon.record.journal import rows_to_traces
     from qcmon.simulate import simulate
     from qcmon.simulate.scenarios import scenario_config
-    from qcmon.summary import summarize_traces
+    from qcmon.record.summary import summarize_traces
     from qcmon.thresholds import load_profile
 
     config = scenario_config("gain_saturation", n_frames=600, height=64, width=64, frame_rate_hz=30.0)

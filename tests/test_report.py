@@ -12,7 +12,7 @@ import pytest
 from qcmon.events import Event
 from qcmon.record.journal import rows_to_traces
 from qcmon.report import envelope, report_html, write_report
-from qcmon.summary import summarize_traces
+from qcmon.record.summary import summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile
 
 from tests.test_record import make_rows
@@ -195,7 +195,7 @@ def test_every_event_has_its_session_time_not_the_wall_clock(session):
 
 
 def test_session_clock():
-    from qcmon.summary import session_clock
+    from qcmon.record.summary import session_clock
 
     assert session_clock(0) == "0:00.0" and session_clock(42.46) == "0:42.5" and session_clock(61.0) == "1:01.0"
     assert session_clock(3725) == "1:02:05" and session_clock(float("nan")) == "—" and session_clock(None) == "—"
@@ -203,7 +203,7 @@ def test_session_clock():
 
 def test_every_plot_starts_at_the_first_frame_even_when_the_metric_starts_later(session):
     from qcmon.report import _PANELS, _panel_figure
-    from qcmon.summary import _streams
+    from qcmon.record.summary import _streams
 
     prof, traces, events, facts, summary = session
     late = dict(traces)
@@ -312,7 +312,7 @@ def test_summarize_prints_the_verdict_line_first_and_the_report_shows_the_field(
 
     import tifffile
 
-    from qcmon.summary import verdict_line
+    from qcmon.record.summary import verdict_line
     from tests.outside_data import nuclei_2d, specimen_crop
     from tests.reliability_data import run_qcmon
 

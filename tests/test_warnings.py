@@ -15,7 +15,7 @@ import pytest
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
 from qcmon.record.journal import rows_to_traces
-from qcmon.summary import exclude_ranges, summarize_traces
+from qcmon.record.summary import exclude_ranges, summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile
 
 FPS = 30.0  # frames per second: a common resonant-scanner two-photon rate (from memory)

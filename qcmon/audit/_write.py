@@ -14,7 +14,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from qcmon.summary import GROUP_LABELS, GROUPS, readable_number
+from qcmon.record.summary import GROUP_LABELS, GROUPS, readable_number
 
 #: Columns of ``audit.csv`` (units in the names).
 AUDIT_COLUMNS: tuple[str, ...] = (
@@ -138,7 +138,7 @@ _SPARK_BRIGHTNESS = (80.0, 100.0)
 
 
 def _clock(seconds: float) -> str:
-    from qcmon.summary import session_clock
+    from qcmon.record.summary import session_clock
 
     text = session_clock(seconds)
     return text[:-2] if text.endswith(".0") else text
