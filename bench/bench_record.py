@@ -21,7 +21,7 @@ from matplotlib.figure import Figure
 
 from qcmon.columns import NAMES
 from qcmon.record.journal import SessionRecord, read_traces
-from qcmon.report import write_report
+from qcmon.record.report import write_report
 from qcmon.record.summary import summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile
 

@@ -37,7 +37,7 @@ from qcmon.events import Event
 from qcmon.frames import AcquisitionFacts, Frame
 from qcmon.record.journal import (EXCLUDE_FILE, REFERENCE_FILE, REPORT_FILE, SUMMARY_FILE, SessionRecord,
                           write_atomic_set)
-from qcmon.report import PanelDrawing, PlotWorkers, report_html
+from qcmon.record.report import PanelDrawing, PlotWorkers, report_html
 from qcmon.sources.arrays import container_kind
 from qcmon.sources.raw import RAW_SUFFIXES
 from qcmon.sources.session import TIFF_SUFFIXES, SessionSource

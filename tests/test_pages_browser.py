@@ -32,7 +32,7 @@ def _check(page, width=1400):
 def test_report_in_a_browser(tmp_path):
     import tifffile
 
-    from qcmon.report import write_report
+    from qcmon.record.report import write_report
     from tests.test_report import _real_session
 
     prof, traces, summary, stack = _real_session(tmp_path)

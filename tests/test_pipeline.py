@@ -255,7 +255,7 @@ def test_command_line_builds_only_the_named_command_with_the_same_options():
 def test_plot_processes_given_to_monitors_serve_one_session_after_another(tmp_path, drift_session, drift_record):
     # The audit hands one set of plot processes to each session's Monitor: each report is the one drawn in
     # process (Agg is deterministic), and the processes stay open for the next session.
-    from qcmon.report import PlotWorkers
+    from qcmon.record.report import PlotWorkers
 
     plots = PlotWorkers(2)
     try:

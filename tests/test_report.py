@@ -11,7 +11,7 @@ import pytest
 
 from qcmon.events import Event
 from qcmon.record.journal import rows_to_traces
-from qcmon.report import envelope, report_html, write_report
+from qcmon.record.report import envelope, report_html, write_report
 from qcmon.record.summary import summarize_traces
 from qcmon.thresholds import ThresholdTracker, load_profile
 
@@ -105,7 +105,7 @@ def test_multi_plane_report_has_a_row_per_plane(tmp_path, session):
 def test_plots_drawn_by_other_processes_give_the_same_report(session):
     # PlotWorkers draws the plots in two processes started ahead (qcmon summarize uses it): the page must be the
     # same, byte for byte, as the one drawn in this process (the Agg renderer is deterministic).
-    from qcmon.report import PlotWorkers
+    from qcmon.record.report import PlotWorkers
 
     prof, traces, events, facts, summary = session
     here = report_html(summary, traces, events, prof, facts)
@@ -125,7 +125,7 @@ def test_plot_processes_run_at_the_lowest_priority():
     # POSIX niceness (os.nice, 19 = lowest): loading matplotlib in them must not take the measuring core
     import os
 
-    from qcmon.report import PlotWorkers
+    from qcmon.record.report import PlotWorkers
 
     if not hasattr(os, "nice"):
         pytest.skip("no process niceness on this system")
@@ -173,7 +173,7 @@ def test_statistics_are_readable_with_units(session):
 
 
 def test_readable_numbers():
-    from qcmon.report import _fmt
+    from qcmon.record.report import _fmt
 
     assert _fmt(65535.0) == "65,535" and _fmt(9.4723) == "9.47" and _fmt(0.000123) == "0.0001"
     assert _fmt(-4.75198) == "-4.75" and _fmt(float("nan")) == "—" and _fmt(None) == "—" and _fmt(1800) == "1,800"
@@ -202,7 +202,7 @@ def test_session_clock():
 
 
 def test_every_plot_starts_at_the_first_frame_even_when_the_metric_starts_later(session):
-    from qcmon.report import _PANELS, _panel_figure
+    from qcmon.record.report import _PANELS, _panel_figure
     from qcmon.record.summary import _streams
 
     prof, traces, events, facts, summary = session
@@ -217,7 +217,7 @@ def test_every_plot_starts_at_the_first_frame_even_when_the_metric_starts_later(
 
 
 def test_worst_moment_ranks_metrics_by_their_own_levels():
-    from qcmon.report import worst_moment
+    from qcmon.record.report import worst_moment
 
     prof = load_profile("default")
     d, s = prof.limits["displacement_um"], prof.limits["saturated_frac"]
@@ -346,7 +346,7 @@ def test_a_session_with_unread_frames_is_not_a_green_pass(session):
 def test_the_worst_frame_is_read_back_from_an_hdf5_series(tmp_path):
     # a container's frames are named in traces.csv by the file and the frame number within its series
     import h5py  # a dependency of qcmon (HDF5 and NWB sources)
-    from qcmon.report import _read_frame
+    from qcmon.record.report import _read_frame
     from tests.outside_data import nuclei_2d
 
     data = np.stack([nuclei_2d()[i:i + 48, 2 * i:2 * i + 40] for i in range(12)])  # real image, moved each frame

@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING
 import qcmon
 
 if TYPE_CHECKING:  # the report module loads only when a session is measured
-    from qcmon.report import PlotWorkers
+    from qcmon.record.report import PlotWorkers
 
 #: Version of the manifest layout; a different one means "measure again".
 MANIFEST_SCHEMA = "qcmon.audit-manifest/1"
@@ -129,7 +129,7 @@ def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
     task : dict
         ``rel``, ``path``, ``frame_files``, ``extra_files``, ``zstack``, ``record``, ``profile``,
         ``profile_fingerprint``, ``monitor`` (MonitorOptions keyword arguments of :data:`MONITOR_KEYS`).
-    plots : qcmon.report.PlotWorkers, optional
+    plots : qcmon.record.report.PlotWorkers, optional
         Processes that draw the report's plots (left open for the next session); default: drawn in this process.
 
     Returns

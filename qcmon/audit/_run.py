@@ -177,7 +177,7 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
 
 
 def _plot_workers():
-    from qcmon.report import PlotWorkers
+    from qcmon.record.report import PlotWorkers
 
     try:
         return PlotWorkers(2)

@@ -164,7 +164,7 @@ def sparkline(traces: Mapping[str, np.ndarray] | None) -> str:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    from qcmon.report import envelope
+    from qcmon.record.report import envelope
 
     t = np.asarray(traces["time_s"], dtype=float)
     disp = np.asarray(traces.get("displacement_um", []), dtype=float)

@@ -632,7 +632,7 @@ def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events:
         The summary.
     """
     from qcmon.record.journal import EXCLUDE_FILE, REPORT_FILE, SUMMARY_FILE, write_atomic_set
-    from qcmon.report import report_html
+    from qcmon.record.report import report_html
 
     out_dir = Path(out_dir)
     summary = summarize_traces(traces, events, facts=facts, profile=profile, extra=extra)

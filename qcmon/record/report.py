@@ -194,7 +194,7 @@ class PlotWorkers:
     Loading matplotlib takes about 0.7 s here and each plot about 0.1 s; a summary of a finished session otherwise
     spends both after its last frame. Started early, the processes load matplotlib on the other core while the
     frames are measured, and at the end draw the plots in parallel. They run at the lowest priority
-    (:mod:`qcmon._plotproc`): two of them loading matplotlib at normal priority took 0.6–1.3 s of processor time
+    (:mod:`qcmon.record._plotproc`): two of them loading matplotlib at normal priority took 0.6–1.3 s of processor time
     from a 2-core machine's measurement of 3,600 frames. Anything that goes wrong with them (a process
     that cannot start or dies) only means the plots are drawn in this process, as without them.
 
@@ -208,9 +208,9 @@ class PlotWorkers:
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
-        from qcmon._plotproc import start
+        from qcmon.record._plotproc import start
 
-        # low priority (qcmon._plotproc): loading matplotlib must not slow the measurement on a busy core
+        # low priority (qcmon.record._plotproc): loading matplotlib must not slow the measurement on a busy core
         self._pool = ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"),
                                          initializer=start)
         # processes start on demand: one empty job per process starts them all now

@@ -1,4 +1,4 @@
-"""Start-up of the report's plot processes (:class:`qcmon.report.PlotWorkers`).
+"""Start-up of the report's plot processes (:class:`qcmon.record.report.PlotWorkers`).
 
 Kept free of heavy imports: a spawned process imports this module before anything else of qcmon's, and should
 lower its priority before it loads numpy and matplotlib (about 0.7 s of processor time), so that the frames being
@@ -26,6 +26,6 @@ def start() -> None:
         os.nice(NICENESS)
     except (AttributeError, OSError):  # no os.nice (Windows) or not permitted: stays at normal priority
         pass
-    from qcmon.report import _load_matplotlib
+    from qcmon.record.report import _load_matplotlib
 
     _load_matplotlib()
