@@ -17,7 +17,8 @@ from qcmon.columns import NAMES
 from qcmon.errors import QcmonError
 from qcmon.events import Event
 from qcmon.record.journal import SessionRecord, read_events, read_traces, rows_to_traces, write_atomic
-from qcmon.record.summary import exclude_ranges, fit_bleaching, rebuild, summarize_traces, summary_json
+from qcmon.record.outputs import rebuild
+from qcmon.record.summary import exclude_ranges, fit_bleaching, summarize_traces, summary_json
 from qcmon.thresholds import ThresholdTracker, load_profile
 from reliability_data import as_unprivileged, unprivileged_env
 

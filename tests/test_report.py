@@ -203,13 +203,13 @@ def test_session_clock():
 
 def test_every_plot_starts_at_the_first_frame_even_when_the_metric_starts_later(session):
     from qcmon.record.report import _PANELS, _panel_figure
-    from qcmon.record.summary import _streams
+    from qcmon.record.summary import stream_rows
 
     prof, traces, events, facts, summary = session
     late = dict(traces)
     late["brightness_pct"] = np.where(np.asarray(traces["time_s"]) < 10.0, np.nan, traces["brightness_pct"])
     for title, columns, scale, unit in _PANELS:
-        got = _panel_figure(late, _streams(late), events, prof, title, columns, scale, unit)
+        got = _panel_figure(late, stream_rows(late), events, prof, title, columns, scale, unit)
         if got is None:
             continue
         lo, hi = got[1].axes[0].get_xlim()

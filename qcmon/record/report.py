@@ -15,7 +15,9 @@ import numpy as np
 
 from qcmon.events import SYMBOLS, Event
 from qcmon.frames import RATE_UNKNOWN
-from qcmon.record.summary import GROUP_LABELS, GROUPS, _periods, _streams, readable_number, session_clock, verdict_parts
+from qcmon.record._plotproc import figure_png
+from qcmon.record.summary import (GROUP_LABELS, GROUPS, readable_number, session_clock, state_periods, stream_rows,
+                                  verdict_parts)
 from qcmon.thresholds import Profile
 
 __all__ = ["envelope", "write_report", "report_html", "worst_moment", "PanelDrawing", "PlotWorkers"]
@@ -97,18 +99,9 @@ def envelope(x: np.ndarray, y: np.ndarray, *, max_points: int = MAX_POINTS
     return x[starts], lo, hi, mean
 
 
-def _png(fig) -> str:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90)
-    return base64.b64encode(buf.getvalue()).decode("ascii")
-
-
 def _panel(traces, streams, events, profile: Profile, title, columns, scale, unit) -> tuple[str, str] | None:
     got = _panel_figure(traces, streams, events, profile, title, columns, scale, unit)
-    return None if got is None else (got[0], _png(got[1]))
+    return None if got is None else (got[0], figure_png(got[1]))
 
 
 def _panel_figure(traces, streams, events, profile: Profile, title, columns, scale, unit):
@@ -139,7 +132,7 @@ def _panel_figure(traces, streams, events, profile: Profile, title, columns, sca
         for state, shade in (("warning", "#f0b040"), ("alarm", "#e04040")):
             last_t = float(np.nanmax(t_all[idx])) if np.isfinite(t_all[idx]).any() else math.nan
             last_f = int(np.asarray(traces["frame"])[idx].max())
-            for _, _, b, e in _periods(events, key, (col,), state, last_f, last_t):
+            for _, _, b, e in state_periods(events, key, (col,), state, last_f, last_t):
                 if math.isfinite(b) and math.isfinite(e):
                     ax.axvspan(b, e, color=shade, alpha=0.18 if state == "alarm" else 0.12, linewidth=0)
     t_fin = t_all[np.isfinite(t_all)]
@@ -169,19 +162,6 @@ def _panel_figure(traces, streams, events, profile: Profile, title, columns, sca
 
 def _panel_job(job: tuple) -> tuple[str, str] | None:
     return _panel(*job)
-
-
-def _load_matplotlib() -> None:
-    """Load what a plot needs ahead of the plots: the modules, and (by drawing a small figure) the font, the text
-    layout caches and the PNG encoder, which the first plot of a process would otherwise load."""
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(2, 1))
-    ax = fig.add_subplot()
-    ax.plot([0.0, 1.0], [0.0, 1.0], label="µm")
-    ax.set_xlabel("time (s)")
-    ax.legend(fontsize=7)
-    _png(fig)
 
 
 def _nothing() -> None:
@@ -237,7 +217,7 @@ class PanelDrawing:
 
     def __init__(self, traces: Mapping[str, np.ndarray], events: Sequence[Event], profile: Profile,
                  plots: PlotWorkers | None = None):
-        self.streams = _streams(traces)
+        self.streams = stream_rows(traces)
         self._jobs = []
         for title, columns, scale, unit in _PANELS:
             needed = {k: np.asarray(traces[k]) for k in ("time_s", "frame", *columns)}  # what a plot reads

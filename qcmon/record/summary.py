@@ -88,17 +88,20 @@ from qcmon.thresholds import Profile, load_profile
 
 __all__ = [
     "GROUPS",
+    "GROUP_LABELS",
     "readable_number",
+    "session_clock",
+    "state_periods",
+    "stream_rows",
     "SCHEMA",
     "ExcludeRange",
     "exclude_ranges",
     "exclude_csv",
     "fit_bleaching",
-    "rebuild",
     "summarize_traces",
     "usable_frames",
     "verdict_line",
-    "write_outputs",
+    "verdict_parts",
 ]
 
 SCHEMA = "qcmon.summary/1"
@@ -227,7 +230,7 @@ _STATS: dict[str, dict[str, tuple[str, str]]] = {
 }
 
 
-def _streams(traces: Mapping[str, np.ndarray]) -> dict[tuple[int, int], np.ndarray]:
+def stream_rows(traces: Mapping[str, np.ndarray]) -> dict[tuple[int, int], np.ndarray]:
     """Row indices of each (channel, plane), in frame order."""
     ch = np.asarray(traces["channel"], dtype=np.int64)
     pl = np.asarray(traces["plane"], dtype=np.int64)
@@ -239,8 +242,8 @@ def _streams(traces: Mapping[str, np.ndarray]) -> dict[tuple[int, int], np.ndarr
     return out
 
 
-def _periods(events: Sequence[Event], key: tuple[int, int], metrics: Iterable[str], state: str,
-             last_frame: int, last_time: float) -> list[tuple[int, int, float, float]]:
+def state_periods(events: Sequence[Event], key: tuple[int, int], metrics: Iterable[str], state: str,
+                  last_frame: int, last_time: float) -> list[tuple[int, int, float, float]]:
     """(first_frame, last_frame, start_s, end_s) of each declared ``state`` of ``metrics`` in one stream."""
     metrics = set(metrics)
     open_: dict[str, tuple[int, float]] = {}
@@ -300,7 +303,7 @@ def _stream_summary(traces, idx, events, key, profile: Profile, notes: list[str]
         g = out[group]
         limited = [m for m in metrics if m in profile.limits
                    and np.isfinite(np.asarray(traces[m], dtype=float)[idx]).any()]
-        spans = {s: _periods(events, key, metrics, s, last_frame, last_time) for s in ("warning", "alarm")}
+        spans = {s: state_periods(events, key, metrics, s, last_frame, last_time) for s in ("warning", "alarm")}
         for s in ("warning", "alarm"):
             g[f"{s}_s"] = (float(sum(e - b for _, _, b, e in spans[s] if math.isfinite(e - b))) if tf.size
                            else math.nan)  # no times (frame rate unknown): no durations
@@ -390,7 +393,7 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
     Returns
     -------
     dict
-        Plain JSON-able content (NaN stands for null; :func:`write_outputs` writes it as null).
+        Plain JSON-able content (NaN stands for null; :func:`qcmon.record.outputs.write_outputs` writes it as null).
     """
     if not isinstance(profile, Profile):
         raise ValueError(f"profile must be a Profile, got {type(profile).__name__}")
@@ -400,7 +403,7 @@ def summarize_traces(traces: Mapping[str, np.ndarray], events: Sequence[Event], 
     if not math.isfinite(frame_rate["hz"]) and not np.isfinite(np.asarray(traces["time_s"], float)).any():
         notes.append(f"{RATE_UNKNOWN}: times, durations (duration_s, warning_s, alarm_s) and per-minute values "
                      "(bleaching) are blank; frames count time (column frame)")
-    streams = _streams(traces)
+    streams = stream_rows(traces)
     per = [_stream_summary(traces, idx, events, key, profile, notes) for key, idx in streams.items()]
     t = _finite(traces["time_s"])
     summary: dict[str, object] = {
@@ -475,13 +478,13 @@ def exclude_ranges(traces: Mapping[str, np.ndarray], events: Sequence[Event], pr
     """
     events = list(events)
     out: list[ExcludeRange] = []
-    for key, idx in _streams(traces).items():
+    for key, idx in stream_rows(traces).items():
         frames = np.asarray(traces["frame"], dtype=np.int64)[idx]
         if frames.size == 0:
             continue
         masks: dict[str, np.ndarray] = {}
         for metric in profile.limits:
-            for first, last, _, _ in _periods(events, key, (metric,), "alarm", int(frames[-1]), math.nan):
+            for first, last, _, _ in state_periods(events, key, (metric,), "alarm", int(frames[-1]), math.nan):
                 m = masks.setdefault(f"alarm: {metric}", np.zeros(frames.size, bool))
                 m |= (frames >= first) & (frames <= last)
         for metric in _EXCLUDE_BY_VALUE:
@@ -620,72 +623,3 @@ def _jsonable(obj):
 def summary_json(summary: Mapping) -> str:
     """``summary`` as JSON text (NaN written as null)."""
     return json.dumps(_jsonable(summary), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
-
-
-def write_outputs(out_dir: str | Path, traces: Mapping[str, np.ndarray], events: Sequence[Event], *,
-                  facts: Mapping | None = None, profile: Profile, extra: Mapping | None = None) -> dict:
-    """Write ``summary.json``, ``exclude.csv`` and ``report.html`` atomically into ``out_dir``.
-
-    Returns
-    -------
-    dict
-        The summary.
-    """
-    from qcmon.record.journal import EXCLUDE_FILE, REPORT_FILE, SUMMARY_FILE, write_atomic_set
-    from qcmon.record.report import report_html
-
-    out_dir = Path(out_dir)
-    summary = summarize_traces(traces, events, facts=facts, profile=profile, extra=extra)
-    write_atomic_set(out_dir, {  # one set: all new, or all as they were
-        SUMMARY_FILE: summary_json(summary),
-        EXCLUDE_FILE: exclude_csv(exclude_ranges(traces, events, profile)),
-        REPORT_FILE: report_html(summary, traces, events, profile, facts or {})})
-    return summary
-
-
-def rebuild(out_dir: str | Path, profile: Profile | str | None = None) -> dict:
-    """Rebuild ``summary.json``, ``exclude.csv`` and ``report.html`` from the appended record alone.
-
-    Parameters
-    ----------
-    out_dir : path-like
-        Folder with ``traces.csv`` and ``events.jsonl`` (and ``session.json`` if the session wrote one: facts,
-        profile name, engine results; without it, those are taken from an earlier ``summary.json`` if any).
-    profile : Profile or str, optional
-        Threshold profile (object, name or path); default: the one named in ``session.json``, else
-        ``"default"``. Verdicts come from the recorded events, which the session's own profile produced.
-
-    Returns
-    -------
-    dict
-        The summary written.
-    """
-    from qcmon.record.journal import SUMMARY_FILE, read_events, read_info, read_traces
-
-    out_dir = Path(out_dir)
-    info = read_info(out_dir)
-    previous = out_dir / SUMMARY_FILE
-    if not info and previous.exists():  # a session without session.json: take facts and profile from before
-        try:
-            old = json.loads(previous.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            old = {}
-        info = {"facts": old.get("facts", {}), "profile": (old.get("profile") or {}).get("path") or "default",
-                "extra": {f"photon_transfer.{k}": (math.nan if v is None else v)
-                          for k, v in (old.get("photon_transfer") or {}).items()}}
-    if previous.exists():  # what only the run knew: the session's path and the input problems it met
-        try:
-            old = json.loads(previous.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            old = {}
-        kept = {k: old[k] for k in ("session", "problems", "dataset") if isinstance(old, dict) and k in old}
-        if kept:
-            info = {**info, "extra": {**(info.get("extra") or {}), **kept}}
-    if profile is None:
-        profile = info.get("profile", "default")
-    if not isinstance(profile, Profile):
-        profile = load_profile(profile)
-    traces = read_traces(out_dir)
-    events = read_events(out_dir)
-    return write_outputs(out_dir, traces, events, facts=info.get("facts", {}), profile=profile,
-                         extra=info.get("extra"))
