@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from qcmon._memory import keep_freed_memory
+from qcmon.monitor._memory import keep_freed_memory
 from qcmon.advice import idle_advice
 from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import FrameError, QcmonError, display_path
@@ -41,7 +41,7 @@ from qcmon.record.report import PanelDrawing, PlotWorkers, report_html
 from qcmon.sources.arrays import container_kind
 from qcmon.sources.raw import RAW_SUFFIXES
 from qcmon.sources.session import TIFF_SUFFIXES, SessionSource
-from qcmon.split import SplitRun
+from qcmon.monitor.split import SplitRun
 from qcmon.status import Listener, Status
 from qcmon.record.summary import exclude_ranges, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
@@ -209,7 +209,7 @@ class Monitor:
         verdict line of :func:`qcmon.record.summary.verdict_line`), and ``"earlier"``: where an earlier record in
         ``out_dir`` was moved (``resume=False``).
         """
-        # Frames are read into new arrays: keep freed memory for the next ones (see qcmon._memory).
+        # Frames are read into new arrays: keep freed memory for the next ones (see qcmon.monitor._memory).
         keep_freed_memory()
         # The engine's matrix products are small: one BLAS thread is fastest, and it leaves the other core to
         # the acquisition computer's own work (and to a second qcmon in an audit).

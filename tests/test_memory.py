@@ -1,4 +1,4 @@
-"""qcmon._memory: freed frame memory is kept for the next batch instead of going back to the kernel."""
+"""qcmon.monitor._memory: freed frame memory is kept for the next batch instead of going back to the kernel."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ _BATCHES = """
 import resource, sys
 import numpy as np
 if sys.argv[1] == "keep":
-    from qcmon._memory import keep_freed_memory
+    from qcmon.monitor._memory import keep_freed_memory
     assert keep_freed_memory()
 def batch():
     frames = []

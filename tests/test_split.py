@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-import qcmon.split
+import qcmon.monitor.split
 from qcmon.live import Monitor, MonitorOptions
 from qcmon.sources import SessionSource
-from qcmon.split import plan_chunks, warm_start
+from qcmon.monitor.split import plan_chunks, warm_start
 
 # ------------------------------------------------------------------------------------------- planning
 
@@ -89,7 +89,7 @@ def split_pair(tmp_path_factory):
     frames = _sim(root / "s", 1400, seed=4, line_offset_px=0.4, bleach_tau_min=(3.0,),
                   z_drift_um_per_min=3.0)
     mp = pytest.MonkeyPatch()
-    mp.setattr(qcmon.split, "MIN_CHUNK", 350)        # three chunks of this short session
+    mp.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)        # three chunks of this short session
     try:
         outs = {}
         for w in (1, 3):
@@ -131,7 +131,7 @@ def test_split_summary_and_events_match_one_process(split_pair):
 
 def test_a_failed_worker_is_measured_again_and_nothing_is_lost(tmp_path, monkeypatch):
     frames = _sim(tmp_path / "s", 800, seed=6)
-    monkeypatch.setattr(qcmon.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
 
     class Broken:
         def __init__(self, *a, **k):
@@ -147,7 +147,7 @@ def test_a_failed_worker_is_measured_again_and_nothing_is_lost(tmp_path, monkeyp
         def shutdown(self, **k):
             pass
 
-    monkeypatch.setattr(qcmon.split, "ProcessPoolExecutor", Broken)
+    monkeypatch.setattr(qcmon.monitor.split, "ProcessPoolExecutor", Broken)
     mon = Monitor(MonitorOptions(path=frames, out_dir=tmp_path / "o", follow=False, workers=2))
     mon.run()
     rows = _traces(tmp_path / "o")
@@ -159,10 +159,10 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
     from qcmon.audit import AuditOptions, run_audit
 
     _sim(tmp_path / "lab" / "m1" / "2026-11-03", 800, seed=8)
-    monkeypatch.setattr(qcmon.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
     calls = []
-    real = qcmon.split.SplitRun.launch
-    monkeypatch.setattr(qcmon.split.SplitRun, "launch",
+    real = qcmon.monitor.split.SplitRun.launch
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
                         lambda self, *a: calls.append(real(self, *a)) or calls[-1])
     one = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a1", workers=1), progress=False)
     two = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a2", workers=2), progress=False)
@@ -180,8 +180,8 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
 def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch):
     frames = _sim(tmp_path / "s", 200, seed=9)                 # 200 < MIN_CHUNK time points per process
     launched = []
-    real = qcmon.split.SplitRun.launch
-    monkeypatch.setattr(qcmon.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
+    real = qcmon.monitor.split.SplitRun.launch
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
     for w in (1, 2):
         Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
     assert launched == [1]

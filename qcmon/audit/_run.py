@@ -40,7 +40,7 @@ class AuditOptions:
         Threshold profile name or TOML file.
     workers : int
         Local processes: sessions measured in parallel, or, with fewer sessions to measure than processes,
-        one after another with each long session split into chunks of time points (:mod:`qcmon.split`).
+        one after another with each long session split into chunks of time points (:mod:`qcmon.monitor.split`).
     cluster : str or None
         Address of a dask.distributed scheduler; the sessions are measured there instead.
     only_flagged : bool
@@ -152,7 +152,7 @@ def _measure_all(todo: list[dict], opts: AuditOptions, progress: Progress | None
         return
     if opts.workers <= 1 or len(todo) < opts.workers:
         # fewer sessions than processes: one session after another, each long one split into chunks of time
-        # points over the processes (qcmon.split; short sessions stay in one process)
+        # points over the processes (qcmon.monitor.split; short sessions stay in one process)
         # the report's plots: drawn by two low-priority processes kept for the whole audit, which load matplotlib
         # while the first session is measured and draw each session's plots side by side at its end (the cores
         # are otherwise idle then); in this process if they cannot start

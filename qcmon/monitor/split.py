@@ -107,10 +107,10 @@ def measure_chunk(job: ChunkJob) -> dict:
     """Measure one chunk in this process. Returns ``rows`` and ``problems`` (messages)."""
     from threadpoolctl import threadpool_limits
 
-    from qcmon._memory import keep_freed_memory
+    from qcmon.monitor._memory import keep_freed_memory
     from qcmon.sources import SessionSource
 
-    keep_freed_memory()  # frames are read into new arrays: reuse freed memory (see qcmon._memory)
+    keep_freed_memory()  # frames are read into new arrays: reuse freed memory (see qcmon.monitor._memory)
     problems: list[str] = []
     engine = pickle.loads(job.engine)
     token = {**job.token, "pages": 0, "files": {}, "given_up": []}
