@@ -21,7 +21,7 @@ import tifffile
 from qcmon.audit import AuditOptions, discover_sessions, run_audit
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
-from qcmon.live import read_zstack
+from qcmon.monitor.loop import read_zstack
 from qcmon.simulate import SimConfig
 from qcmon.simulate._write import write_session
 

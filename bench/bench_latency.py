@@ -53,7 +53,7 @@ def writer(folder: Path, frames: np.ndarray, rate: float, clock: Clock, n: int) 
 
 
 def run(rate: float, seconds: float, frames: np.ndarray) -> None:
-    from qcmon.live import Monitor, MonitorOptions
+    from qcmon.monitor.loop import Monitor, MonitorOptions
 
     n = int(rate * seconds)
     with tempfile.TemporaryDirectory() as tmp:

@@ -38,7 +38,7 @@ def _add_acquisition(p: argparse.ArgumentParser) -> None:
 
 
 def _options(args, *, follow: bool):
-    from qcmon.live import MonitorOptions
+    from qcmon.monitor.loop import MonitorOptions
 
     return MonitorOptions(
         path=args.path, out_dir=args.out, profile=args.profile, follow=follow,
@@ -139,7 +139,7 @@ def main(argv: list[str] | None = None) -> int:
 
 def cmd_summarize(args) -> int:
     from qcmon.ui.console import format_event
-    from qcmon.live import Monitor
+    from qcmon.monitor.loop import Monitor
 
     mon = Monitor(_options(args, follow=False))
 
@@ -167,7 +167,7 @@ def cmd_summarize(args) -> int:
 
 
 def cmd_watch(args) -> int:
-    from qcmon.live import Monitor
+    from qcmon.monitor.loop import Monitor
 
     from qcmon.ui.watch import run_watch
 

@@ -12,7 +12,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.ui.watch import run_watch
 
 

@@ -363,10 +363,10 @@ def test_cli_exit_status_and_only_flagged(archive, tmp_path, capsys):
 def test_rerun_reuses_records_without_reading_frames(archive, tmp_path, monkeypatch):
     import shutil
 
-    import qcmon.live
+    import qcmon.monitor.loop
 
     calls = {"source": 0, "run": 0}
-    real_source, real_run = qcmon.live.SessionSource, qcmon.live.Monitor.run
+    real_source, real_run = qcmon.monitor.loop.SessionSource, qcmon.monitor.loop.Monitor.run
 
     def counting_source(*a, **k):
         calls["source"] += 1
@@ -376,8 +376,8 @@ def test_rerun_reuses_records_without_reading_frames(archive, tmp_path, monkeypa
         calls["run"] += 1
         return real_run(self, *a, **k)
 
-    monkeypatch.setattr(qcmon.live, "SessionSource", counting_source)
-    monkeypatch.setattr(qcmon.live.Monitor, "run", counting_run)
+    monkeypatch.setattr(qcmon.monitor.loop, "SessionSource", counting_source)
+    monkeypatch.setattr(qcmon.monitor.loop.Monitor, "run", counting_run)
     # the archive copied elsewhere (copy2 keeps modification times) with its audit folder
     root, out = tmp_path / "lab", tmp_path / "audit"
     shutil.copytree(archive["root"], root)

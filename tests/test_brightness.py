@@ -208,7 +208,7 @@ def test_gain_step_in_the_engine_is_an_event_restarts_and_is_never_normal():
     # verdict is a warning with the step listed. (The step detector itself is held against outside data above.)
     from qcmon.engine import Engine, EngineSettings
     from qcmon.frames import Frame
-    from qcmon.live import step_event
+    from qcmon.monitor.loop import step_event
     from qcmon.record.journal import rows_to_traces
     from qcmon.simulate import simulate
     from qcmon.simulate.scenarios import scenario_config

@@ -30,7 +30,7 @@ from outside_data import detect, nuclei_2d
 from qcmon.engine import Engine, EngineSettings
 from qcmon.errors import ProfileError, display_path
 from qcmon.frames import RATE_UNKNOWN, UNTIMED_FRAMES_PER_S, Frame
-from qcmon.live import Monitor, MonitorOptions, PaceEstimate
+from qcmon.monitor.loop import Monitor, MonitorOptions, PaceEstimate
 from qcmon.record.journal import read_events, read_traces
 from qcmon.thresholds import load_profile
 from reliability_data import run_qcmon, snapshot

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.record.journal import read_events, read_traces
 from qcmon.simulate import write_session
 from qcmon.simulate.scenarios import scenario_config
@@ -227,7 +227,7 @@ def test_out_dir_inside_the_session_is_refused(drift_session):
 
 
 def test_default_record_goes_beside_the_session(tmp_path):
-    from qcmon.live import default_out_dir
+    from qcmon.monitor.loop import default_out_dir
 
     (tmp_path / "fov2").mkdir()
     assert default_out_dir(tmp_path / "fov2") == (tmp_path / "fov2.qcmon").resolve()

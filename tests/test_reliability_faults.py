@@ -2,7 +2,7 @@
 a writer that pauses. Nothing measured is lost, no frame is measured twice.
 
 The contract checked is qcmon's own (see qcmon.record.journal: "a crash, kill -9 or power cut loses at most the last
-second"; qcmon.live: "only frames after the last recorded one are appended"); the frames come from qcmon's
+second"; qcmon.monitor.loop: "only frames after the last recorded one are appended"); the frames come from qcmon's
 simulator, written live by a separate process.
 """
 
@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.record.journal import LOCK_FILE, read_traces
 from qcmon.simulate import scenario_config, write_session
 from reliability_data import good_pages, qcmon_cmd, run_qcmon, snapshot, wait_until

@@ -25,7 +25,7 @@ from hypothesis import strategies as st
 
 from qcmon.errors import FrameError
 from qcmon.frames import Frame
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.sources import tiffpages
 from qcmon.sources.session import SessionSource
 from reliability_data import good_pages, problem_events, recorded_pages, snapshot

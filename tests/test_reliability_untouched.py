@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 
 from qcmon.audit import AuditOptions, run_audit
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.simulate import scenario_config, write_session
 from reliability_data import qcmon_cmd, run_qcmon, snapshot
 
@@ -88,7 +88,7 @@ def test_summarize_of_a_read_only_session(tmp_path, finished):
 @pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="lists open files through Linux's /proc")
 def test_while_watching_no_frame_file_is_open_during_measurement(tmp_path, finished, monkeypatch):
     # Some systems refuse to rename or delete a file another program holds open: while the microscope writes, a
-    # batch of frames is read and its file closed before the frames are measured (qcmon.live.Monitor._frames).
+    # batch of frames is read and its file closed before the frames are measured (qcmon.monitor.loop.Monitor._frames).
     # A finished session is measured as it is read, its file open meanwhile: the check sees both.
     from qcmon.engine import Engine
 

@@ -404,9 +404,9 @@ def test_on_alarm_command_that_hangs_is_stopped_with_what_it_started(tmp_path):
                     tmp_path / "r", "--on-alarm", hang, timeout=120)
     took = time.monotonic() - t0
     assert res.returncode == 0, res.stderr
-    import qcmon.live
+    import qcmon.monitor.loop
 
-    ALARM_COMMAND_LIMIT_S = getattr(qcmon.live, "ALARM_COMMAND_LIMIT_S", 10.0)  # (10 s: an earlier version's wait)
+    ALARM_COMMAND_LIMIT_S = getattr(qcmon.monitor.loop, "ALARM_COMMAND_LIMIT_S", 10.0)  # (10 s: an earlier version's wait)
     assert took < ALARM_COMMAND_LIMIT_S + 20, took  # the three runs waited for side by side, not one after another
     left = [p for p in psutil.process_iter(["cmdline"]) if marker in " ".join(p.info["cmdline"] or [])]
     assert not left, left

@@ -16,7 +16,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 import qcmon.monitor.split
-from qcmon.live import Monitor, MonitorOptions
+from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.sources import SessionSource
 from qcmon.monitor.split import plan_chunks, warm_start
 

@@ -231,10 +231,10 @@ def test_nothing_arriving_is_news_and_a_new_reference_waits_for_frames(tmp_path,
     import threading
     import time
 
-    import qcmon.live as live
+    import qcmon.monitor.loop as live
     from qcmon.ui.console import format_event
     from qcmon.events import Event
-    from qcmon.live import Monitor, MonitorOptions
+    from qcmon.monitor.loop import Monitor, MonitorOptions
     from qcmon.simulate import write_session
     from qcmon.simulate.scenarios import scenario_config
 
@@ -317,7 +317,7 @@ def test_console_and_dashboard_show_advice_caution_and_no_recovery_at_the_end():
 def test_after_a_resume_the_status_counts_every_frame_of_the_session(tmp_path):
     import shutil
 
-    from qcmon.live import Monitor, MonitorOptions
+    from qcmon.monitor.loop import Monitor, MonitorOptions
     from qcmon.simulate import write_session
     from qcmon.simulate.scenarios import scenario_config
 
@@ -378,7 +378,7 @@ def test_an_empty_folder_says_it_waits_for_the_first_frame(tmp_path):
     import threading
     import time
 
-    from qcmon.live import WAITING_FIRST, Monitor, MonitorOptions
+    from qcmon.monitor.loop import WAITING_FIRST, Monitor, MonitorOptions
 
     seen = []
 

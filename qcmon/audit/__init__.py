@@ -18,7 +18,7 @@ several roots are given). Nothing is ever written into the ROOTs.
 What it writes (``--out DIR``)
 ------------------------------
 - ``sessions/<path>.qcmon/``: each session's record (``traces.csv``, ``events.jsonl``, ``summary.json``,
-  ``report.html``, ``exclude.csv``, ``reference.tif``), measured by :class:`qcmon.live.Monitor` with
+  ``report.html``, ``exclude.csv``, ``reference.tif``), measured by :class:`qcmon.monitor.loop.Monitor` with
   ``follow=False``: the same engine as the live watch.
 - ``sessions/<path>.qcmon.json``: the manifest the record was made from: names, sizes and modification times of
   the frame files (and z-stack), qcmon version, profile name and SHA-256 of its resolved limits, and the

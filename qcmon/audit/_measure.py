@@ -120,7 +120,7 @@ def _error_text(err: BaseException) -> str:
 
 
 def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
-    """Measure one session through :class:`qcmon.live.Monitor` (``follow=False``) into ``task["record"]``.
+    """Measure one session through :class:`qcmon.monitor.loop.Monitor` (``follow=False``) into ``task["record"]``.
 
     Never raises for a bad session: the outcome carries the error. Writes the manifest beside the record.
 
@@ -148,7 +148,7 @@ def measure_session(task: dict, plots: PlotWorkers | None = None) -> dict:
     try:
         if not task["frame_files"]:
             raise ValueError(f"{task['path']}: empty folder, no frame files")
-        from qcmon.live import Monitor, MonitorOptions
+        from qcmon.monitor.loop import Monitor, MonitorOptions
 
         if record.exists():
             shutil.rmtree(record)  # our own stale record, never the microscope's files
