@@ -29,7 +29,7 @@ from qcmon.errors import FrameError
 from qcmon.events import Event
 from qcmon.frames import UNTIMED_FRAMES_PER_S, Frame
 from qcmon.metrics.brightness import BrightnessTracker
-from qcmon.metrics._imageops import bin_image
+from qcmon.metrics import bin_image
 from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma

@@ -347,7 +347,7 @@ def _read_frame(source: str, page: int, session: str | None, dataset: str | None
     from qcmon.sources.arrays import ArrayStream, container_kind
 
     if container_kind(str(path)) is not None:  # HDF5, NWB, Zarr: the series' frame number `page`
-        from qcmon.sources._drain import drain
+        from qcmon.sources import drain
 
         stream = ArrayStream(str(path), dataset=dataset)
         stream.skip_frames = page

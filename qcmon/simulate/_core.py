@@ -10,7 +10,7 @@ import numpy as np
 from qcmon.simulate._activity import CalciumState, indicator_fluorescence
 from qcmon.simulate._config import SimConfig
 from qcmon.simulate._detector import detect
-from qcmon.simulate._motion import Trajectory, _ou, make_trajectory
+from qcmon.simulate._motion import Trajectory, make_trajectory, ornstein_uhlenbeck
 from qcmon.simulate._specimen import Specimen
 
 __all__ = ["Simulator", "SimResult", "simulate", "iter_pages", "TRUTH_COLUMNS"]
@@ -80,8 +80,8 @@ class Simulator:
         self._dt = 1.0 / (c.frame_rate_hz * c.planes)
         for _ in range(int(_BURN_IN_S / self._dt)):
             self._calcium.step(self._dt)
-        self._np_fluct = 1.0 + _ou(tr.time_s.size, self._dt, c.neuropil_tau_s, c.neuropil_fluctuation,
-                                   rng_activity)
+        self._np_fluct = 1.0 + ornstein_uhlenbeck(tr.time_s.size, self._dt, c.neuropil_tau_s,
+                                                  c.neuropil_fluctuation, rng_activity)
         self._f_rest = self._fluor(np.array([c.ca_rest_nm]))[0]
         # scale each channel so that its resting mean at the start is mean_photons_per_px × brightness
         rest = self.specimen.render(0.0, 0.0, 0.0, self._rest_weights(bright=False), self._neuropil_weights(1.0))

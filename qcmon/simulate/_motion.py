@@ -38,7 +38,7 @@ class Trajectory:
     bleach: np.ndarray
 
 
-def _ou(n: int, dt: float, tau: float, sigma: float, rng: np.random.Generator) -> np.ndarray:
+def ornstein_uhlenbeck(n: int, dt: float, tau: float, sigma: float, rng: np.random.Generator) -> np.ndarray:
     """Ornstein-Uhlenbeck samples starting at 0 (stationary standard deviation ``sigma``)."""
     a = np.exp(-dt / tau)
     noise = rng.standard_normal(n) * sigma * np.sqrt(1.0 - a * a)
@@ -57,7 +57,7 @@ def make_trajectory(config: SimConfig, rng: np.random.Generator) -> Trajectory:
     t = k * dt
     shifts = []
     for _axis in range(2):
-        s = _ou(k.size, dt, c.slow_drift_tau_s, c.slow_drift_px, rng)
+        s = ornstein_uhlenbeck(k.size, dt, c.slow_drift_tau_s, c.slow_drift_px, rng)
         s = s + c.jitter_px * rng.standard_normal(k.size)
         shifts.append(s)
     dx, dy = shifts
@@ -69,8 +69,8 @@ def make_trajectory(config: SimConfig, rng: np.random.Generator) -> Trajectory:
         inside = (t >= start) & (t < start + duration)
         taper = np.where(inside, np.sin(np.pi * np.clip((t - start) / duration, 0, 1)) ** 2, 0.0)
         # fast wander (0.2 s correlation) scaled to the burst amplitude, zero outside the burst
-        bx = _ou(k.size, dt, 0.2, amplitude * np.sqrt(2.0), rng)
-        by = _ou(k.size, dt, 0.2, amplitude * np.sqrt(2.0), rng)
+        bx = ornstein_uhlenbeck(k.size, dt, 0.2, amplitude * np.sqrt(2.0), rng)
+        by = ornstein_uhlenbeck(k.size, dt, 0.2, amplitude * np.sqrt(2.0), rng)
         dx = dx + bx * taper
         dy = dy + by * taper
     z = c.z_drift_um_per_min * t / 60.0

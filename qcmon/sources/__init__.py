@@ -2,11 +2,13 @@
 
 - :class:`SessionSource` reads a session folder (TIFF pages, raw streams with a sidecar) or one file.
 - :class:`FolderWatcher` wakes a consumer when the folder changes; :func:`iter_live` ties the two together.
+- :func:`drain` takes every frame of a stream's read at once (also for the report, which reads one page back).
 """
 
 from __future__ import annotations
 
+from qcmon.sources._drain import drain
 from qcmon.sources.session import SessionSource, natural_key
 from qcmon.sources.watcher import FolderWatcher, iter_live
 
-__all__ = ["FolderWatcher", "SessionSource", "iter_live", "natural_key"]
+__all__ = ["FolderWatcher", "SessionSource", "drain", "iter_live", "natural_key"]
