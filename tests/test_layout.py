@@ -113,6 +113,55 @@ def private_reaches(modules: dict[str, Path]) -> list[str]:
     return sorted(bad)
 
 
+#: The rooms of the package from the bottom up (the contributor guide's diagram): a module imports from its own room
+#: or from rooms on lower floors only, never sideways or up.
+FLOORS: tuple[dict[str, tuple[str, ...]], ...] = (
+    {"vocabulary": ("qcmon", "qcmon.frames", "qcmon.columns", "qcmon.events", "qcmon.status", "qcmon.errors")},
+    {"metrics": ("qcmon.metrics",), "sources": ("qcmon.sources",), "simulate": ("qcmon.simulate",)},
+    {"engine": ("qcmon.engine",), "thresholds": ("qcmon.thresholds", "qcmon.advice")},
+    {"record": ("qcmon.record",)},
+    {"monitor": ("qcmon.monitor",), "arguments": ("qcmon.arguments",)},
+    {"ui": ("qcmon.ui",), "audit": ("qcmon.audit",)},
+    {"entry": ("qcmon.cli", "qcmon.demo", "qcmon.__main__")},
+)
+
+
+def room_of(module: str) -> tuple[int, str]:
+    """``(floor, room)`` of a module: the room whose longest prefix it carries."""
+    best = None
+    for floor, rooms in enumerate(FLOORS):
+        for room, prefixes in rooms.items():
+            for prefix in prefixes:
+                if module == prefix or (prefix != "qcmon" and module.startswith(prefix + ".")):
+                    if best is None or len(prefix) > best[0]:
+                        best = (len(prefix), floor, room)
+    if best is None:
+        raise LookupError(f"{module} is in no room of FLOORS: give it one (and a place in DEVELOPERS.md)")
+    return best[1], best[2]
+
+
+def upward_imports(graph: dict[str, set[str]]) -> list[str]:
+    """Each import that goes sideways (another room on the same floor) or up, as ``"importer -> imported"``."""
+    bad = []
+    for name, targets in graph.items():
+        floor, room = room_of(name)
+        for target in targets:
+            t_floor, t_room = room_of(target)
+            if t_room != room and t_floor >= floor:
+                bad.append(f"{name} ({room}) -> {target} ({t_room})")
+    return sorted(bad)
+
+
+def test_imports_go_down_the_floors_of_the_guide():
+    _, graph = _graph()
+    assert upward_imports(graph) == []
+    # the rule at work: the engine may not use the record, nor the metrics the sources
+    assert upward_imports({"qcmon.engine": {"qcmon.record.journal"}, "qcmon.metrics.focus": {"qcmon.sources"},
+                           "qcmon.record.journal": {"qcmon.record.summary", "qcmon.events"}}) == [
+        "qcmon.engine (engine) -> qcmon.record.journal (record)",
+        "qcmon.metrics.focus (metrics) -> qcmon.sources (sources)"]
+
+
 def test_the_package_has_no_import_circle():
     modules, graph = _graph()
     assert len(modules) > 50  # the walk found the package (a wrong root would pass on nothing)
