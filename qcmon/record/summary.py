@@ -1,5 +1,5 @@
-"""The end-of-session summary (``summary.json``), the frame ranges to exclude (``exclude.csv``) and rebuilding both
-(and ``report.html``) from the appended record alone.
+"""The end-of-session summary (``summary.json``) and the frame ranges to exclude (``exclude.csv``), computed from the
+rows and events; :mod:`qcmon.record.outputs` writes them with ``report.html``, also rebuilt from the record alone.
 
 Keys of ``summary.json`` (schema ``qcmon.summary/1``). Statistics ignore unknown (NaN) values; a statistic with
 no data is ``null``. Over several channels/planes the top-level statistics pool every row (max, min, mean, RMS,
