@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 
@@ -135,6 +136,11 @@ def main(argv: list[str] | None = None) -> int:
         print("qcmon: aborted; the rows and events recorded so far are kept, no summary or report was written "
               "(running the same command again resumes the record and writes them)", file=sys.stderr)
         return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # the reader of our output went away (``qcmon profiles | head``): the way the Python documentation advises
+        # (signal module, "Note on SIGPIPE"): point stdout at devnull so that the exit flush does not fail again
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_ERROR
 
 
 def cmd_summarize(args) -> int:

@@ -216,9 +216,14 @@ class Profile:
 
 
 def profile_dirs() -> list[Path]:
-    """Folders searched for profiles by name: ``$QCMON_THRESHOLDS`` (``os.pathsep``-separated), then the bundled ones."""
+    """Folders searched for profiles by name: ``$QCMON_THRESHOLDS`` (``os.pathsep``-separated), then the bundled ones.
+
+    The bundled profiles are ``thresholds/`` at the top of a checkout (editable install) or ``qcmon/profiles/``
+    inside an installed package (pyproject.toml maps the one onto the other)."""
     dirs = [Path(p) for p in os.environ.get(_ENV, "").split(os.pathsep) if p]
-    dirs.append(Path(qcmon.__file__).resolve().parent.parent / "thresholds")
+    package = Path(qcmon.__file__).resolve().parent
+    installed = package / "profiles"
+    dirs.append(installed if installed.is_dir() else package.parent / "thresholds")
     return dirs
 
 

@@ -193,3 +193,31 @@ def test_the_checks_see_a_circle_and_a_private_import(tmp_path, monkeypatch):
         "qcmon.b:2 imports qcmon.inner._hidden, private to qcmon.inner",
         "qcmon.b:3 imports _f from qcmon.a",
     ]
+
+
+def test_pyproject_lists_every_package_and_bundles_the_profiles():
+    # the package list is written out (the profiles map from thresholds/ onto qcmon.profiles), so a new package
+    # folder must be added there or it would be missing from an installed qcmon
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    root = PACKAGE_DIR.parent
+    conf = tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]
+    folders = {_module_name(p.parent / "__init__.py") for p in PACKAGE_DIR.rglob("__init__.py")}
+    assert set(conf["packages"]) == folders | {"qcmon.profiles"}
+    assert conf["package-dir"]["qcmon.profiles"] == "thresholds"
+    assert "*.toml" in conf["package-data"]["qcmon.profiles"]
+    assert sorted((root / "thresholds").glob("*.toml")), "no bundled profile in thresholds/"
+
+
+def test_profiles_are_found_where_an_installed_package_keeps_them(tmp_path, monkeypatch):
+    # an installed (not editable) qcmon has no thresholds/ beside the package, only qcmon/profiles/
+    import qcmon.thresholds as th
+
+    pkg = tmp_path / "site" / "qcmon"
+    (pkg / "profiles").mkdir(parents=True)
+    (pkg / "__init__.py").write_text("")
+    monkeypatch.setattr(th.qcmon, "__file__", str(pkg / "__init__.py"))
+    monkeypatch.delenv("QCMON_THRESHOLDS", raising=False)
+    assert th.profile_dirs() == [pkg / "profiles"]
