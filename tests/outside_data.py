@@ -28,6 +28,7 @@ from __future__ import annotations
 import functools
 import glob
 import io
+import math
 import os
 import zipfile
 from pathlib import Path
@@ -35,7 +36,8 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-__all__ = ["OutsideDataMissing", "nuclei_2d", "nuclei_3d", "specimen_crop", "detect", "emva1288_modules"]
+__all__ = ["OutsideDataMissing", "nuclei_2d", "nuclei_3d", "specimen_crop", "living_specimen", "detect",
+           "emva1288_modules"]
 
 _REPO = Path(__file__).resolve().parents[1]
 
@@ -93,6 +95,33 @@ def specimen_crop(image: np.ndarray, shape: tuple[int, int], dy: float, dx: floa
     sub = ndimage.shift(image[r0:r1, c0:c1].astype(np.float64), (dy, dx), order=3, mode="nearest")
     out = sub[top - r0:top - r0 + h, left - c0:left - c0 + w]
     return np.clip(out, 0, None)
+
+
+def living_specimen(shape: tuple[int, int], n_frames: int, rng: np.random.Generator, *, photons_scale: float = 1.0,
+                    background: float = 2.0, motion_px: float = 0.0, rate_hz: float = 0.0, fs: float = 30.0):
+    """Expected photons per pixel of ``n_frames`` frames of the real specimen :func:`nuclei_2d`, living and moving.
+
+    Each frame is :func:`specimen_crop` of the image (× ``photons_scale``, + ``background`` photons) moved by a
+    random shift uniform in ±``motion_px`` on each axis (residual motion, drawn anew for every frame), and its
+    nuclei (the brightest 30 % of the image, labelled by ``scipy.ndimage.label``) carry calcium-like transients:
+    events at ``rate_hz`` per nucleus, ΔF/F uniform in 0.3–1.0, exponential decay of 0.7 s at ``fs`` frames/s
+    (common practice, no source), stationary from the first frame. Yields (M, N) float arrays.
+    """
+    from scipy import ndimage
+
+    image = nuclei_2d().astype(np.float64)
+    labels, n = ndimage.label(image > np.percentile(image, 70))
+    decay = math.exp(-1.0 / (0.7 * fs))
+    level = np.zeros(n + 1)
+    warm = int(round(5.0 * fs))  # the activity runs 5 s before the first frame
+    for j in range(warm + n_frames):
+        if rate_hz > 0:
+            level[1:] = level[1:] * decay + np.where(rng.random(n) < rate_hz / fs, rng.uniform(0.3, 1.0, n), 0.0)
+        if j < warm:
+            continue
+        lit = image * (1.0 + level[labels])
+        dy, dx = rng.uniform(-motion_px, motion_px, 2) if motion_px else (0.0, 0.0)
+        yield specimen_crop(lit, shape, float(dy), float(dx)) * photons_scale + background
 
 
 def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: float = 1.0, offset: float = 0.0,
