@@ -125,7 +125,7 @@ def living_specimen(shape: tuple[int, int], n_frames: int, rng: np.random.Genera
 
 
 def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: float = 1.0, offset: float = 0.0,
-           read_noise_dn: float = 0.0, bits: int = 16, dtype=np.uint16) -> np.ndarray:
+           read_noise_dn: float = 0.0, bits: int = 16, dtype=np.uint16, gain_shape: float | None = None) -> np.ndarray:
     """One frame of the EMVA 1288 linear camera model: Poisson photons × gain + offset + Gaussian dark noise.
 
     Parameters
@@ -141,9 +141,16 @@ def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: floa
     bits : int
         Digitiser bits n: values are rounded and clipped to [0, 2ⁿ − 1] (a 12-bit digitiser in a 16-bit file:
         ``bits=12, dtype=np.uint16``).
+    gain_shape : float, optional
+        A multiplying detector (photomultiplier): each photon's gain is gamma-distributed with mean ``gain`` and
+        this shape k (excess noise factor (k + 1) / k; the sum of N photons' gains is gamma with shape N·k).
+        None: the camera model's constant gain.
     """
     electrons = rng.poisson(np.clip(expected_photons, 0, None)).astype(np.float64)
-    dn = electrons * gain + offset
+    if gain_shape is None:
+        dn = electrons * gain + offset
+    else:
+        dn = offset + np.where(electrons > 0, rng.gamma(np.maximum(electrons, 1) * gain_shape, gain / gain_shape), 0.0)
     if read_noise_dn:
         dn += rng.normal(0.0, read_noise_dn, dn.shape)
     info = np.iinfo(dtype) if np.dtype(dtype).kind in "ui" else None

@@ -10,8 +10,8 @@ import numpy as np
 
 from qcmon.metrics._validate import as_image, finite_float, positive_int
 
-__all__ = ["CumulantDark", "DarkFrames", "MAX_DARK_SE_DN", "PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "is_structureless",
-           "photons_per_px", "shot_snr"]
+__all__ = ["CumulantDark", "DarkFrames", "MAX_DARK_SE_DN", "PhotonTransfer", "PhotonTransferResult",
+           "estimate_dark_level", "is_structureless", "k3_from_sums", "photons_per_px", "shot_snr"]
 
 #: Samples whose squared high-passed difference exceeds this many predicted variances are outliers (6 sigma).
 _OUTLIER_VAR = 36.0
@@ -279,6 +279,21 @@ class PhotonTransfer:
 
     def _add_triple(self, a: np.ndarray, b: np.ndarray, c: np.ndarray) -> None:
         """Accumulate Σ Δ, Σ Δ², Σ Δ³ of ``Δ = c - 2 b + a`` per fine bin of the neighbours' three-frame mean."""
+        x, nbr, delta, ok = self._triple_samples(a, b, c)
+        lo, scale = self._edges
+        idx = np.minimum((np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale).astype(np.intp), _FINE_BINS - 1)
+        dd = delta[ok]
+        d2 = dd * dd
+        acc = self._k3
+        acc[0] += np.bincount(idx, minlength=_FINE_BINS)
+        acc[1] += np.bincount(idx, weights=x[ok], minlength=_FINE_BINS)
+        acc[2] += np.bincount(idx, weights=dd, minlength=_FINE_BINS)
+        acc[3] += np.bincount(idx, weights=d2, minlength=_FINE_BINS)
+        acc[4] += np.bincount(idx, weights=d2 * dd, minlength=_FINE_BINS)
+        self.n_triples += 1
+
+    def _triple_samples(self, a: np.ndarray, b: np.ndarray, c: np.ndarray):
+        """Per stencil: the centre's three-frame mean, the neighbours' mean, Δ and whether the sample is used."""
         m = a.shape[0]
         centre = np.arange(1, m - 1, self.row_step)
         rows = np.concatenate((centre - 1, centre, centre + 1))
@@ -304,17 +319,7 @@ class PhotonTransfer:
         ok &= delta * delta <= _OUTLIER_VAR * 6.0 * predicted
         ok &= nbr + 6.0 * np.sqrt(predicted) < self.max_value
         ok &= grad2 <= _FLAT_GRAD * 12.0 * np.maximum(slope * nbr + intercept, 1e-6)
-        lo, scale = self._edges
-        idx = np.minimum((np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale).astype(np.intp), _FINE_BINS - 1)
-        dd = delta[ok]
-        d2 = dd * dd
-        acc = self._k3
-        acc[0] += np.bincount(idx, minlength=_FINE_BINS)
-        acc[1] += np.bincount(idx, weights=x[ok], minlength=_FINE_BINS)
-        acc[2] += np.bincount(idx, weights=dd, minlength=_FINE_BINS)
-        acc[3] += np.bincount(idx, weights=d2, minlength=_FINE_BINS)
-        acc[4] += np.bincount(idx, weights=d2 * dd, minlength=_FINE_BINS)
-        self.n_triples += 1
+        return x, nbr, delta, ok
 
     def cumulant_dark(self) -> CumulantDark | None:
         """The dark level where the line of κ₃(Δ) over the mean crosses zero, with its standard error, or None.
@@ -341,8 +346,7 @@ class PhotonTransfer:
         if n.size < 3:
             return None
         x = sx / n
-        # unbiased k-statistic k3 from power sums about zero (Fisher 1930; Kendall & Stuart, from memory)
-        k3 = (n * n * s3 - 3.0 * n * s1 * s2 + 2.0 * s1 ** 3) / (n * (n - 1.0) * (n - 2.0))
+        k3 = k3_from_sums(n, s1, s2, s3)
         v = 6.0 * np.maximum(gain * x + intercept, 1e-3 * gain)
         w = n / (6.0 * v ** 3)
         if np.ptp(x) <= 0:
@@ -674,6 +678,16 @@ class DarkFrames:
         if not (math.isfinite(self.lit_min_mean) and self.lit_min_mean > level + 3.0 * max(read, 0.5)):
             return None
         return level, read
+
+
+def k3_from_sums(n, s1, s2, s3):
+    """Unbiased k-statistic k₃ (estimate of the third cumulant) from the count and the power sums Σx, Σx², Σx³.
+
+    ``k3 = (n² S3 - 3 n S1 S2 + 2 S1³) / (n (n - 1) (n - 2))`` (Fisher 1930; the formula of
+    ``scipy.stats.kstat(x, 3)``). Works elementwise on arrays of bins.
+    """
+    n, s1, s2, s3 = (np.asarray(v, dtype=np.float64) for v in (n, s1, s2, s3))
+    return (n * n * s3 - 3.0 * n * s1 * s2 + 2.0 * s1 ** 3) / (n * (n - 1.0) * (n - 2.0))
 
 
 def _weighted_line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float]:
