@@ -702,6 +702,19 @@ class Engine:
                     f"{st.dark_level:.1f} DN, {st.dark_origin})"))
         return st.photon_dark
 
+    @staticmethod
+    def _dark_to_carry(st: _Stream, frame: Frame) -> tuple[float, float, str] | None:
+        """The third-cumulant dark level photon transfer holds before a brightness step, to carry over it (a gain
+        or power step leaves the detector's offset as it was; the new triples replace it once they can)."""
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            res = st.ptc.result()
+        if not res.dark_origin.startswith("third cumulant") or not math.isfinite(res.dark_level_dn):
+            return None
+        if st.ptc.carried is not None and res.dark_origin == st.ptc.carried[2]:
+            return st.ptc.carried
+        return res.dark_level_dn, res.dark_se_dn, f"third cumulant, before the brightness step at frame {frame.index}"
+
     def _sort_frames(self, st: _Stream, frames: list[Frame]) -> list[bool]:
         """Sort held-back frames into dark (no structure) and lit before they are measured; their flags wait in
         ``st.pending_dark`` for :meth:`_measure`. Returns the flags."""
@@ -882,8 +895,10 @@ class Engine:
                 # detector gain or laser power changed: photon transfer starts again (the dark frames stay), and
                 # photons per pixel are blank until a new fit passes its checks
                 dark = st.ptc.dark
+                carried = self._dark_to_carry(st, frame)
                 st.ptc.reset()
                 st.ptc.dark = dark
+                st.ptc.carried = carried
                 st.ptc.pair_step = 1
                 st.gain, st.refit_gain = NAN, True
             elif st.refit_gain and st.ptc.n_pairs >= 30 and st.ptc.n_pairs % 10 == 0 \

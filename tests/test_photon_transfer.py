@@ -154,6 +154,33 @@ def test_third_cumulant_dark_level_of_a_multiplying_detector():
     assert_allclose(pt.result().gain_dn_per_photon, 10.0 * 5 / 4, rtol=0.10)  # E[G²]/E[G] = g (k+1)/k
 
 
+def test_a_dark_level_carried_over_a_reset_serves_until_the_new_triples_give_one():
+    # After a brightness step the engine resets photon transfer and carries the third-cumulant dark level over it
+    # (a gain or power step leaves the offset): the carried level is used while the new triples are too few, and
+    # the new estimate replaces it once within its limit (real specimen, EMVA 1288 camera model).
+    pt = _living_triples(240, (144, 144), scale=0.2, background=0.5)
+    own = pt.result()
+    from outside_data import detect, living_specimen
+
+    rng = np.random.default_rng(5)
+    fresh = PhotonTransfer(max_value=4095, pair_step=1, row_step=1)
+    fresh.carried = (own.dark_level_dn, own.dark_se_dn, "third cumulant, before the brightness step at frame 9")
+    frames = [detect(lam, rng, gain=2.5, offset=100.0, read_noise_dn=8.0, bits=12)
+              for lam in living_specimen((144, 144), 8, rng, photons_scale=0.2, background=0.5)]
+    for i in range(1, len(frames)):
+        fresh.update(frames[i], frames[i - 1], frames[i - 2] if i >= 2 else None)
+    res = fresh.result()
+    assert res.dark_origin.endswith("frame 9") and res.dark_level_dn == own.dark_level_dn
+    new = fresh.cumulant_dark()
+    assert new is None or new.se_dn > 1.5  # the new triples: not yet
+    assert pt.carried is None
+    try:
+        pt.carried = (50.0, 0.1, "carried")
+        assert pt.result().dark_origin == "third cumulant"  # its own estimate, within its limit, comes first
+    finally:
+        pt.carried = None  # pt is shared (cached) with the other tests
+
+
 def test_an_uncertain_third_cumulant_leaves_the_dark_level_blank():
     # A bright specimen (background of 10+ photons) in a short session: the κ3 line must be extrapolated far to
     # its zero, its standard error is wider than the limit, and the dark level is blank with the reason

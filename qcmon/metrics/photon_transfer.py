@@ -212,11 +212,15 @@ class PhotonTransfer:
         self._line: tuple[float, float] | None = None
         self._chi2_dof = math.nan
         self._slope_se = math.nan
+        self._centre = (math.nan, math.nan)
         self.dark = DarkFrames()
         self.peak: tuple[float, float] | None = None
         # third-cumulant accumulators of frame triples, per fine bin: count, Σ mean, Σ Δ, Σ Δ², Σ Δ³
         self._k3 = np.zeros((5, _FINE_BINS))
         self.n_triples = 0
+        #: (dark level, standard error, origin) found before a reset (a gain or power step leaves the offset as it
+        #: was): used until the new triples give a dark level of their own. Set by the caller after :meth:`reset`.
+        self.carried: tuple[float, float, str] | None = None
 
     def update(self, frame, previous, before=None) -> bool:
         """Add the pair (``previous``, ``frame``) of the same channel and plane, and the triple with ``before``.
@@ -440,8 +444,11 @@ class PhotonTransfer:
         r2 = 1.0 - float(np.sum(w * resid**2)) / ss_tot if ss_tot > 0 else math.nan
         # w / 2 are inverse variances of the bin means (variance samples of Gaussian noise: var = 2 E[y]**2 / n)
         self._chi2_dof = float(np.sum(0.5 * w * resid**2)) / max(n.size - 2, 1)
-        dx = x - np.average(x, weights=w)
+        xm = np.average(x, weights=w)
+        dx = x - xm
         self._slope_se = math.sqrt(2.0 / max(float(np.dot(w, dx * dx)), 1e-300))
+        # the line at its weighted centre: the mean and its variance (uncorrelated with the slope's)
+        self._centre = (float(xm), 2.0 / float(np.sum(w)))
         return float(slope), float(intercept), r2, int(n.size)
 
     def find_zero_photon_peak(self, values) -> tuple[float, float] | None:
@@ -516,6 +523,20 @@ class PhotonTransfer:
         self.peak = (centre, spread)
         return self.peak
 
+    def _read_noise(self, intercept: float, gain: float, dark: float, dark_se: float) -> float:
+        """Read noise ``sqrt(intercept + K·D)``; NaN when its square is uncertain by more than half of it.
+
+        At the line's weighted centre x̄ the read noise² is ``ȳ - K (x̄ - D)``, whose variance is
+        ``var ȳ + (x̄ - D)² var K + K² var D`` (the centred mean and slope are uncorrelated): a high gain turns a
+        DN of dark level into K DN² of read noise², and a long extrapolation from x̄ multiplies the gain's error.
+        """
+        r2 = intercept + gain * dark
+        xm, var_ybar = self._centre
+        var = var_ybar + (xm - dark) ** 2 * self._slope_se ** 2 + gain ** 2 * dark_se ** 2
+        if not r2 > 0 or not math.sqrt(var) <= 0.5 * r2:
+            return math.nan
+        return math.sqrt(r2)
+
     def _break(self) -> str:
         """A break in the line: the lower and upper halves of the points (by samples) have different slopes."""
         n, x, y = self._points()
@@ -577,7 +598,12 @@ class PhotonTransfer:
         else:
             found = self.cumulant_dark()
             level, origin = math.nan, ""
-            if found is None:
+            if self.carried is not None and not (found is not None and found.se_dn <= MAX_DARK_SE_DN):
+                level, se, origin = self.carried
+                read = self._read_noise(intercept, slope, level, se)
+                if math.isnan(read):
+                    bias = "read noise uncertain: the dark level's error times the gain is beyond half of read noise²"
+            elif found is None:
                 bias = ("dark level unknown: no dark frames, and too few frame triples for the third-cumulant "
                         "estimate")
             elif not found.se_dn <= MAX_DARK_SE_DN:
@@ -586,8 +612,9 @@ class PhotonTransfer:
                         f"{found.n_samples} samples): needs dark frames or a longer session")
             else:
                 level, se, origin = found.dark_level_dn, found.se_dn, "third cumulant"
-                r2_read = intercept + slope * level
-                read = math.sqrt(r2_read) if r2_read >= 0 else 0.0
+                read = self._read_noise(intercept, slope, level, se)
+                if math.isnan(read):
+                    bias = "read noise uncertain: the dark level's error times the gain is beyond half of read noise²"
         return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias, se,
                                     -intercept / slope)
 
