@@ -476,3 +476,34 @@ def test_a_session_without_structure_gets_no_dark_level_from_itself():
     info = eng.stream_info()[(0, 0)]
     assert not info["dark_level_origin"].startswith("dark frames")
     assert not info.get("ptc_dark_origin", "").startswith("dark frames")
+
+
+def test_photons_per_px_start_once_a_trusted_dark_level_arrives_mid_session():
+    # A closed shutter in the middle of a session (6 dark frames between lit ones): until then the dark level is only
+    # the line's lower bound and photons per pixel are blank; from the next check on they are counted from the dark
+    # frames' level (EMVA 1288 dark images), said in a detector event — within 10 % of the truth (the real specimen
+    # nuclei_2d under the EMVA 1288 camera model, tests/outside_data.py).
+    from outside_data import detect, nuclei_2d, specimen_crop
+
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+
+    rng = np.random.default_rng(2)
+    lam = specimen_crop(nuclei_2d().astype(float), (128, 128), 0.0, 0.0) + 2.0
+    eng = Engine(EngineSettings(frame_rate_hz=30.0, photon_transfer_every=1))
+    kinds = ["lit"] * 40 + ["dark"] * 6 + ["lit"] * 60
+    rows = []
+    for i, kind in enumerate(kinds):
+        frame = detect(lam if kind == "lit" else np.zeros_like(lam), rng, gain=2.5, offset=100.0, read_noise_dn=8.0,
+                       bits=12)
+        rows += eng.process(Frame(data=frame, index=i, time_s=i / 30.0))
+    rows += eng.flush()
+    events = [e for e in eng.take_events() if e.kind == "detector" and "dark level" in e.message]
+    assert len(events) == 1 and "dark frames" in events[0].message
+    start = events[0].frame
+    assert 46 <= start <= 46 + 16
+    photons = np.array([r["photons_per_px"] for r in rows])
+    assert np.isnan(photons[:start]).all()
+    assert_allclose(np.median(photons[start:]), lam.mean(), rtol=0.10)
+    info = eng.stream_info()[(0, 0)]
+    assert "lower bound" in info["dark_level_origin"] and abs(info["ptc_dark_level_dn"] - 100.0) < 1.0
