@@ -517,10 +517,11 @@ class Engine:
         # frames without structure (closed shutter) give the dark level and read noise; pairs of a dark and a lit
         # frame are no photon-transfer sample
         dark = self._sort_frames(st, frames)
+        st.ptc.row_step, row_step = _startup_row_step(stack.shape[1:], st.ptc.row_step), st.ptc.row_step
         for i in range(1, len(frames)):
             if dark[i] == dark[i - 1]:
                 st.ptc.update(stack[i], stack[i - 1], stack[i - 2] if i >= 2 and dark[i - 2] == dark[i] else None)
-        st.ptc.pair_step = s.photon_transfer_every
+        st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
 
@@ -542,11 +543,12 @@ class Engine:
             # the lit frames tell dark frames from a flat, lit field; their pairs all count, as at a first start
             dark = self._sort_frames(st, frames)
             st.ptc.pair_step = 1
+            st.ptc.row_step, row_step = _startup_row_step(frames[0].data.shape, st.ptc.row_step), st.ptc.row_step
             for i in range(1, len(frames)):
                 if dark[i] == dark[i - 1]:
                     st.ptc.update(frames[i].data, frames[i - 1].data,
                                   frames[i - 2].data if i >= 2 and dark[i - 2] == dark[i] else None)
-            st.ptc.pair_step = s.photon_transfer_every
+            st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
             if s.dark_level is None:
                 self._set_dark_level(st, np.stack([f.data for f in frames]).astype(np.float32, copy=False))
         use = [f for f, ok in zip(frames, flags) if ok]
@@ -950,6 +952,19 @@ class Engine:
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
 
+
+
+#: Photon-transfer samples per start-up frame: the start-up pairs and triples read more rows than later ones (a
+#: one-time cost of about 20 ms a frame), so that the dark level of the first rows can come from the third cumulant.
+_STARTUP_SAMPLES = 1 << 17
+
+
+def _startup_row_step(shape: tuple[int, ...], row_step: int) -> int:
+    """The accumulator's row step for the start-up frames: about :data:`_STARTUP_SAMPLES` stencils a frame, never
+    fewer rows than later (``row_step``)."""
+    h, w = shape[0], shape[1]
+    rows = max(1, _STARTUP_SAMPLES // max(w - 2, 1))
+    return max(1, min(row_step, (h - 2) // rows))
 
 
 def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool:
