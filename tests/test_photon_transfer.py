@@ -11,6 +11,7 @@ from numpy.testing import assert_allclose
 from photometry_data import expose, field_of_view, fourier_shift_rows
 
 from qcmon.metrics.photon_transfer import (
+    MAX_DARK_SE_DN,
     PhotonTransfer,
     estimate_dark_level,
     k3_from_sums,
@@ -133,10 +134,10 @@ def test_third_cumulant_gives_the_dark_level_without_dark_frames(motion, rate):
     # Issue target on data not made by qcmon: camera-like detector (EMVA 1288 model, K = 2.5 DN/photon, 8 DN read
     # noise, offset 100 DN), no dark frames: dark level within 3 DN, gain within 10 %, read noise within 10 %; the
     # real specimen dim (0.5-photon background), still and moving ±0.3 px with calcium-like transients.
-    pt = _living_triples(240, (144, 144), scale=0.2, background=0.5, motion=motion, rate=rate)
+    pt = _living_triples(300, (192, 192), scale=0.2, background=0.5, motion=motion, rate=rate)
     res = pt.result()
     assert res.quality == "" and res.dark_origin == "third cumulant", res
-    assert abs(res.dark_level_dn - 100.0) < 3.0 and res.dark_se_dn <= 1.5
+    assert abs(res.dark_level_dn - 100.0) < 3.0 and res.dark_se_dn <= MAX_DARK_SE_DN
     assert_allclose(res.gain_dn_per_photon, 2.5, rtol=0.10)
     assert_allclose(res.read_noise_dn, math.hypot(8.0, math.sqrt(1 / 12)), rtol=0.10)
     found = pt.cumulant_dark()
@@ -158,7 +159,7 @@ def test_a_dark_level_carried_over_a_reset_serves_until_the_new_triples_give_one
     # After a brightness step the engine resets photon transfer and carries the third-cumulant dark level over it
     # (a gain or power step leaves the offset): the carried level is used while the new triples are too few, and
     # the new estimate replaces it once within its limit (real specimen, EMVA 1288 camera model).
-    pt = _living_triples(240, (144, 144), scale=0.2, background=0.5)
+    pt = _living_triples(300, (192, 192), scale=0.2, background=0.5)
     own = pt.result()
     from outside_data import detect, living_specimen
 
@@ -166,13 +167,13 @@ def test_a_dark_level_carried_over_a_reset_serves_until_the_new_triples_give_one
     fresh = PhotonTransfer(max_value=4095, pair_step=1, row_step=1)
     fresh.carried = (own.dark_level_dn, own.dark_se_dn, "third cumulant, before the brightness step at frame 9")
     frames = [detect(lam, rng, gain=2.5, offset=100.0, read_noise_dn=8.0, bits=12)
-              for lam in living_specimen((144, 144), 8, rng, photons_scale=0.2, background=0.5)]
+              for lam in living_specimen((192, 192), 8, rng, photons_scale=0.2, background=0.5)]
     for i in range(1, len(frames)):
         fresh.update(frames[i], frames[i - 1], frames[i - 2] if i >= 2 else None)
     res = fresh.result()
     assert res.dark_origin.endswith("frame 9") and res.dark_level_dn == own.dark_level_dn
     new = fresh.cumulant_dark()
-    assert new is None or new.se_dn > 1.5  # the new triples: not yet
+    assert new is None or new.se_dn > MAX_DARK_SE_DN  # the new triples: not yet
     assert pt.carried is None
     try:
         pt.carried = (50.0, 0.1, "carried")
@@ -188,7 +189,7 @@ def test_an_uncertain_third_cumulant_leaves_the_dark_level_blank():
     pt = _living_triples(60, (96, 96), scale=1.0, background=2.0)
     res = pt.result()
     assert math.isnan(res.dark_level_dn) and res.dark_origin == "" and "uncertain" in res.bias
-    assert res.dark_se_dn > 1.5
+    assert res.dark_se_dn > MAX_DARK_SE_DN
     assert res.dark_floor_dn < 100.0  # the intercept alone: a lower bound
 
 
@@ -511,19 +512,20 @@ def test_photons_per_px_start_once_a_trusted_dark_level_arrives_mid_session():
 
 def test_start_up_frames_give_the_dark_level_of_a_dim_session_from_the_first_row():
     # Dim camera-like data without dark frames (the real specimen nuclei_2d × 0.2 + 0.5 photons, EMVA 1288 model,
-    # K = 2.5 DN/photon, 8 DN read noise, offset 100 DN): the start-up frames read more rows, and their triples give
+    # K = 2.5 DN/photon, 8 DN read noise, offset 100 DN): the start-up frames read every row, and their triples give
     # the dark level by the third cumulant before the first row — so brightness and photons per pixel count from
-    # it from the start (targets of the issue: dark level within 3 DN, photons per pixel within 10 %).
+    # it from the start (targets of the issue: dark level within 3 DN, photons per pixel within 10 %). The stated
+    # error at start-up is 0.7-1.0 DN here (seeds 4-7; conservative for consecutive triples, docs/accuracy.md).
     from outside_data import detect, nuclei_2d, specimen_crop
 
     from qcmon.engine import Engine, EngineSettings
     from qcmon.frames import Frame
 
     rng = np.random.default_rng(4)
-    lam = specimen_crop(nuclei_2d().astype(float), (384, 384), 0.0, 0.0) * 0.2 + 0.5
-    eng = Engine(EngineSettings(frame_rate_hz=30.0))
+    lam = specimen_crop(nuclei_2d().astype(float), (448, 448), 0.0, 0.0) * 0.2 + 0.5
+    eng = Engine(EngineSettings(frame_rate_hz=30.0, reference_frames=60))
     rows = []
-    for i in range(36):
+    for i in range(61):
         frame = detect(lam, rng, gain=2.5, offset=100.0, read_noise_dn=8.0, bits=12)
         rows += eng.process(Frame(data=frame, index=i, time_s=i / 30.0))
     rows += eng.flush()
