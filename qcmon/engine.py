@@ -163,6 +163,8 @@ class _Stream:
     prev2_shift: tuple[int, int] = (0, 0)
     photon_dark: float = NAN         # dark level of photons per pixel: NaN while it is unknown (see _photon_dark)
     photon_dark_checked: int = 0     # photon-transfer triples at the last look for a third-cumulant dark level
+    photon_dark_origin: str = ""     # where photon_dark came from, and its standard error (NaN if not stated)
+    photon_dark_se: float = NAN
     n_measured: int = 0
     last_z: tuple[float, float] = (NAN, NAN)
     last_focus: tuple[float, float] = (NAN, NAN)
@@ -522,6 +524,7 @@ class Engine:
             if dark[i] == dark[i - 1]:
                 st.ptc.update(stack[i], stack[i - 1], stack[i - 2] if i >= 2 and dark[i - 2] == dark[i] else None)
         st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
+        st.ptc.triple_row_step = _startup_row_step(stack.shape[1:], row_step, _TRIPLE_SAMPLES)
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
 
@@ -683,7 +686,7 @@ class Engine:
         if math.isfinite(st.photon_dark):
             return st.photon_dark
         if st.dark_origin.startswith(self._TRUSTED_DARK):
-            st.photon_dark = st.dark_level
+            st.photon_dark, st.photon_dark_origin = st.dark_level, st.dark_origin
             return st.photon_dark
         if st.ptc is None or st.ptc.n_triples < st.photon_dark_checked + 16:
             return NAN
@@ -694,6 +697,7 @@ class Engine:
         if res.quality or not math.isfinite(res.dark_level_dn):
             return NAN
         st.photon_dark = float(res.dark_level_dn)
+        st.photon_dark_origin, st.photon_dark_se = res.dark_origin, res.dark_se_dn
         t = self._time(frame)
         se = f" ± {res.dark_se_dn:.2g}" if math.isfinite(res.dark_se_dn) else ""
         self._events.append(Event(
@@ -706,16 +710,20 @@ class Engine:
 
     @staticmethod
     def _dark_to_carry(st: _Stream, frame: Frame) -> tuple[float, float, str] | None:
-        """The third-cumulant dark level photon transfer holds before a brightness step, to carry over it (a gain
-        or power step leaves the detector's offset as it was; the new triples replace it once they can)."""
+        """The dark level to carry over a brightness step (a gain or power step leaves the detector's offset as it
+        was; new triples replace it once they can): photon transfer's third-cumulant level if it has one now, else
+        the one photons per pixel were counted from (found before the frames of the new gain mixed into the line)."""
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)
             res = st.ptc.result()
-        if not res.dark_origin.startswith("third cumulant") or not math.isfinite(res.dark_level_dn):
-            return None
         if st.ptc.carried is not None and res.dark_origin == st.ptc.carried[2]:
             return st.ptc.carried
-        return res.dark_level_dn, res.dark_se_dn, f"third cumulant, before the brightness step at frame {frame.index}"
+        where = f"before the brightness step at frame {frame.index}"
+        if res.dark_origin.startswith("third cumulant") and math.isfinite(res.dark_level_dn):
+            return res.dark_level_dn, res.dark_se_dn, f"third cumulant, {where}"
+        if math.isfinite(st.photon_dark):
+            return st.photon_dark, st.photon_dark_se, f"{st.photon_dark_origin}, {where}"
+        return None
 
     def _sort_frames(self, st: _Stream, frames: list[Frame]) -> list[bool]:
         """Sort held-back frames into dark (no structure) and lit before they are measured; their flags wait in
@@ -957,13 +965,16 @@ class Engine:
 #: Photon-transfer samples per start-up frame: the start-up pairs and triples read more rows than later ones (a
 #: one-time cost of about 20 ms a frame), so that the dark level of the first rows can come from the third cumulant.
 _STARTUP_SAMPLES = 1 << 17
+#: Stencils of each later frame triple (every ``photon_transfer_every``-th frame): the third cumulant needs more
+#: samples than the gain (about 2 ms a triple at 512², 0.14 ms a frame at every 16th; bench_photometry).
+_TRIPLE_SAMPLES = 1 << 16
 
 
-def _startup_row_step(shape: tuple[int, ...], row_step: int) -> int:
-    """The accumulator's row step for the start-up frames: about :data:`_STARTUP_SAMPLES` stencils a frame, never
-    fewer rows than later (``row_step``)."""
+def _startup_row_step(shape: tuple[int, ...], row_step: int, samples: int = _STARTUP_SAMPLES) -> int:
+    """A row step for the accumulator giving about ``samples`` stencils a frame, never fewer rows than
+    ``row_step``."""
     h, w = shape[0], shape[1]
-    rows = max(1, _STARTUP_SAMPLES // max(w - 2, 1))
+    rows = max(1, samples // max(w - 2, 1))
     return max(1, min(row_step, (h - 2) // rows))
 
 

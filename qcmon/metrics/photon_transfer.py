@@ -197,6 +197,9 @@ class PhotonTransfer:
         if self.n_bins < 3:
             raise ValueError(f"n_bins must be at least 3, got {n_bins}")
         self.row_step = positive_int(row_step, "row_step")
+        #: Row step of the frame triples (the third-cumulant dark level needs more samples than the gain; the
+        #: caller may read more rows for them); None: ``row_step``.
+        self.triple_row_step: int | None = None
         self.pair_step = positive_int(pair_step, "pair_step")
         self.reset()
 
@@ -300,7 +303,7 @@ class PhotonTransfer:
     def _triple_samples(self, a: np.ndarray, b: np.ndarray, c: np.ndarray):
         """Per stencil: the centre's three-frame mean, the neighbours' mean, Δ and whether the sample is used."""
         m = a.shape[0]
-        centre = np.arange(1, m - 1, self.row_step)
+        centre = np.arange(1, m - 1, self.triple_row_step or self.row_step)
         rows = np.concatenate((centre - 1, centre, centre + 1))
         fa, fb, fc = (f[rows].astype(np.float32) for f in (a, b, c))
         k = centre.size
