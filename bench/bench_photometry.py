@@ -160,6 +160,12 @@ def main() -> int:
         triple_us = _time_us(lambda: pt3.update(f2, f1, f0))
         if pt3.n_triples == before:
             print(f"{n:>5}² (no triple taken: the photon-transfer line did not fit)")
+        # the engine's later triples: every 4th row at most, about 2**15 stencils, never fewer rows than the pairs
+        pt3.triple_row_step = min(pt3.row_step, max(4, (n - 2) // max(1, (1 << 15) // (n - 2))))
+        engine_us = _time_us(lambda: pt3.update(f2, f1, f0))
+        print(f"{n:>5}² {'  same, triples every ' + str(pt3.triple_row_step) + ' rows':<34} {engine_us:>10.1f} "
+              f"{'PhotonTransfer.update (pair)':<34} {pair_us:>10.1f} {pair_us / engine_us:>7.2f}  (triple alone, "
+              f"amortised every 16th frame: {(engine_us - pair_us) / 16:.1f} µs)")
         print(f"{n:>5}² {'PhotonTransfer.update (pair+triple)':<34} {triple_us:>10.1f} {'PhotonTransfer.update (pair)':<34} "
               f"{pair_us:>10.1f} {pair_us / triple_us:>7.2f}  (triple alone, amortised every {PAIR_STEP}th frame: "
               f"{(triple_us - pair_us) / PAIR_STEP:.1f} µs)")

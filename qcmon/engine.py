@@ -524,7 +524,9 @@ class Engine:
             if dark[i] == dark[i - 1]:
                 st.ptc.update(stack[i], stack[i - 1], stack[i - 2] if i >= 2 and dark[i - 2] == dark[i] else None)
         st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
-        st.ptc.triple_row_step = _startup_row_step(stack.shape[1:], row_step, _TRIPLE_SAMPLES)
+        h, w = stack.shape[1:]
+        rows = max(1, _TRIPLE_SAMPLES // max(w - 2, 1))
+        st.ptc.triple_row_step = min(row_step, max(_TRIPLE_ROW_STEP, (h - 2) // rows))
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
 
@@ -965,9 +967,11 @@ class Engine:
 #: Photon-transfer samples per start-up frame: the start-up pairs and triples read more rows than later ones (a
 #: one-time cost of about 20 ms a frame), so that the dark level of the first rows can come from the third cumulant.
 _STARTUP_SAMPLES = 1 << 17
-#: Stencils of each later frame triple (every ``photon_transfer_every``-th frame): the third cumulant needs more
-#: samples than the gain (about 2 ms a triple at 512², 0.14 ms a frame at every 16th; bench_photometry).
-_TRIPLE_SAMPLES = 1 << 16
+#: Later frame triples (every ``photon_transfer_every``-th frame) read every ``_TRIPLE_ROW_STEP``-th row at most and
+#: about ``_TRIPLE_SAMPLES`` stencils, never fewer rows than the pairs: the third cumulant needs more samples than
+#: the gain, at a bounded cost (every 4th row at 256², 7th at 512², 8th at 1024²; bench_photometry).
+_TRIPLE_ROW_STEP = 4
+_TRIPLE_SAMPLES = 1 << 15
 
 
 def _startup_row_step(shape: tuple[int, ...], row_step: int, samples: int = _STARTUP_SAMPLES) -> int:
