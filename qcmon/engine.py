@@ -159,6 +159,12 @@ class _Stream:
     range: RangeFinder | None = None
     prev: np.ndarray | None = None
     prev_shift: tuple[int, int] = (0, 0)
+    prev2: np.ndarray | None = None  # the frame before prev when of the same kind (dark/lit): photon-transfer triples
+    prev2_shift: tuple[int, int] = (0, 0)
+    photon_dark: float = NAN         # dark level of photons per pixel: NaN while it is unknown (see _photon_dark)
+    photon_dark_checked: int = 0     # photon-transfer triples at the last look for a third-cumulant dark level
+    photon_dark_origin: str = ""     # where photon_dark came from, and its standard error (NaN if not stated)
+    photon_dark_se: float = NAN
     n_measured: int = 0
     last_z: tuple[float, float] = (NAN, NAN)
     last_focus: tuple[float, float] = (NAN, NAN)
@@ -456,13 +462,17 @@ class Engine:
             row["mean_f"] = mean_f
             row["snr"] = mean_f / sigma if sigma > 0 else NAN
             if math.isfinite(st.gain) and st.gain > 0:
-                row["photons_per_px"] = mean_f / st.gain
+                row["photons_per_px"] = (mean_raw - self._photon_dark(st, frame)) / st.gain
         if frame.index in st.pending_dark:  # sorted dark/lit with the first frames
             dark = st.pending_dark.pop(frame.index)
         else:
             dark = self._sort_dark(st, data, st.prev if st.prev_dark else None)
         if st.prev is not None and st.prev.shape == img.shape and dark == st.prev_dark:
-            st.ptc.update(img, st.prev)  # a dark and a lit frame make no photon-transfer sample
+            before = st.prev2 if st.prev2 is not None and st.prev2.shape == img.shape else None
+            st.ptc.update(img, st.prev, before)  # a dark and a lit frame make no photon-transfer sample
+            st.prev2 = st.prev
+        else:
+            st.prev2 = None
         st.prev, st.prev_shift, st.prev_dark = img, (0, 0), dark
         self._note_blank(st, frame, "before any reference: dark, flat or clipped frames, or fewer than two frames "
                                     "with structure")
@@ -509,10 +519,14 @@ class Engine:
         # frames without structure (closed shutter) give the dark level and read noise; pairs of a dark and a lit
         # frame are no photon-transfer sample
         dark = self._sort_frames(st, frames)
+        st.ptc.row_step, row_step = _startup_row_step(stack.shape[1:], st.ptc.row_step), st.ptc.row_step
         for i in range(1, len(frames)):
             if dark[i] == dark[i - 1]:
-                st.ptc.update(stack[i], stack[i - 1])
-        st.ptc.pair_step = s.photon_transfer_every
+                st.ptc.update(stack[i], stack[i - 1], stack[i - 2] if i >= 2 and dark[i - 2] == dark[i] else None)
+        st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
+        h, w = stack.shape[1:]
+        rows = max(1, _TRIPLE_SAMPLES // max(w - 2, 1))
+        st.ptc.triple_row_step = min(row_step, max(_TRIPLE_ROW_STEP, (h - 2) // rows))
         self._set_dark_level(st, stack)
         st.brightness = BrightnessTracker(window_s=s.bleach_window_s)
 
@@ -534,10 +548,12 @@ class Engine:
             # the lit frames tell dark frames from a flat, lit field; their pairs all count, as at a first start
             dark = self._sort_frames(st, frames)
             st.ptc.pair_step = 1
+            st.ptc.row_step, row_step = _startup_row_step(frames[0].data.shape, st.ptc.row_step), st.ptc.row_step
             for i in range(1, len(frames)):
                 if dark[i] == dark[i - 1]:
-                    st.ptc.update(frames[i].data, frames[i - 1].data)
-            st.ptc.pair_step = s.photon_transfer_every
+                    st.ptc.update(frames[i].data, frames[i - 1].data,
+                                  frames[i - 2].data if i >= 2 and dark[i - 2] == dark[i] else None)
+            st.ptc.pair_step, st.ptc.row_step = s.photon_transfer_every, row_step
             if s.dark_level is None:
                 self._set_dark_level(st, np.stack([f.data for f in frames]).astype(np.float32, copy=False))
         use = [f for f, ok in zip(frames, flags) if ok]
@@ -597,7 +613,7 @@ class Engine:
             st.zest = ZEstimator(np.stack([bin_image(p, b) for p in s.zstack]), z_step_um=s.z_step_um,
                                  reference=bin_image(st.reference, b))
         st.new_reference_requested = False
-        st.prev = None
+        st.prev = st.prev2 = None
         rows: list[dict] = []
         for fr in frames:
             rows.extend(self._measure_or_wait(st, fr))
@@ -651,9 +667,65 @@ class Engine:
                 st.dark_level, st.dark_origin = peak[0], "zero-photon peak"
                 return
         if not math.isnan(st.gain) and math.isfinite(res.dark_level_dn):
-            st.dark_level, st.dark_origin = float(res.dark_level_dn), "photon transfer (read noise unknown)"
+            st.dark_level = float(res.dark_level_dn)
+            st.dark_origin = f"photon transfer ({res.dark_origin}, ±{res.dark_se_dn:.2g} DN)"
+            return
+        if not math.isnan(st.gain) and math.isfinite(res.dark_floor_dn):
+            # the line's intercept alone: a lower bound, low by read noise² / gain; photons per pixel wait for a
+            # dark level that can be trusted (_photon_dark)
+            st.dark_level = float(res.dark_floor_dn)
+            st.dark_origin = "photon-transfer line, a lower bound (read noise unknown)"
             return
         st.dark_level, st.dark_origin = float(estimate_dark_level(stack[0])), "low percentile"
+
+    _TRUSTED_DARK = ("option", "dark frames", "zero-photon peak", "photon transfer (third cumulant")
+
+    def _photon_dark(self, st: _Stream, frame: Frame) -> float:
+        """The dark level photons per pixel are counted from: the stream's when it can be trusted, else the
+        photon transfer's once it has one (third cumulant within its limit, dark frames at the end; looked for
+        every 16 frame triples, said in a ``detector`` event), else NaN (photons per pixel blank: a lower bound
+        of the dark level would overstate them)."""
+        if math.isfinite(st.photon_dark):
+            return st.photon_dark
+        if st.dark_origin.startswith(self._TRUSTED_DARK):
+            st.photon_dark, st.photon_dark_origin = st.dark_level, st.dark_origin
+            return st.photon_dark
+        if st.ptc is None or st.ptc.n_triples < st.photon_dark_checked + 16:
+            return NAN
+        st.photon_dark_checked = st.ptc.n_triples
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            res = st.ptc.result()
+        if res.quality or not math.isfinite(res.dark_level_dn):
+            return NAN
+        st.photon_dark = float(res.dark_level_dn)
+        st.photon_dark_origin, st.photon_dark_se = res.dark_origin, res.dark_se_dn
+        t = self._time(frame)
+        se = f" ± {res.dark_se_dn:.2g}" if math.isfinite(res.dark_se_dn) else ""
+        self._events.append(Event(
+            kind="detector", frame=frame.index, time_s=t, started_frame=frame.index, started_time_s=t,
+            channel=frame.channel, plane=frame.plane,
+            message=f"dark level {st.photon_dark:.1f}{se} DN from {res.dark_origin}: photons per pixel counted from "
+                    f"it from frame {frame.index} on (blank before; brightness keeps the start-up level "
+                    f"{st.dark_level:.1f} DN, {st.dark_origin})"))
+        return st.photon_dark
+
+    @staticmethod
+    def _dark_to_carry(st: _Stream, frame: Frame) -> tuple[float, float, str] | None:
+        """The dark level to carry over a brightness step (a gain or power step leaves the detector's offset as it
+        was; new triples replace it once they can): photon transfer's third-cumulant level if it has one now, else
+        the one photons per pixel were counted from (found before the frames of the new gain mixed into the line)."""
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            res = st.ptc.result()
+        if st.ptc.carried is not None and res.dark_origin == st.ptc.carried[2]:
+            return st.ptc.carried
+        where = f"before the brightness step at frame {frame.index}"
+        if res.dark_origin.startswith("third cumulant") and math.isfinite(res.dark_level_dn):
+            return res.dark_level_dn, res.dark_se_dn, f"third cumulant, {where}"
+        if math.isfinite(st.photon_dark):
+            return st.photon_dark, st.photon_dark_se, f"{st.photon_dark_origin}, {where}"
+        return None
 
     def _sort_frames(self, st: _Stream, frames: list[Frame]) -> list[bool]:
         """Sort held-back frames into dark (no structure) and lit before they are measured; their flags wait in
@@ -835,8 +907,10 @@ class Engine:
                 # detector gain or laser power changed: photon transfer starts again (the dark frames stay), and
                 # photons per pixel are blank until a new fit passes its checks
                 dark = st.ptc.dark
+                carried = self._dark_to_carry(st, frame)
                 st.ptc.reset()
                 st.ptc.dark = dark
+                st.ptc.carried = carried
                 st.ptc.pair_step = 1
                 st.gain, st.refit_gain = NAN, True
             elif st.refit_gain and st.ptc.n_pairs >= 30 and st.ptc.n_pairs % 10 == 0 \
@@ -860,15 +934,23 @@ class Engine:
             else:
                 dark = st.pending_dark.pop(frame.index, False)
             if st.prev is not None and dark == st.prev_dark:  # a dark and a lit frame make no sample
-                cur, prev = _overlap(img, st.prev, (ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1]))
-                if cur.size:
-                    st.ptc.update(cur, prev)
+                shifts = [(ishift[0] - st.prev_shift[0], ishift[1] - st.prev_shift[1])]
+                if st.prev2 is not None:  # the triple (frame before, previous, this) of one kind
+                    shifts.append((ishift[0] - st.prev2_shift[0], ishift[1] - st.prev2_shift[1]))
+                views = _overlap_all(img, [st.prev, st.prev2][:len(shifts)], shifts)
+                if views[0].size:
+                    st.ptc.update(*views)
+                st.prev2, st.prev2_shift = st.prev, st.prev_shift
+            else:
+                st.prev2 = None
             st.prev_dark = dark
             gain = st.gain
             if math.isfinite(gain) and gain > 0:
-                photons = mean_f / gain
-                row["photons_per_px"] = photons
-                row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
+                above = mean_raw - self._photon_dark(st, frame)
+                if math.isfinite(above):
+                    photons = above / gain
+                    row["photons_per_px"] = photons
+                    row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
         st.prev, st.prev_shift = img, ishift
         st.n_measured += 1
         return [row]
@@ -880,6 +962,24 @@ class Engine:
         while len(self._shared_order) > 256:
             self._shared_motion.pop(self._shared_order.popleft(), None)
 
+
+
+#: Photon-transfer samples per start-up frame: the start-up pairs and triples read more rows than later ones (a
+#: one-time cost of about 20 ms a frame), so that the dark level of the first rows can come from the third cumulant.
+_STARTUP_SAMPLES = 1 << 17
+#: Later frame triples (every ``photon_transfer_every``-th frame) read every ``_TRIPLE_ROW_STEP``-th row at most and
+#: about ``_TRIPLE_SAMPLES`` stencils, never fewer rows than the pairs: the third cumulant needs more samples than
+#: the gain, at a bounded cost (every 4th row at 256², 7th at 512², 8th at 1024²; bench_photometry).
+_TRIPLE_ROW_STEP = 4
+_TRIPLE_SAMPLES = 1 << 15
+
+
+def _startup_row_step(shape: tuple[int, ...], row_step: int, samples: int = _STARTUP_SAMPLES) -> int:
+    """A row step for the accumulator giving about ``samples`` stencils a frame, never fewer rows than
+    ``row_step``."""
+    h, w = shape[0], shape[1]
+    rows = max(1, samples // max(w - 2, 1))
+    return max(1, min(row_step, (h - 2) // rows))
 
 
 def _structureless_binned(binned: np.ndarray, factor: int, sigma: float) -> bool:
@@ -904,16 +1004,14 @@ def _unsaturated(reference: np.ndarray, max_value: float) -> np.ndarray | None:
     return None if ok.all() else ok
 
 
-def _overlap(current: np.ndarray, previous: np.ndarray, shift: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
-    """Views of ``current`` and ``previous`` over the pixels they share, with ``previous`` moved by ``shift``.
-
-    ``shift`` (rows, columns) is how far the content moved from ``previous`` to ``current``; pixels that left the
-    field are dropped rather than wrapped around.
-    """
-    dy, dx = shift
+def _overlap_all(current: np.ndarray, others: list[np.ndarray], shifts: list[tuple[int, int]]) -> list[np.ndarray]:
+    """Views of ``current`` and each of ``others`` over the pixels all of them share (each moved by its shift,
+    rows and columns the content moved from it to ``current``); pixels that left the field are dropped."""
     h, w = current.shape
-    if abs(dy) >= h or abs(dx) >= w:
-        return current[:0, :0], previous[:0, :0]
-    cur = current[max(dy, 0):h + min(dy, 0), max(dx, 0):w + min(dx, 0)]
-    prev = previous[max(-dy, 0):h + min(-dy, 0), max(-dx, 0):w + min(-dx, 0)]
-    return cur, prev
+    dys, dxs = [0] + [sh[0] for sh in shifts], [0] + [sh[1] for sh in shifts]
+    r0, r1 = max(dys), h + min(dys)
+    c0, c1 = max(dxs), w + min(dxs)
+    if r1 <= r0 or c1 <= c0:
+        return [a[:0, :0] for a in (current, *others)]
+    return [current[r0:r1, c0:c1]] + [a[r0 - dy:r1 - dy, c0 - dx:c1 - dx]
+                                      for a, (dy, dx) in zip(others, shifts)]

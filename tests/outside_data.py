@@ -28,6 +28,7 @@ from __future__ import annotations
 import functools
 import glob
 import io
+import math
 import os
 import zipfile
 from pathlib import Path
@@ -35,7 +36,8 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-__all__ = ["OutsideDataMissing", "nuclei_2d", "nuclei_3d", "specimen_crop", "detect", "emva1288_modules"]
+__all__ = ["OutsideDataMissing", "nuclei_2d", "nuclei_3d", "specimen_crop", "living_specimen", "detect",
+           "emva1288_modules"]
 
 _REPO = Path(__file__).resolve().parents[1]
 
@@ -95,8 +97,35 @@ def specimen_crop(image: np.ndarray, shape: tuple[int, int], dy: float, dx: floa
     return np.clip(out, 0, None)
 
 
+def living_specimen(shape: tuple[int, int], n_frames: int, rng: np.random.Generator, *, photons_scale: float = 1.0,
+                    background: float = 2.0, motion_px: float = 0.0, rate_hz: float = 0.0, fs: float = 30.0):
+    """Expected photons per pixel of ``n_frames`` frames of the real specimen :func:`nuclei_2d`, living and moving.
+
+    Each frame is :func:`specimen_crop` of the image (× ``photons_scale``, + ``background`` photons) moved by a
+    random shift uniform in ±``motion_px`` on each axis (residual motion, drawn anew for every frame), and its
+    nuclei (the brightest 30 % of the image, labelled by ``scipy.ndimage.label``) carry calcium-like transients:
+    events at ``rate_hz`` per nucleus, ΔF/F uniform in 0.3–1.0, exponential decay of 0.7 s at ``fs`` frames/s
+    (common practice, no source), stationary from the first frame. Yields (M, N) float arrays.
+    """
+    from scipy import ndimage
+
+    image = nuclei_2d().astype(np.float64)
+    labels, n = ndimage.label(image > np.percentile(image, 70))
+    decay = math.exp(-1.0 / (0.7 * fs))
+    level = np.zeros(n + 1)
+    warm = int(round(5.0 * fs))  # the activity runs 5 s before the first frame
+    for j in range(warm + n_frames):
+        if rate_hz > 0:
+            level[1:] = level[1:] * decay + np.where(rng.random(n) < rate_hz / fs, rng.uniform(0.3, 1.0, n), 0.0)
+        if j < warm:
+            continue
+        lit = image * (1.0 + level[labels])
+        dy, dx = rng.uniform(-motion_px, motion_px, 2) if motion_px else (0.0, 0.0)
+        yield specimen_crop(lit, shape, float(dy), float(dx)) * photons_scale + background
+
+
 def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: float = 1.0, offset: float = 0.0,
-           read_noise_dn: float = 0.0, bits: int = 16, dtype=np.uint16) -> np.ndarray:
+           read_noise_dn: float = 0.0, bits: int = 16, dtype=np.uint16, gain_shape: float | None = None) -> np.ndarray:
     """One frame of the EMVA 1288 linear camera model: Poisson photons × gain + offset + Gaussian dark noise.
 
     Parameters
@@ -112,9 +141,16 @@ def detect(expected_photons: np.ndarray, rng: np.random.Generator, *, gain: floa
     bits : int
         Digitiser bits n: values are rounded and clipped to [0, 2ⁿ − 1] (a 12-bit digitiser in a 16-bit file:
         ``bits=12, dtype=np.uint16``).
+    gain_shape : float, optional
+        A multiplying detector (photomultiplier): each photon's gain is gamma-distributed with mean ``gain`` and
+        this shape k (excess noise factor (k + 1) / k; the sum of N photons' gains is gamma with shape N·k).
+        None: the camera model's constant gain.
     """
     electrons = rng.poisson(np.clip(expected_photons, 0, None)).astype(np.float64)
-    dn = electrons * gain + offset
+    if gain_shape is None:
+        dn = electrons * gain + offset
+    else:
+        dn = offset + np.where(electrons > 0, rng.gamma(np.maximum(electrons, 1) * gain_shape, gain / gain_shape), 0.0)
     if read_noise_dn:
         dn += rng.normal(0.0, read_noise_dn, dn.shape)
     info = np.iinfo(dtype) if np.dtype(dtype).kind in "ui" else None

@@ -357,3 +357,17 @@ def test_the_worst_frame_is_read_back_from_an_hdf5_series(tmp_path):
     np.testing.assert_array_equal(_read_frame(str(path), 0, None, "imaging/frames"), data[0])
     with pytest.raises(ValueError, match="frame 12"):
         _read_frame(str(path), 12, None)
+
+
+def test_photon_transfer_says_why_its_dark_level_is_blank(session):
+    # A dark level that cannot be trusted is blank in the report with its reason beside the other figures.
+    import copy
+
+    prof, traces, events, facts, summary = session
+    summary = copy.deepcopy(summary)
+    summary["photon_transfer"] = {"gain": 2.5, "dark_level": float("nan"), "quality": "",
+                                  "bias": "dark level uncertain (±7 DN from the third cumulant of 3000000 samples): "
+                                          "needs dark frames or a longer session"}
+    metrics = _text(report_html(summary, traces, events, prof, facts)).split("Metrics", 1)[1].split("Traces", 1)[0]
+    assert "conversion gain 2.50 DN/photon" in metrics and "dark level 1" not in metrics
+    assert "dark level uncertain (±7 DN" in metrics

@@ -10,8 +10,8 @@ import numpy as np
 
 from qcmon.metrics._validate import as_image, finite_float, positive_int
 
-__all__ = ["DarkFrames", "PhotonTransfer", "PhotonTransferResult", "estimate_dark_level", "is_structureless",
-           "photons_per_px", "shot_snr"]
+__all__ = ["CumulantDark", "DarkFrames", "MAX_DARK_SE_DN", "PhotonTransfer", "PhotonTransferResult",
+           "estimate_dark_level", "is_structureless", "k3_from_sums", "photons_per_px", "shot_snr"]
 
 #: Samples whose squared high-passed difference exceeds this many predicted variances are outliers (6 sigma).
 _OUTLIER_VAR = 36.0
@@ -32,6 +32,12 @@ _MAX_GAIN_SE = 0.1
 #: A break in the line: the slopes of the lower and upper halves of the signal range differ by more than this
 #: fraction (and by more than 4 standard errors).
 _BREAK_FRAC = 0.25
+#: Fewest frame triples' samples a point of the third-cumulant line needs.
+_MIN_K3_COUNT = 200
+#: Largest standard error (DN) of the dark level from the third cumulant that is still a dark level to use;
+#: wider, the dark level is left blank with the reason (the target is 3 DN: 2 standard errors and the ~1 DN that
+#: motion and activity added on the real specimen, docs/accuracy.md, fit inside it).
+MAX_DARK_SE_DN = 1.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -54,10 +60,14 @@ class PhotonTransferResult:
         "" when the fit can be used; otherwise why not, in plain words (r² too low, a break in the line, too few
         points). A caller must not use the gain when this is not empty.
     dark_origin : str
-        Where dark level and read noise come from: "dark frames", "read noise given" or "intercept" (read noise
-        unknown: the dark level is low by ``read_noise**2 / gain``, see ``bias``).
+        Where dark level and read noise come from: "dark frames (n)", "zero-photon peak", "read noise given",
+        "third cumulant" or "" (no dark level: see ``bias``).
     bias : str
-        The bias that remains, in plain words ("" when none is known).
+        Why the dark level is blank or what remains uncertain about it, in plain words ("" when nothing).
+    dark_se_dn : float
+        Standard error of the dark level from the third cumulant, DN (NaN for the other origins).
+    dark_floor_dn : float
+        ``-intercept / gain``: a lower bound of the dark level (read noise² ≥ 0), DN.
     """
 
     gain_dn_per_photon: float
@@ -68,6 +78,37 @@ class PhotonTransferResult:
     quality: str = ""
     dark_origin: str = ""
     bias: str = ""
+    dark_se_dn: float = math.nan
+    dark_floor_dn: float = math.nan
+
+
+@dataclass(frozen=True, slots=True)
+class CumulantDark:
+    """Dark level from the third cumulant of second differences of three frames (:meth:`PhotonTransfer.cumulant_dark`).
+
+    Attributes
+    ----------
+    dark_level_dn : float
+        Zero crossing of the κ₃ line, DN.
+    se_dn : float
+        Its standard error, DN (delta method on the weighted line fit).
+    slope : float
+        Slope of κ₃(D) against the mean, DN²: ``-6 K²`` for a camera (constant gain),
+        ``-6 E[G³]/E[G]`` for a multiplying detector with gain distribution G.
+    slope_se : float
+        Standard error of the slope.
+    n_samples : int
+        Samples in the fit.
+    n_points : int
+        Points (bins of the mean) in the fit.
+    """
+
+    dark_level_dn: float
+    se_dn: float
+    slope: float
+    slope_se: float
+    n_samples: int
+    n_points: int
 
 
 class PhotonTransfer:
@@ -113,10 +154,21 @@ class PhotonTransfer:
       are dropped (abrupt activity, motion at edges); stencils touching a saturated or clipped pixel are
       dropped, and so are those whose neighbours are within 6 predicted sigma of the maximum.
 
-    The intercept is ``s**2 - K D``. With ``read_noise_dn`` given, ``D = (s**2 - intercept) / K`` without bias;
-    otherwise ``D = -intercept / K``, which underestimates D by ``s**2 / K`` DN (e.g. 1 DN for s = 3 DN at
-    K = 9 DN/photon, 0.2 % of D = 500 DN; but 16 % of D = 50 DN at K = 1 DN/photon and s = 3 DN — configure
-    the read noise there).
+    The intercept is ``s**2 - K D``: the line alone cannot split it into dark level and read noise
+    (``-intercept / K`` is low by ``s**2 / K``, 25.6 DN for s = 8 DN at K = 2.5 DN/photon). Without dark frames,
+    a zero-photon peak or a given read noise, the dark level comes from the **third cumulant**: photons × gain
+    plus symmetric read noise has ``κ₃ = K² (mean - D)`` (cumulants of independent terms add; a Poisson count's
+    cumulants all equal its mean, a constant gain scales the n-th by Kⁿ; a Gaussian's κ₃ is 0), which is zero
+    at the dark level whatever the read noise. The second difference of three consecutive frames
+    ``Δ = a - 2 b + c`` cancels the scene where it is constant or changes linearly in time and has
+    ``κ₃(Δ) = (1 - 8 + 1) κ₃ = -6 K² (mean - D)`` (cumulants of a weighted sum: weights cubed) and
+    ``var(Δ) = 6 (K (mean - D) + s**2)``. Its sums Σ Δ, Σ Δ², Σ Δ³ are kept per fine bin of the neighbours' mean
+    (as for the pairs: no selection by the pixel's own noise); per point the unbiased k-statistic k₃ (Fisher
+    1930; ``scipy.stats.kstat``) is taken, and the zero crossing of a weighted line through them is the dark
+    level, with its standard error (var k₃ ≈ 6 var(Δ)³ / n for near-Gaussian Δ). For a multiplying detector
+    (photomultiplier) with random gain G the slope is ``-6 E[G³]/E[G]`` and the zero crossing is still D.
+    The read noise is then ``sqrt(intercept + K D)``. A dark level whose standard error exceeds
+    :data:`MAX_DARK_SE_DN` is left blank with the reason.
 
     Memory is ``n_bins`` accumulators; a change of detector gain mid-session needs :meth:`reset`.
 
@@ -145,6 +197,9 @@ class PhotonTransfer:
         if self.n_bins < 3:
             raise ValueError(f"n_bins must be at least 3, got {n_bins}")
         self.row_step = positive_int(row_step, "row_step")
+        #: Row step of the frame triples (the third-cumulant dark level needs more samples than the gain; the
+        #: caller may read more rows for them); None: ``row_step``.
+        self.triple_row_step: int | None = None
         self.pair_step = positive_int(pair_step, "pair_step")
         self.reset()
 
@@ -161,17 +216,26 @@ class PhotonTransfer:
         self._line: tuple[float, float] | None = None
         self._chi2_dof = math.nan
         self._slope_se = math.nan
+        self._centre = (math.nan, math.nan)
         self.dark = DarkFrames()
         self.peak: tuple[float, float] | None = None
+        # third-cumulant accumulators of frame triples, per fine bin: count, Σ mean, Σ Δ, Σ Δ², Σ Δ³
+        self._k3 = np.zeros((5, _FINE_BINS))
+        self.n_triples = 0
+        #: (dark level, standard error, origin) found before a reset (a gain or power step leaves the offset as it
+        #: was): used until the new triples give a dark level of their own. Set by the caller after :meth:`reset`.
+        self.carried: tuple[float, float, str] | None = None
 
-    def update(self, frame, previous) -> bool:
-        """Add the pair (``previous``, ``frame``) of the same channel and plane.
+    def update(self, frame, previous, before=None) -> bool:
+        """Add the pair (``previous``, ``frame``) of the same channel and plane, and the triple with ``before``.
 
         Parameters
         ----------
         frame, previous : (M, N) array_like
             Two consecutive frames, ``previous`` already aligned to ``frame`` (same shape, M, N >= 3). If
             ``previous`` is None nothing is done.
+        before : (M, N) array_like, optional
+            The frame before ``previous``, aligned likewise: the triple feeds the third-cumulant dark level.
 
         Returns
         -------
@@ -210,11 +274,112 @@ class PhotonTransfer:
         self._sum_x += np.bincount(idx, weights=xs, minlength=_FINE_BINS)
         self._sum_y += np.bincount(idx, weights=ys, minlength=_FINE_BINS)
         self.n_pairs += 1
+        if before is not None and self._line is not None:  # samples are judged against the line, as the pairs'
+            c = as_image(before, "before", min_shape=(3, 3))
+            if c.shape != a.shape:
+                raise ValueError(f"before has shape {c.shape}, frame has {a.shape}; align and crop them alike")
+            self._add_triple(a, b, c)
         line = self._fit()
         # Outliers are judged against the line only once it is one (a rising line that fits): a single pair at one
         # level (a dark or flat first pair) gives a noise-driven line that would reject everything after it.
         self._line = line[:2] if line is not None and line[0] > 0 and line[2] >= _MIN_R2 and line[3] >= 5 else None
         return True
+
+    def _add_triple(self, a: np.ndarray, b: np.ndarray, c: np.ndarray) -> None:
+        """Accumulate Σ Δ, Σ Δ², Σ Δ³ of ``Δ = c - 2 b + a`` per fine bin of the neighbours' three-frame mean."""
+        x, nbr, delta, ok = self._triple_samples(a, b, c)
+        lo, scale = self._edges
+        idx = np.minimum((np.sqrt(np.maximum(nbr[ok] - lo, 0.0)) * scale).astype(np.intp), _FINE_BINS - 1)
+        dd = delta[ok]
+        d2 = dd * dd
+        acc = self._k3
+        acc[0] += np.bincount(idx, minlength=_FINE_BINS)
+        acc[1] += np.bincount(idx, weights=x[ok], minlength=_FINE_BINS)
+        acc[2] += np.bincount(idx, weights=dd, minlength=_FINE_BINS)
+        acc[3] += np.bincount(idx, weights=d2, minlength=_FINE_BINS)
+        acc[4] += np.bincount(idx, weights=d2 * dd, minlength=_FINE_BINS)
+        self.n_triples += 1
+
+    def _triple_samples(self, a: np.ndarray, b: np.ndarray, c: np.ndarray):
+        """Per stencil: the centre's three-frame mean, the neighbours' mean, Δ and whether the sample is used."""
+        m = a.shape[0]
+        centre = np.arange(1, m - 1, self.triple_row_step or self.row_step)
+        rows = np.concatenate((centre - 1, centre, centre + 1))
+        fa, fb, fc = (f[rows].astype(np.float32) for f in (a, b, c))
+        k = centre.size
+        bad = ((fa >= self.max_value) | (fa <= self.floor) | (fb >= self.max_value) | (fb <= self.floor)
+               | (fc >= self.max_value) | (fc <= self.floor))
+        s = fa + fb + fc
+        mid = slice(k, 2 * k)
+        delta = (fc[mid, 1:-1] - 2.0 * fb[mid, 1:-1] + fa[mid, 1:-1]).astype(np.float64).ravel()
+        x = (s[mid, 1:-1] / 3.0).ravel()
+        nbr = ((s[mid, :-2] + s[mid, 2:]) / 6.0).ravel()
+        # structure seen by the columns either side, as for the pairs (sums of three frames: 12 × the pixel
+        # variance on a flat field)
+        gx = s[mid, 2:] - s[mid, :-2]
+        gy_left = s[2 * k:, :-2] - s[:k, :-2]
+        gy_right = s[2 * k:, 2:] - s[:k, 2:]
+        grad2 = (gx * gx + 0.5 * (gy_left * gy_left + gy_right * gy_right)).ravel()
+        badc = bad[:k] | bad[mid] | bad[2 * k:]
+        ok = ~(badc[:, 1:-1] | badc[:, :-2] | badc[:, 2:]).ravel()
+        slope, intercept = self._line
+        predicted = np.maximum(slope * np.maximum(x, nbr) + intercept, 1e-6)
+        ok &= delta * delta <= _OUTLIER_VAR * 6.0 * predicted
+        ok &= nbr + 6.0 * np.sqrt(predicted) < self.max_value
+        ok &= grad2 <= _FLAT_GRAD * 12.0 * np.maximum(slope * nbr + intercept, 1e-6)
+        return x, nbr, delta, ok
+
+    def cumulant_dark(self) -> CumulantDark | None:
+        """The dark level where the line of κ₃(Δ) over the mean crosses zero, with its standard error, or None.
+
+        The fine bins are merged from the low end into points of at least ``total / (2 n_bins)`` samples; per
+        point k₃ is the unbiased k-statistic from the power sums (Fisher 1930; equal to ``scipy.stats.kstat(Δ, 3)``
+        of the point's samples). The line is fitted with weights ``n / (6 v³)``, v the variance of Δ predicted by
+        the photon-transfer line (var k₃ ≈ 6 v³ / n for near-Gaussian Δ). None when there is no photon-transfer
+        line, fewer than three points, or a κ₃ slope not clearly negative (3 standard errors).
+
+        The standard error takes the samples as independent: right for triples that share no frame (the engine's
+        after the start-up: 20 sessions of the real specimen, error scatter 2.01 DN for a stated 1.94), and
+        conservative for consecutive overlapping triples, whose second differences are negatively correlated
+        (−2/3 for neighbours: the start-up's, and tests' with ``pair_step=1``; scatter 1.04 for a stated 1.86).
+        """
+        fit = self._fit()
+        if fit is None or not fit[0] > 0:
+            return None
+        gain, intercept = fit[0], fit[1]
+        acc = self._k3
+        total = float(acc[0].sum())
+        if total <= 0:
+            return None
+        need = max(_MIN_K3_COUNT, total / (2 * self.n_bins))
+        group = np.floor(np.cumsum(acc[0]) / need).astype(np.intp)
+        group = np.concatenate(([0], group[:-1]))
+        sums = np.stack([np.bincount(group, weights=row) for row in acc])
+        n, sx, s1, s2, s3 = sums[:, sums[0] >= _MIN_K3_COUNT]
+        if n.size < 3:
+            return None
+        x = sx / n
+        k3 = k3_from_sums(n, s1, s2, s3)
+        v = 6.0 * np.maximum(gain * x + intercept, 1e-3 * gain)
+        w = n / (6.0 * v ** 3)
+        if np.ptp(x) <= 0:
+            return None
+        sw = float(w.sum())
+        xm = float(np.dot(w, x)) / sw
+        km = float(np.dot(w, k3)) / sw
+        dx = x - xm
+        sxx = float(np.dot(w, dx * dx))
+        slope = float(np.dot(w * dx, k3 - km)) / sxx
+        # the points' scatter beyond their predicted noise (non-Poisson change between frames) widens the errors
+        chi2 = float(np.dot(w, (k3 - km - slope * dx) ** 2)) / max(n.size - 2, 1)
+        inflate = max(1.0, chi2)
+        slope_se = math.sqrt(inflate / sxx)
+        if not slope < -3.0 * slope_se:
+            return None
+        level = xm - km / slope
+        # delta method: the centred parameters (km, slope) are uncorrelated
+        se = math.sqrt(inflate / sw / slope ** 2 + (km / slope ** 2) ** 2 * slope_se ** 2)
+        return CumulantDark(float(level), float(se), slope, float(slope_se), int(total), int(n.size))
 
     def _samples(self, a: np.ndarray, b: np.ndarray):
         """Per-stencil weighted pair mean x, variance sample y, neighbour pair mean and a validity mask."""
@@ -288,8 +453,11 @@ class PhotonTransfer:
         r2 = 1.0 - float(np.sum(w * resid**2)) / ss_tot if ss_tot > 0 else math.nan
         # w / 2 are inverse variances of the bin means (variance samples of Gaussian noise: var = 2 E[y]**2 / n)
         self._chi2_dof = float(np.sum(0.5 * w * resid**2)) / max(n.size - 2, 1)
-        dx = x - np.average(x, weights=w)
+        xm = np.average(x, weights=w)
+        dx = x - xm
         self._slope_se = math.sqrt(2.0 / max(float(np.dot(w, dx * dx)), 1e-300))
+        # the line at its weighted centre: the mean and its variance (uncorrelated with the slope's)
+        self._centre = (float(xm), 2.0 / float(np.sum(w)))
         return float(slope), float(intercept), r2, int(n.size)
 
     def find_zero_photon_peak(self, values) -> tuple[float, float] | None:
@@ -364,6 +532,20 @@ class PhotonTransfer:
         self.peak = (centre, spread)
         return self.peak
 
+    def _read_noise(self, intercept: float, gain: float, dark: float, dark_se: float) -> float:
+        """Read noise ``sqrt(intercept + K·D)``; NaN when its square is uncertain by more than half of it.
+
+        At the line's weighted centre x̄ the read noise² is ``ȳ - K (x̄ - D)``, whose variance is
+        ``var ȳ + (x̄ - D)² var K + K² var D`` (the centred mean and slope are uncorrelated): a high gain turns a
+        DN of dark level into K DN² of read noise², and a long extrapolation from x̄ multiplies the gain's error.
+        """
+        r2 = intercept + gain * dark
+        xm, var_ybar = self._centre
+        var = var_ybar + (xm - dark) ** 2 * self._slope_se ** 2 + gain ** 2 * dark_se ** 2
+        if not r2 > 0 or not math.sqrt(var) <= 0.5 * r2:
+            return math.nan
+        return math.sqrt(r2)
+
     def _break(self) -> str:
         """A break in the line: the lower and upper halves of the points (by samples) have different slopes."""
         n, x, y = self._points()
@@ -412,6 +594,7 @@ class PhotonTransfer:
         if not quality and not self._slope_se <= _MAX_GAIN_SE * slope:
             quality = f"too few samples: gain uncertain by ±{100 * self._slope_se / slope:.0f} %"
         bias = ""
+        se = math.nan
         if dark is None and self.peak is not None:
             level, read = self.peak
             origin = "zero-photon peak"
@@ -422,10 +605,27 @@ class PhotonTransfer:
         elif self.read_noise_dn is not None:
             level, origin = (self.read_noise_dn**2 - intercept) / slope, "read noise given"
         else:
-            level, origin = -intercept / slope, "intercept"
-            bias = (f"no dark frames and read noise unknown: the dark level is low by read noise² / gain "
-                    f"({100.0 / slope:.3g} DN for each 10 DN of read noise), photons per pixel high accordingly")
-        return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias)
+            found = self.cumulant_dark()
+            level, origin = math.nan, ""
+            if self.carried is not None and not (found is not None and found.se_dn <= MAX_DARK_SE_DN):
+                level, se, origin = self.carried
+                read = self._read_noise(intercept, slope, level, se)
+                if math.isnan(read):
+                    bias = "read noise uncertain: the dark level's error times the gain is beyond half of read noise²"
+            elif found is None:
+                bias = ("dark level unknown: no dark frames, and too few frame triples for the third-cumulant "
+                        "estimate")
+            elif not found.se_dn <= MAX_DARK_SE_DN:
+                se = found.se_dn
+                bias = (f"dark level uncertain (±{found.se_dn:.2g} DN from the third cumulant of "
+                        f"{found.n_samples} samples): needs dark frames or a longer session")
+            else:
+                level, se, origin = found.dark_level_dn, found.se_dn, "third cumulant"
+                read = self._read_noise(intercept, slope, level, se)
+                if math.isnan(read):
+                    bias = "read noise uncertain: the dark level's error times the gain is beyond half of read noise²"
+        return PhotonTransferResult(slope, float(level), read, n_points, r2, quality, origin, bias, se,
+                                    -intercept / slope)
 
 
 def is_structureless(frame, noise_sigma: float, *, bin_factor: int = 8, ratio: float = 2.0) -> bool:
@@ -514,6 +714,16 @@ class DarkFrames:
         if not (math.isfinite(self.lit_min_mean) and self.lit_min_mean > level + 3.0 * max(read, 0.5)):
             return None
         return level, read
+
+
+def k3_from_sums(n, s1, s2, s3):
+    """Unbiased k-statistic k₃ (estimate of the third cumulant) from the count and the power sums Σx, Σx², Σx³.
+
+    ``k3 = (n² S3 - 3 n S1 S2 + 2 S1³) / (n (n - 1) (n - 2))`` (Fisher 1930; the formula of
+    ``scipy.stats.kstat(x, 3)``). Works elementwise on arrays of bins.
+    """
+    n, s1, s2, s3 = (np.asarray(v, dtype=np.float64) for v in (n, s1, s2, s3))
+    return (n * n * s3 - 3.0 * n * s1 * s2 + 2.0 * s1 ** 3) / (n * (n - 1.0) * (n - 2.0))
 
 
 def _weighted_line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float]:

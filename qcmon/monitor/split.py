@@ -18,6 +18,9 @@ What is the same as in one process, and what is not:
   recomputed here, in order, over all rows (:class:`RowContinuity`), so they are identical.
 - After a brightness step one process blanks photons per pixel until photon transfer has refitted; a worker's engine
   finds steps in its own chunk only, so photons per pixel after a step may differ (no step: identical).
+- Without a trusted dark level at the start (no dark frames, no zero-photon peak, the third cumulant still too
+  uncertain) photons per pixel are blank until photon transfer finds one; a worker's engine looks in its own chunk's
+  frame triples only, so where they start to be counted may differ (a dark level known from the start: identical).
 - The photon-transfer fit of ``summary.json`` (``photon_transfer.*``) uses the frame pairs of the first chunk only.
 """
 

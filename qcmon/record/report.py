@@ -600,6 +600,9 @@ def report_html(summary: Mapping, traces: Mapping[str, np.ndarray], events: Sequ
         if not isinstance(g, Mapping):
             continue
         stats = _stats_text(group, g) or "not measured in this session"
+        if group == "photon_transfer":  # why the gain or the dark level is blank, or what is uncertain
+            why = "; ".join(t for t in (g.get("quality"), g.get("bias")) if isinstance(t, str) and t)
+            stats = f"{stats} — {why}" if why else stats
         verdict = _verdict(g["verdict"]) if "verdict" in g else ""
         label = GROUP_LABELS.get(group, group.replace("_", " "))
         label = label if label.startswith("z ") else label[:1].upper() + label[1:]
