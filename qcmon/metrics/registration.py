@@ -185,6 +185,16 @@ class ShiftEstimator:
         self.window = bool(window)
         self.max_shift_px = None if max_shift_px is None else float(max_shift_px)
         self.workers = int(workers)
+        # the reference's usable pixels as binned weights (None: all): the likelihood leaves out frame pixels that
+        # meet the reference's unusable (featureless) parts, wherever the frame's own mask leaves them in
+        self._ref_vmask = None
+        if reference_valid is not None and not rv.all():
+            from scipy import ndimage
+
+            # every pixel _featureless changed (1 px and a bin's soft edge) and a bin more for the rounding of d0
+            # (at 128², 200 photons/px, the shift was biased 0.03 px toward the patch with 1 px, 0.07 px with none)
+            grow = 2 * self.bin_factor + 1
+            self._ref_vmask = self._binned_valid(~ndimage.binary_dilation(~rv, iterations=grow))
 
         refb = bin_image(ref.astype(np.float32, copy=False), self.bin_factor)
         refb = finite_float32(refb, "reference", warn=False)
@@ -316,6 +326,7 @@ class ShiftEstimator:
             self._ml_blocks.append((slice(mb - kr, mb), slice(0, kc)))
         self._ml_p1 = [(wf * hl)[blk].astype(np.complex64) for blk in self._ml_blocks]
         self._ml_p2 = [(h * wf * np.conj(lamf))[blk].astype(np.complex64) for blk in self._ml_blocks]
+        self._ml_hconjlam, self._ml_lam0 = (h * np.conj(lamf)).astype(np.complex64), float(lamf[0, 0].real)
         self._ml_sum_w = float(w.sum(dtype=np.float64))
         self._ml_sum_wlam = float(np.sum(w * lam))
         taper = self._ALPHA / 2 if self._win is not None else 0.0
@@ -333,7 +344,8 @@ class ShiftEstimator:
         lo, hi = self._ML_BAND
         return 0.5 * (1 + np.cos(np.pi * np.clip((rad - lo) / max(hi - lo, 1e-9), 0.0, 1.0)))
 
-    def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float) -> tuple[float, float] | None:
+    def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float,
+                   vmask: np.ndarray | None = None) -> tuple[float, float] | None:
         """Maximise the Poisson log-likelihood of the frame over the shift by Newton's method, from (cy, cx).
 
         The frame's expected counts are the reference moved by ``d`` and scaled by the frame's brightness ``a``:
@@ -342,14 +354,29 @@ class ShiftEstimator:
         dark level) with the logarithm of the reference, less a correction for the window. Its value and first
         two derivatives at any subpixel ``d`` are sums over the spectrum (no interpolation); the maximum is found
         to machine precision in 2-4 Newton steps. Returns None if Newton's method does not stay near the start.
+
+        *Unusable pixels.* With ``vmask`` (the frame's binned weights, 0 on clipped pixels, :meth:`_binned_valid`)
+        the sum runs over the usable pixels only: ``w`` becomes ``w · vmask``, and where the reference has unusable
+        parts (drawn featureless, :func:`_featureless`) also ``· ref_vmask(x - d0)`` at the phase-correlation shift
+        ``d0``, so that no frame pixel is held against a reference value that is not the specimen's. The weight is
+        fixed on the frame's pixel grid — as a stationary saturated patch is fixed on the detector — while the
+        model moves beneath it; the likelihood with any fixed weight has its maximum at the true shift, and the
+        window's terms, no longer confined to the lowest frequencies, take the weight's whole spectrum (one more
+        FFT). The brightness ``a`` is matched over the same weighted pixels at ``d0``.
         """
         c1 = mean - self._dark_b + self._ml_add
-        swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
-        a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
-        r = g_full * self._ml_conjl
-        c1_, a_ = np.complex64(c1), np.complex64(a)
-        for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
-            r[blk] += c1_ * p1 - a_ * p2
+        c1_ = np.complex64(c1)
+        if vmask is None and self._ref_vmask is None:
+            swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
+            a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
+            r = g_full * self._ml_conjl
+            a_ = np.complex64(a)
+            for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
+                r[blk] += c1_ * p1 - a_ * p2
+        else:
+            r = self._ml_masked(g_full, c1, cy, cx, vmask)
+            if r is None:
+                return None
         uy, ux = self._ml_uy, self._ml_ux
         y, x = cy, cx
         for _ in range(self._ML_STEPS):
@@ -374,6 +401,41 @@ class ShiftEstimator:
             if abs(dy) < 1e-4 and abs(dx) < 1e-4:
                 break
         return y, x
+
+    def _ml_masked(self, g_full: np.ndarray, c1: float, cy: float, cx: float,
+                   vmask: np.ndarray | None) -> np.ndarray | None:
+        """The likelihood's spectrum ``r`` (see :meth:`_ml_refine`) with the weight ``w · vmask · ref_vmask(x -
+        d0)``; ``g_full`` is the transform of the frame (less its mean) times ``w · vmask``. None if no weight is
+        left."""
+        wm = self._win if self._win is not None else np.ones(self._bshape, np.float32)
+        if vmask is not None:
+            wm = wm * vmask
+        extra = None
+        if self._ref_vmask is not None:
+            # the reference's unusable parts where they fall on the frame at the phase-correlation shift d0:
+            # frame pixel x meets reference pixel x - d0
+            extra = np.empty_like(self._ref_vmask)
+            shift_integer(self._ref_vmask, -int(round(cy)), -int(round(cx)), extra)
+            wm = wm * extra
+        wmf = _fft.rfft2(np.ascontiguousarray(wm, dtype=np.float32), self.workers)
+        sum_wm = float(wmf[0, 0].real)
+        if not sum_wm > 0:
+            return None
+        if extra is not None:
+            # the frame's transform must carry the same weight: its mean-subtracted, weighted pixels times extra
+            # (the frame's sum over the new weight is carried by c1 and the mean-subtracted part)
+            g_full = _fft.rfft2(np.ascontiguousarray(
+                _fft.irfft2(g_full, self._bshape, self.workers) * extra, dtype=np.float32), self.workers)
+        mb, nb = self._bshape
+        # sum_x wm(x) lam(x - d0), over the whole spectrum (the mean term apart: h holds 0 there)
+        er = np.exp((1j * _TWO_PI / mb) * cy * _signed_freqs(mb, mb)).astype(np.complex64)
+        ec = np.exp((1j * _TWO_PI / nb) * cx * np.arange(nb // 2 + 1)).astype(np.complex64)
+        swlam = (float((er @ (wmf * self._ml_hconjlam) @ ec).real) + sum_wm * self._ml_lam0) / (mb * nb)
+        swg = float(g_full[0, 0].real) + c1 * sum_wm
+        a = swg / swlam if swlam > 0 else 0.0
+        r = g_full * self._ml_conjl
+        r += wmf * (np.complex64(c1) * self._ml_conjl - np.complex64(a) * self._ml_hconjlam)
+        return r
 
     # ------------------------------------------------------------------ helpers
     def _taper(self, frac: np.ndarray) -> np.ndarray:
@@ -566,10 +628,9 @@ class ShiftEstimator:
         # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
         # larger shifts keep the phase-correlation estimate. Newton's method needs no grid finer than the
         # second-last stage's (steps of 1/3 binned px at 512 px), so the last stage runs only if it is not used.
-        # Frames with unusable (clipped) pixels keep the weighted phase-correlation estimate: the likelihood's
-        # window would have to follow each frame's mask (its precomputed spectra assume the whole window), and
-        # without that the masked region biases it (0.19 px toward the patch, tests/test_range.py).
-        use_ml = (vmask is None and self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
+        # Frames with unusable (clipped) pixels, and frames meeting the reference's unusable parts, are refined with
+        # the likelihood over their usable pixels (see _ml_refine).
+        use_ml = (self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
                   and abs(cx) <= self._ml_reach[1] + self._coarse_step[1])
         stages = self._stages[:-1] if use_ml and len(self._stages) > 1 else self._stages
         for offs_y, offs_x, er0, ec0 in stages:
@@ -583,7 +644,7 @@ class ShiftEstimator:
             ramp_r, ramp_c = er[a], ec[:, b]
         ml = None
         if use_ml and abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
-            ml = self._ml_refine(g_full, mean, cy, cx)
+            ml = self._ml_refine(g_full, mean, cy, cx, vmask)
         if ml is not None:
             cy, cx = ml
         elif len(stages) < len(self._stages):  # no refinement after all: the last grid stage
