@@ -752,13 +752,15 @@ class Engine:
             self._note_blank(st, frame, "constant frames, or more than half of the pixels at a detector limit")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
-            mean_binned = None
+            mean_binned = valid_counts = None
             if valid is not None:
                 n_valid = int(np.count_nonzero(valid))
                 mean_raw = (float(np.add.reduce(img[valid], axis=None, dtype=np.float64)) / n_valid
                             if n_valid else NAN)
                 # bins holding a clipped pixel take the mean of the usable pixels in the running means
-                full = bin_image(valid.view(np.uint8), factor) >= factor * factor
+                # the mask binned once: here and in the registration's weights
+                valid_counts = bin_image(valid.view(np.uint8), factor)
+                full = valid_counts >= factor * factor
                 binned_clean = np.where(full, binned, np.float32(mean_raw * factor * factor)
                                         if n_valid else np.float32(0))
             elif st.exact_binning:
@@ -772,7 +774,7 @@ class Engine:
                     self._remember_motion(frame.index, frame.plane, res)
             elif motion is None:
                 if img.dtype.kind in "ui" or np.isfinite(binned).all():
-                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid)
+                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img, valid=valid)
             if structured and motion is None and st.shift.out_of_range:

@@ -234,6 +234,32 @@ def test_patch_already_in_the_reference_frames():
     assert np.all(np.abs(err.mean(axis=0)) < 0.02)
 
 
+def test_mask_binned_once_and_kept_gives_the_same_shifts():
+    # The engine hands the estimator the mask it has binned (valid_counts), and the estimator keeps the last mask's
+    # weights and spectra for an equal mask: neither may change a result. Each frame is held against a fresh
+    # estimator (nothing kept) on frames whose masks repeat, change and come back, and whose shifts cross whole
+    # pixels (the reference's unusable part meets them at another whole-pixel shift).
+    from qcmon.metrics._imageops import bin_image
+
+    ref, _, patched, truth, valid = _patch_session(20.0, 6, 34, patch_in_reference=True)
+    reference = np.mean(ref, axis=0).astype(np.float32)
+    kw = dict(upsample=20, bin_factor=2, dark_level=100.0, gain=3.0, read_noise_dn=8.0, reference_frames=10,
+              reference_valid=valid)
+    kept = ShiftEstimator(reference, **kw)
+    frames = [patched[0], patched[0], patched[1], patched[2], patched[2], patched[3]]
+    frames[4] = frames[4].copy()
+    frames[4][70:80, 10:20] = 4095  # another clipped spot: another mask
+    for f in frames:
+        v = f < 4095
+        b = bin_image(f, 2)
+        counts = bin_image(v.view(np.uint8), 2)
+        got = kept.estimate_binned(b, valid=v, valid_counts=counts)
+        fresh = ShiftEstimator(reference, **kw).estimate_binned(b, valid=v)
+        assert got == fresh
+    with pytest.raises(ValueError, match="valid_counts"):
+        kept.estimate_binned(b, valid=v, valid_counts=counts[:-1])
+
+
 def test_simulated_rig_start_through_the_engine():
     # qcmon's simulator (not an outside check; the outside ones are above): closed shutter, 13 bits in 16-bit
     # pages without the bit depth given, saturating cells and a stationary saturated patch, all at once
