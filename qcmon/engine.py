@@ -149,6 +149,7 @@ class _Stream:
     reference: np.ndarray | None = None
     running: RunningMean | None = None
     line_mean: RunningMean | None = None
+    line_clip: RunningMean | None = None  # clipped pixels in line_mean's frames, while any are in its window
     zest: ZEstimator | None = None
     brightness: BrightnessTracker | None = None
     ptc: PhotonTransfer | None = None
@@ -801,7 +802,12 @@ class Engine:
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
             if structured:
                 st.running.push(binned if valid is None else binned_clean, dy / factor, dx / factor)
+                if valid is not None and st.line_clip is None:  # the window's first clipped frame: none before
+                    st.line_clip = st.line_mean.zeros_like()
                 st.line_mean.push(img, dy, dx)
+                if st.line_clip is not None:  # which of the line offset's pixels were clipped in the window
+                    st.line_clip.push(np.zeros(img.shape, np.uint8) if valid is None else (~valid).view(np.uint8),
+                                      dy, dx)
                 if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
                     mean_img = st.running.mean
                     if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
@@ -815,7 +821,14 @@ class Engine:
                     # directions' rows stay apart).
                     rows = st.line_mean.mean  # rows above, odd rows, rows below (line_rows), stacked
                     k = rows.shape[0] // 3
-                    st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
+                    line_valid = None
+                    if st.line_clip is not None:  # pixels clipped in any frame of the window carry no weight
+                        good = st.line_clip.mean == 0
+                        if good.all():  # no clipped frame left in the window
+                            st.line_clip = None
+                        else:
+                            line_valid = good[:k] & good[k:2 * k] & good[2 * k:]
+                    st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:], valid=line_valid)
             if structured:
                 row["focus_corr"], row["focus_measure"] = st.last_focus
                 row["z_um"], row["z_corr"] = st.last_z
