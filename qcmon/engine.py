@@ -201,6 +201,7 @@ class Engine:
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
         self._events: list[Event] = []
+        self._range_log: list[tuple[int, tuple[int, int], tuple]] = []  # see range_log
         #: messages about frames that were measured but left partly blank (e.g. moved beyond the searched range);
         #: the caller reports and clears them (:meth:`take_problems`)
         self.problems: list[str] = []
@@ -604,6 +605,33 @@ class Engine:
             rows.extend(self._measure_or_wait(st, fr))
         return rows
 
+    def range_state(self) -> dict:
+        """Each stream's detector levels: ``{(channel, plane): (ceiling, floor, floor_is_clip)}`` (picklable), for
+        :meth:`carry_range` of a copy of this engine that measures later frames (a split run's next chunk)."""
+        return {k: (st.range.ceiling, st.range.floor, st.range.clip_floor)
+                for k, st in self._streams.items() if st.range is not None}
+
+    @property
+    def range_log(self) -> list[tuple[int, tuple[int, int], tuple]]:
+        """Every change of a stream's detector levels: ``(frame, (channel, plane), (ceiling, floor,
+        floor_is_clip))`` from that frame on, in order (a split run compares and carries them between chunks)."""
+        return list(self._range_log)
+
+    def carry_range(self, state: dict) -> None:
+        """Take the detector levels an engine had after the frames before this one's (:meth:`range_state`), as
+        one engine measuring them all would have them: no event (the engine that found a level said so)."""
+        for key, (ceiling, floor, clip) in state.items():
+            st = self._streams.get(key)
+            if st is None or st.range is None:
+                continue
+            if (st.range.ceiling, st.range.floor, st.range.clip_floor) == (ceiling, floor, clip):
+                continue
+            st.range.ceiling, st.range.floor, st.range.clip_floor = ceiling, floor, clip
+            st.max_value = ceiling.value
+            if st.ptc is not None:
+                st.ptc.max_value = st.max_value
+                st.ptc.floor = floor.value
+
     def _observe_range(self, st: _Stream, frame: Frame) -> tuple[float, float]:  # noqa: D401
         """Hand the frame's extremes to the range finder; record a level found or withdrawn. (min, max)."""
         a = frame.data
@@ -613,6 +641,8 @@ class Engine:
             fmin, fmax = float(a.min()), float(a.max())
         notes = st.range.observe(a, fmin, fmax)
         if notes:
+            self._range_log.append((frame.index, (frame.channel, frame.plane),
+                                    (st.range.ceiling, st.range.floor, st.range.clip_floor)))
             st.max_value = st.range.ceiling.value
             if st.ptc is not None:
                 st.ptc.max_value = st.max_value
@@ -762,8 +792,10 @@ class Engine:
                 # the mask binned once: here and in the registration's weights
                 valid_counts = bin_image(valid.view(np.uint8), factor)
                 full = valid_counts >= factor * factor
-                binned_clean = np.where(full, binned, np.float32(mean_raw * factor * factor)
-                                        if n_valid else np.float32(0))
+                fill = mean_raw * factor * factor if n_valid else 0.0
+                if img.dtype.kind in "ui":  # a whole number: the running means' float32 sums stay exact (the
+                    fill = round(fill)      # same in any order, so a split run's workers sum what one process does)
+                binned_clean = np.where(full, binned, np.float32(fill))
             elif st.exact_binning:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw, mean_binned = total / img.size, total / binned.size
