@@ -206,7 +206,7 @@ def test_a_level_found_in_one_chunk_holds_in_the_later_ones(tmp_path, monkeypatc
     stack[600:, 50, 40:46] = 4095
     for i in range(0, 800, 100):
         tifffile.imwrite(folder / f"part_{i // 100:02d}.tif", stack[i:i + 100])
-    monkeypatch.setattr(qcmon.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
     outs = {}
     for w in (1, 2):
         outs[w] = tmp_path / f"out{w}"
