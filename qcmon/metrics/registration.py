@@ -95,7 +95,8 @@ class ShiftEstimator:
         How many frames the reference is the mean of (its noise is the frames' over this number).
     reference_valid : (M, N) bool ndarray, optional
         True where a reference pixel is usable; the others (e.g. saturated in the frames it was built from) are
-        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift.
+        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift, and
+        the likelihood refinement gives no weight to frame pixels that meet them.
 
     Notes
     -----
@@ -185,10 +186,10 @@ class ShiftEstimator:
         self.window = bool(window)
         self.max_shift_px = None if max_shift_px is None else float(max_shift_px)
         self.workers = int(workers)
-        # the reference's usable pixels as binned weights (None: all): the likelihood leaves out frame pixels that
-        # meet the reference's unusable (featureless) parts, wherever the frame's own mask leaves them in
         self._vmask_last: tuple[np.ndarray, np.ndarray] | None = None  # the last mask's counts and weights
         self._wm_last: tuple | None = None  # the likelihood's weight spectrum for the last mask (_ml_masked)
+        # the reference's usable pixels as binned weights (None: all): the likelihood leaves out frame pixels that
+        # meet the reference's unusable (featureless) parts, wherever the frame's own mask leaves them in
         self._ref_vmask = None
         if reference_valid is not None and not rv.all():
             from scipy import ndimage
