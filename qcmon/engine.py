@@ -487,14 +487,28 @@ class Engine:
                     "registration, focus and z are blank there"))
         st.blank_since = None
 
-    def _clipped(self, st: _Stream, data: np.ndarray) -> tuple[float, float, np.ndarray | None]:
-        """Saturated and clipped fractions, and the mask of usable pixels (None when every pixel is)."""
+    def _clipped(self, st: _Stream, data: np.ndarray, fmin: float | None = None,
+                 fmax: float | None = None) -> tuple[float, float, np.ndarray | None]:
+        """Saturated and clipped fractions, and the mask of usable pixels (None when every pixel is). With the
+        frame's extremes, integer frames skip the count of a limit they do not reach, and the mask is the saturated
+        pixels' inverted in place (float frames keep ``data < hi``, which also leaves NaN pixels out)."""
         hi, lo = st.range.ceiling.value, st.range.floor.value
-        n_sat = int(np.count_nonzero(data >= hi))
-        n_clip = int(np.count_nonzero(data <= lo))
+        whole = data.dtype.kind in "ui"
+        sat_mask = None
+        if whole and fmax is not None and fmax < hi:
+            n_sat = 0
+        else:
+            sat_mask = data >= hi
+            n_sat = int(np.count_nonzero(sat_mask))
+        n_clip = 0 if whole and fmin is not None and fmin > lo else int(np.count_nonzero(data <= lo))
         valid = None
         if n_sat or (n_clip and st.range.clip_floor):
-            valid = data < hi if n_sat else np.ones(data.shape, bool)
+            if not n_sat:
+                valid = np.ones(data.shape, bool)
+            elif whole:
+                valid = np.logical_not(sat_mask, out=sat_mask)
+            else:
+                valid = data < hi
             if n_clip and st.range.clip_floor:
                 valid &= data > lo
         return n_sat / data.size, n_clip / data.size, valid
@@ -770,7 +784,7 @@ class Engine:
         fmin, fmax = self._observe_range(st, frame)
         hi, lo = st.range.ceiling.value, st.range.floor.value
         if fmax >= hi or fmin <= lo:  # most frames reach neither limit: two reductions, no counting
-            sat, clip, valid = self._clipped(st, data)
+            sat, clip, valid = self._clipped(st, data, fmin, fmax)
         else:
             sat, clip, valid = 0.0, 0.0, None
         sigma = immerkaer_sigma(img, row_step=st.noise_row_step, valid=valid)
@@ -786,8 +800,15 @@ class Engine:
             mean_binned = valid_counts = None
             if valid is not None:
                 n_valid = int(np.count_nonzero(valid))
-                mean_raw = (float(np.add.reduce(img[valid], axis=None, dtype=np.float64)) / n_valid
-                            if n_valid else NAN)
+                floor_out = clip > 0 and st.range.clip_floor
+                if img.dtype.kind in "ui" and fmax <= hi and (not floor_out or fmin >= lo):
+                    # every clipped pixel sits exactly at its limit: the usable pixels' sum is the frame's less
+                    # theirs, exact in float64 — a third of the masked frame's cost less than indexing by the mask
+                    total = float(np.add.reduce(binned if st.exact_binning else img, axis=None, dtype=np.float64))
+                    usable = total - round(sat * data.size) * hi - (round(clip * data.size) * lo if floor_out else 0)
+                else:
+                    usable = float(np.add.reduce(img[valid], axis=None, dtype=np.float64))
+                mean_raw = usable / n_valid if n_valid else NAN
                 # bins holding a clipped pixel take the mean of the usable pixels in the running means
                 # the mask binned once: here and in the registration's weights
                 valid_counts = bin_image(valid.view(np.uint8), factor)

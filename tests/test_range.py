@@ -296,3 +296,22 @@ def test_level_and_origin_reach_console_status():
     assert text == "saturates at 4095 (inferred)"
     line = format_status(Status(range_text=text), {(0, 0): rows[-1]})
     assert "saturated" in line and "4095 (inferred)" in line
+
+
+def test_mean_of_the_usable_pixels_is_exact():
+    # mean_f of a frame with clipped pixels is the mean of its unclipped pixels less the dark level: the engine
+    # takes it from the frame's sum less the clipped pixels' (they sit exactly at the limit) — held here against
+    # numpy's mean of the unclipped pixels, on 12-bit data with a saturated patch and with a floor clip
+    rng = np.random.default_rng(12)
+    spec = specimen_crop(_specimen(20.0), SHAPE, 0.0, 0.0)
+    for offset, patch in ((100.0, 4095), (-30.0, None)):
+        frames = [detect(spec, rng, gain=3.0, offset=offset, read_noise_dn=8.0, bits=12) for _ in range(14)]
+        if patch is not None:
+            for f in frames[12:]:
+                f[20:60, 50:100] = patch
+        rows, eng = _run(frames)
+        info = eng.stream_info()[(0, 0)]
+        for f, r in zip(frames[12:], rows[12:]):
+            valid = (f < info["saturation_level_dn"]) & ((f > info["floor_level_dn"]) | (not info["floor_is_clip"]))
+            assert valid.sum() < f.size  # the check has clipped pixels to leave out
+            assert r["mean_f"] + info["dark_level_dn"] == pytest.approx(f[valid].mean(dtype=np.float64), rel=1e-12)
