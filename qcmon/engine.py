@@ -803,7 +803,7 @@ class Engine:
                 floor_out = clip > 0 and st.range.clip_floor
                 if img.dtype.kind in "ui" and fmax <= hi and (not floor_out or fmin >= lo):
                     # every clipped pixel sits exactly at its limit: the usable pixels' sum is the frame's less
-                    # theirs, exact in float64 — a third of the masked frame's cost less than indexing by the mask
+                    # theirs, exact in float64, without a pass that indexes the frame by the mask
                     total = float(np.add.reduce(binned if st.exact_binning else img, axis=None, dtype=np.float64))
                     usable = total - round(sat * data.size) * hi - (round(clip * data.size) * lo if floor_out else 0)
                 else:
