@@ -149,6 +149,7 @@ class _Stream:
     reference: np.ndarray | None = None
     running: RunningMean | None = None
     line_mean: RunningMean | None = None
+    line_clip: RunningMean | None = None  # clipped pixels in line_mean's frames, while any are in its window
     zest: ZEstimator | None = None
     brightness: BrightnessTracker | None = None
     ptc: PhotonTransfer | None = None
@@ -206,6 +207,7 @@ class Engine:
         self._shared_order: deque[tuple[int, int]] = deque()
         self._waiting: dict[tuple[int, int], list[Frame]] = {}
         self._events: list[Event] = []
+        self._range_log: list[tuple[int, tuple[int, int], tuple]] = []  # see range_log
         #: messages about frames that were measured but left partly blank (e.g. moved beyond the searched range);
         #: the caller reports and clears them (:meth:`take_problems`)
         self.problems: list[str] = []
@@ -495,14 +497,28 @@ class Engine:
                     "registration, focus and z are blank there"))
         st.blank_since = None
 
-    def _clipped(self, st: _Stream, data: np.ndarray) -> tuple[float, float, np.ndarray | None]:
-        """Saturated and clipped fractions, and the mask of usable pixels (None when every pixel is)."""
+    def _clipped(self, st: _Stream, data: np.ndarray, fmin: float | None = None,
+                 fmax: float | None = None) -> tuple[float, float, np.ndarray | None]:
+        """Saturated and clipped fractions, and the mask of usable pixels (None when every pixel is). With the
+        frame's extremes, integer frames skip the count of a limit they do not reach, and the mask is the saturated
+        pixels' inverted in place (float frames keep ``data < hi``, which also leaves NaN pixels out)."""
         hi, lo = st.range.ceiling.value, st.range.floor.value
-        n_sat = int(np.count_nonzero(data >= hi))
-        n_clip = int(np.count_nonzero(data <= lo))
+        whole = data.dtype.kind in "ui"
+        sat_mask = None
+        if whole and fmax is not None and fmax < hi:
+            n_sat = 0
+        else:
+            sat_mask = data >= hi
+            n_sat = int(np.count_nonzero(sat_mask))
+        n_clip = 0 if whole and fmin is not None and fmin > lo else int(np.count_nonzero(data <= lo))
         valid = None
         if n_sat or (n_clip and st.range.clip_floor):
-            valid = data < hi if n_sat else np.ones(data.shape, bool)
+            if not n_sat:
+                valid = np.ones(data.shape, bool)
+            elif whole:
+                valid = np.logical_not(sat_mask, out=sat_mask)
+            else:
+                valid = data < hi
             if n_clip and st.range.clip_floor:
                 valid &= data > lo
         return n_sat / data.size, n_clip / data.size, valid
@@ -619,6 +635,33 @@ class Engine:
             rows.extend(self._measure_or_wait(st, fr))
         return rows
 
+    def range_state(self) -> dict:
+        """Each stream's detector levels: ``{(channel, plane): (ceiling, floor, floor_is_clip)}`` (picklable), for
+        :meth:`carry_range` of a copy of this engine that measures later frames (a split run's next chunk)."""
+        return {k: (st.range.ceiling, st.range.floor, st.range.clip_floor)
+                for k, st in self._streams.items() if st.range is not None}
+
+    @property
+    def range_log(self) -> list[tuple[int, tuple[int, int], tuple]]:
+        """Every change of a stream's detector levels: ``(frame, (channel, plane), (ceiling, floor,
+        floor_is_clip))`` from that frame on, in order (a split run compares and carries them between chunks)."""
+        return list(self._range_log)
+
+    def carry_range(self, state: dict) -> None:
+        """Take the detector levels an engine had after the frames before this one's (:meth:`range_state`), as
+        one engine measuring them all would have them: no event (the engine that found a level said so)."""
+        for key, (ceiling, floor, clip) in state.items():
+            st = self._streams.get(key)
+            if st is None or st.range is None:
+                continue
+            if (st.range.ceiling, st.range.floor, st.range.clip_floor) == (ceiling, floor, clip):
+                continue
+            st.range.ceiling, st.range.floor, st.range.clip_floor = ceiling, floor, clip
+            st.max_value = ceiling.value
+            if st.ptc is not None:
+                st.ptc.max_value = st.max_value
+                st.ptc.floor = floor.value
+
     def _observe_range(self, st: _Stream, frame: Frame) -> tuple[float, float]:  # noqa: D401
         """Hand the frame's extremes to the range finder; record a level found or withdrawn. (min, max)."""
         a = frame.data
@@ -628,6 +671,8 @@ class Engine:
             fmin, fmax = float(a.min()), float(a.max())
         notes = st.range.observe(a, fmin, fmax)
         if notes:
+            self._range_log.append((frame.index, (frame.channel, frame.plane),
+                                    (st.range.ceiling, st.range.floor, st.range.clip_floor)))
             st.max_value = st.range.ceiling.value
             if st.ptc is not None:
                 st.ptc.max_value = st.max_value
@@ -811,7 +856,7 @@ class Engine:
         fmin, fmax = self._observe_range(st, frame)
         hi, lo = st.range.ceiling.value, st.range.floor.value
         if fmax >= hi or fmin <= lo:  # most frames reach neither limit: two reductions, no counting
-            sat, clip, valid = self._clipped(st, data)
+            sat, clip, valid = self._clipped(st, data, fmin, fmax)
         else:
             sat, clip, valid = 0.0, 0.0, None
         sigma = immerkaer_sigma(img, row_step=st.noise_row_step, valid=valid)
@@ -824,15 +869,26 @@ class Engine:
             self._note_blank(st, frame, "constant frames, or more than half of the pixels at a detector limit")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # undefined values come out as NaN in the row
-            mean_binned = None
+            mean_binned = valid_counts = None
             if valid is not None:
                 n_valid = int(np.count_nonzero(valid))
-                mean_raw = (float(np.add.reduce(img[valid], axis=None, dtype=np.float64)) / n_valid
-                            if n_valid else NAN)
+                floor_out = clip > 0 and st.range.clip_floor
+                if img.dtype.kind in "ui" and fmax <= hi and (not floor_out or fmin >= lo):
+                    # every clipped pixel sits exactly at its limit: the usable pixels' sum is the frame's less
+                    # theirs, exact in float64, without a pass that indexes the frame by the mask
+                    total = float(np.add.reduce(binned if st.exact_binning else img, axis=None, dtype=np.float64))
+                    usable = total - round(sat * data.size) * hi - (round(clip * data.size) * lo if floor_out else 0)
+                else:
+                    usable = float(np.add.reduce(img[valid], axis=None, dtype=np.float64))
+                mean_raw = usable / n_valid if n_valid else NAN
                 # bins holding a clipped pixel take the mean of the usable pixels in the running means
-                full = bin_image(valid.view(np.uint8), factor) >= factor * factor
-                binned_clean = np.where(full, binned, np.float32(mean_raw * factor * factor)
-                                        if n_valid else np.float32(0))
+                # the mask binned once: here and in the registration's weights
+                valid_counts = bin_image(valid.view(np.uint8), factor)
+                full = valid_counts >= factor * factor
+                fill = mean_raw * factor * factor if n_valid else 0.0
+                if img.dtype.kind in "ui":  # a whole number: the running means' float32 sums stay exact (the
+                    fill = round(fill)      # same in any order, so a split run's workers sum what one process does)
+                binned_clean = np.where(full, binned, np.float32(fill))
             elif st.exact_binning:
                 total = float(np.add.reduce(binned, axis=None, dtype=np.float64))  # exact: integer values
                 mean_raw, mean_binned = total / img.size, total / binned.size
@@ -844,7 +900,7 @@ class Engine:
                     self._remember_motion(frame.index, frame.plane, res)
             elif motion is None:
                 if img.dtype.kind in "ui" or np.isfinite(binned).all():
-                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid)
+                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img, valid=valid)
             if structured and motion is None and st.shift.out_of_range:
@@ -871,7 +927,12 @@ class Engine:
             ishift = (int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy) else (0, 0)
             if structured:
                 st.running.push(binned if valid is None else binned_clean, dy / factor, dx / factor)
+                if valid is not None and st.line_clip is None:  # the window's first clipped frame: none before
+                    st.line_clip = st.line_mean.zeros_like()
                 st.line_mean.push(img, dy, dx)
+                if st.line_clip is not None:  # which of the line offset's pixels were clipped in the window
+                    st.line_clip.push(np.zeros(img.shape, np.uint8) if valid is None else (~valid).view(np.uint8),
+                                      dy, dx)
                 if (st.n_measured + 1) % s.z_every == 0 or st.n_measured < s.z_every:
                     mean_img = st.running.mean
                     if st.running.n_frames >= s.running_mean_frames:  # a partial mean is noisier than the reference
@@ -885,7 +946,14 @@ class Engine:
                     # directions' rows stay apart).
                     rows = st.line_mean.mean  # rows above, odd rows, rows below (line_rows), stacked
                     k = rows.shape[0] // 3
-                    st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:])
+                    line_valid = None
+                    if st.line_clip is not None:  # pixels clipped in any frame of the window carry no weight
+                        good = st.line_clip.mean == 0
+                        if good.all():  # no clipped frame left in the window
+                            st.line_clip = None
+                        else:
+                            line_valid = good[:k] & good[k:2 * k] & good[2 * k:]
+                    st.last_line_offset = line_offset_rows(rows[:k], rows[k:2 * k], rows[2 * k:], valid=line_valid)
             if structured:
                 row["focus_corr"], row["focus_measure"] = st.last_focus
                 row["z_um"], row["z_corr"] = st.last_z

@@ -18,6 +18,7 @@ from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
 from qcmon.metrics.registration import ShiftEstimator
 from qcmon.metrics.saturation import RangeFinder, find_pileup
+from qcmon.metrics.shift_bound import shift_crb
 
 SHAPE = (128, 128)
 
@@ -161,6 +162,104 @@ def test_stationary_saturated_patch_does_not_capture_the_shift():
     assert abs(np.median(mf[20:]) / np.median(mf[10:20]) - 1) < 0.1
 
 
+def _patch_session(photons: float, n: int, seed: int, *, patch_in_reference: bool = False):
+    """10 unshifted frames (the reference), then ``n`` frames moved by known shifts (uniform in ±2.5 px), each with
+    and without a stationary patch at the 12-bit ceiling over 12.2 % of the field; the nuclei specimen (stardist
+    wheel) through the EMVA 1288 model (gain 3, offset 100 DN, read noise 8 DN, 12 bits)."""
+    rng = np.random.default_rng(seed)
+    spec = _specimen(photons)
+    kw = dict(gain=3.0, offset=100.0, read_noise_dn=8.0, bits=12)
+    valid = np.ones(SHAPE, bool)
+    valid[20:60, 50:100] = False
+    ref = [detect(specimen_crop(spec, SHAPE, 0.0, 0.0, margin=8), rng, **kw) for _ in range(10)]
+    truth = rng.uniform(-2.5, 2.5, (n, 2))
+    clean = [detect(specimen_crop(spec, SHAPE, dy, dx, margin=8), rng, **kw) for dy, dx in truth]
+    patched = [np.where(valid, f, np.uint16(4095)) for f in clean]
+    if patch_in_reference:
+        ref = [np.where(valid, f, np.uint16(4095)) for f in ref]
+    return ref, clean, patched, truth, valid
+
+
+def _shifts(rows) -> np.ndarray:
+    return np.array([(r["dy_px"], r["dx_px"]) for r in rows])
+
+
+def test_patch_frames_as_precise_as_clean_frames():
+    """Frames with a stationary saturated patch are refined by the likelihood over their usable pixels: as precise
+    as the same frames without the patch (the Cramér–Rao bound over the usable pixels is 7 % above the whole
+    field's here), and neither biased toward the patch nor better than the bound. At 5 photons/px, 128²."""
+    ref, clean, patched, truth, valid = _patch_session(5.0, 30, 31)
+    rows_p, eng = _run(ref + patched)
+    rows_c, _ = _run(ref + clean)
+    err_p = _shifts(rows_p)[10:] - truth
+    err_c = _shifts(rows_c)[10:] - truth
+    rms_p = math.sqrt(np.mean(np.sum(err_p ** 2, axis=1)))
+    rms_c = math.sqrt(np.mean(np.sum(err_c ** 2, axis=1)))
+    # measured 0.126 px against 0.121 px (phase correlation alone on the patch frames, as before: 0.287 px)
+    assert rms_p < 1.2 * rms_c + 0.01, (rms_p, rms_c)
+    assert np.all(np.abs(err_p.mean(axis=0)) < 3 * err_p.std(axis=0) / math.sqrt(len(err_p)) + 0.01)
+    # the bound (qcmon.metrics.shift_bound over the usable pixels: Cramér 1946, Rao 1945) is never beaten
+    still = specimen_crop(_specimen(5.0), SHAPE, 0.0, 0.0, margin=8)
+    bound = math.hypot(*shift_crb(still, float(still.mean()), read_noise_photons=8.0 / 3.0, valid=valid))
+    assert bound < rms_p < 8 * bound, (rms_p, bound)
+
+
+def test_patch_agrees_with_scikit_image_masked_registration():
+    # Peer: scikit-image's phase_cross_correlation with reference_mask/moving_mask (masked normalised
+    # cross-correlation, Padfield 2012, IEEE Trans. Image Process. 21:2706) on the same frames and reference. It
+    # resolves whole pixels only: ours must agree within half a pixel and a noise margin on every frame, and be
+    # closer to the truth (its rounding alone costs 0.41 px RMS on uniform shifts).
+    from skimage.registration import phase_cross_correlation
+
+    ref, _, patched, truth, valid = _patch_session(20.0, 16, 32)
+    rows, eng = _run(ref + patched)
+    ours = _shifts(rows)[10:]
+    reference = eng.reference_image(0, 0)
+    theirs = np.array([-phase_cross_correlation(reference, f.astype(np.float32), reference_mask=np.ones_like(valid),
+                                                moving_mask=f < 4095)[0] for f in patched])
+    assert np.max(np.abs(ours - theirs)) < 0.6, np.abs(ours - theirs).max()
+    assert np.sqrt(np.mean((ours - truth) ** 2)) < 0.5 * np.sqrt(np.mean((theirs - truth) ** 2))
+
+
+def test_patch_already_in_the_reference_frames():
+    """A patch present from the first frame: the reference's unusable part is drawn featureless, and the
+    likelihood leaves out the frame pixels that meet it. Measured 0.030 px RMS, no bias beyond 0.007 px (the same
+    frames without any patch: 0.027); before, with phase correlation alone, 0.24 px and a 0.1 px pull toward the
+    patch."""
+    ref, clean, patched, truth, valid = _patch_session(20.0, 30, 33, patch_in_reference=True)
+    rows, eng = _run(ref + patched)
+    assert eng.stream_info()[(0, 0)]["saturation_level_dn"] == 4095
+    err = _shifts(rows)[10:] - truth
+    assert math.sqrt(np.mean(np.sum(err ** 2, axis=1))) < 0.06
+    assert np.all(np.abs(err.mean(axis=0)) < 0.02)
+
+
+def test_mask_binned_once_and_kept_gives_the_same_shifts():
+    # The engine hands the estimator the mask it has binned (valid_counts), and the estimator keeps the last mask's
+    # weights and spectra for an equal mask: neither may change a result. Each frame is held against a fresh
+    # estimator (nothing kept) on frames whose masks repeat, change and come back, and whose shifts cross whole
+    # pixels (the reference's unusable part meets them at another whole-pixel shift).
+    from qcmon.metrics._imageops import bin_image
+
+    ref, _, patched, truth, valid = _patch_session(20.0, 6, 34, patch_in_reference=True)
+    reference = np.mean(ref, axis=0).astype(np.float32)
+    kw = dict(upsample=20, bin_factor=2, dark_level=100.0, gain=3.0, read_noise_dn=8.0, reference_frames=10,
+              reference_valid=valid)
+    kept = ShiftEstimator(reference, **kw)
+    frames = [patched[0], patched[0], patched[1], patched[2], patched[2], patched[3]]
+    frames[4] = frames[4].copy()
+    frames[4][70:80, 10:20] = 4095  # another clipped spot: another mask
+    for f in frames:
+        v = f < 4095
+        b = bin_image(f, 2)
+        counts = bin_image(v.view(np.uint8), 2)
+        got = kept.estimate_binned(b, valid=v, valid_counts=counts)
+        fresh = ShiftEstimator(reference, **kw).estimate_binned(b, valid=v)
+        assert got == fresh
+    with pytest.raises(ValueError, match="valid_counts"):
+        kept.estimate_binned(b, valid=v, valid_counts=counts[:-1])
+
+
 def test_simulated_rig_start_through_the_engine():
     # qcmon's simulator (not an outside check; the outside ones are above): closed shutter, 13 bits in 16-bit
     # pages without the bit depth given, saturating cells and a stationary saturated patch, all at once
@@ -197,3 +296,22 @@ def test_level_and_origin_reach_console_status():
     assert text == "saturates at 4095 (inferred)"
     line = format_status(Status(range_text=text), {(0, 0): rows[-1]})
     assert "saturated" in line and "4095 (inferred)" in line
+
+
+def test_mean_of_the_usable_pixels_is_exact():
+    # mean_f of a frame with clipped pixels is the mean of its unclipped pixels less the dark level: the engine
+    # takes it from the frame's sum less the clipped pixels' (they sit exactly at the limit) — held here against
+    # numpy's mean of the unclipped pixels, on 12-bit data with a saturated patch and with a floor clip
+    rng = np.random.default_rng(12)
+    spec = specimen_crop(_specimen(20.0), SHAPE, 0.0, 0.0)
+    for offset, patch in ((100.0, 4095), (-30.0, None)):
+        frames = [detect(spec, rng, gain=3.0, offset=offset, read_noise_dn=8.0, bits=12) for _ in range(14)]
+        if patch is not None:
+            for f in frames[12:]:
+                f[20:60, 50:100] = patch
+        rows, eng = _run(frames)
+        info = eng.stream_info()[(0, 0)]
+        for f, r in zip(frames[12:], rows[12:]):
+            valid = (f < info["saturation_level_dn"]) & ((f > info["floor_level_dn"]) | (not info["floor_is_clip"]))
+            assert valid.sum() < f.size  # the check has clipped pixels to leave out
+            assert r["mean_f"] + info["dark_level_dn"] == pytest.approx(f[valid].mean(dtype=np.float64), rel=1e-12)

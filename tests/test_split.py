@@ -186,3 +186,37 @@ def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch
         Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
     assert launched == [1]
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
+
+
+def test_a_level_found_in_one_chunk_holds_in_the_later_ones(tmp_path, monkeypatch):
+    # Outside data (the nuclei of tests/outside_data.py through the EMVA 1288 model, 12 bits in 16-bit pages): a
+    # saturated patch in frames 100-149 shows the 12-bit ceiling (a pile-up: inferred in the first chunk); from frame
+    # 600 on, in the second chunk, only 6 pixels a frame reach it — too few to show a pile-up on their own. One
+    # process counts them as saturated from the level it found; a worker must have that level too.
+    import tifffile
+    from outside_data import detect, nuclei_2d, specimen_crop
+
+    rng = np.random.default_rng(8)
+    img = nuclei_2d().astype(np.float64)
+    lam = specimen_crop(img * (20.0 / img.mean()), (64, 64), 0.0, 0.0)
+    folder = tmp_path / "s"
+    folder.mkdir()
+    stack = np.stack([detect(lam, rng, gain=3.0, offset=100.0, read_noise_dn=8.0, bits=12) for _ in range(800)])
+    stack[100:150, 10:30, 10:30] = 4095
+    stack[600:, 50, 40:46] = 4095
+    for i in range(0, 800, 100):
+        tifffile.imwrite(folder / f"part_{i // 100:02d}.tif", stack[i:i + 100])
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    outs = {}
+    for w in (1, 2):
+        outs[w] = tmp_path / f"out{w}"
+        Monitor(MonitorOptions(path=folder, out_dir=outs[w], follow=False, workers=w, frame_rate_hz=30.0)).run()
+    one, two = _traces(outs[1]), _traces(outs[2])
+    assert float(one[700]["saturated_frac"]) == pytest.approx(6 / 64 ** 2)  # the check can fail
+    assert [r["frame"] for r in two] == [str(i) for i in range(800)]
+    for a, b in zip(one, two):
+        assert a == b, a["frame"]
+    s1 = json.loads((outs[1] / "summary.json").read_text())
+    s2 = json.loads((outs[2] / "summary.json").read_text())
+    assert s2["engine"]["streams"]["0,0"]["saturation_level_origin"] == \
+        s1["engine"]["streams"]["0,0"]["saturation_level_origin"] == "inferred"

@@ -15,7 +15,7 @@ from qcmon.metrics._validate import as_image, positive_int
 __all__ = ["line_offset_px", "line_offset_rows", "line_rows"]
 
 
-def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
+def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100, valid=None) -> float:
     """Subpixel shift of the odd rows' content against the even rows' (bidirectional scanning).
 
     Each odd row is compared with the mean of the even rows above and below it (so that a slanted structure,
@@ -34,6 +34,11 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     upsample : int, optional
         The peak is found on a 0.1 px grid, then on a ``1 / upsample`` px grid around it, then refined by a
         parabola through the three best points. Default 100.
+    valid : (M, N) bool array_like, optional
+        True where a pixel is usable; False (saturated, clipped at the floor) carries no weight. A pixel is left
+        out of the comparison of an odd row with its even neighbours when it or the pixel above or below it is
+        unusable; the weight rises again over a few pixels (:data:`_EDGE_PX`), so that the edge of an unusable
+        region, the same in both scan directions, does not pull the offset toward zero. None: every pixel.
 
     Returns
     -------
@@ -62,8 +67,14 @@ def line_offset_px(frame, *, row_step: int = 1, upsample: int = 100) -> float:
     m = a.shape[0]
     stop = 2 * ((m - 1) // 2)  # one past the last odd row that has an even row on both sides
     step = 2 * row_step
+    v = None
+    if valid is not None:
+        v = np.asarray(valid)
+        if v.shape != a.shape or v.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {a.shape}, got {v.dtype} {v.shape}")
+        v = (v[0:stop - 1:step], v[1:stop:step], v[2:stop + 1:step])
     # strided views of the chosen odd rows and of the even rows above and below them (no gather)
-    return _offset(a[0:stop - 1:step], a[1:stop:step], a[2:stop + 1:step], upsample, stacklevel=3)
+    return _offset(a[0:stop - 1:step], a[1:stop:step], a[2:stop + 1:step], upsample, stacklevel=3, valid=v)
 
 
 def line_rows(n_rows: int, *, row_step: int = 1) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -76,26 +87,66 @@ def line_rows(n_rows: int, *, row_step: int = 1) -> tuple[np.ndarray, np.ndarray
     return odd - 1, odd, odd + 1
 
 
-def line_offset_rows(above, odd, below, *, upsample: int = 100) -> float:
+def line_offset_rows(above, odd, below, *, upsample: int = 100, valid=None) -> float:
     """:func:`line_offset_px` from the rows it reads only: ``odd`` rows and the even rows ``above`` and ``below``
-    them, each (K, N), as chosen by :func:`line_rows`. The same computation, so the same value."""
+    them, each (K, N), as chosen by :func:`line_rows`. The same computation, so the same value. ``valid``, if
+    given, is a (K, N) bool array: True where the pixel of ``odd`` and those of ``above`` and ``below`` beside it
+    are all usable (see :func:`line_offset_px`)."""
     rows = [as_image(r, name, min_shape=(1, 8)) for r, name in ((above, "above"), (odd, "odd"), (below, "below"))]
     if not rows[0].shape == rows[1].shape == rows[2].shape:
         raise ValueError(f"above, odd and below must have one shape, got {[r.shape for r in rows]}")
-    return _offset(*rows, upsample, stacklevel=3)
+    if valid is not None:
+        valid = np.asarray(valid)
+        if valid.shape != rows[1].shape or valid.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {rows[1].shape}, got {valid.dtype} "
+                             f"{valid.shape}")
+        valid = (valid,)
+    return _offset(*rows, upsample, stacklevel=3, valid=valid)
 
 
-def _offset(above: np.ndarray, odd: np.ndarray, below: np.ndarray, upsample: int, *, stacklevel: int) -> float:
+#: Width (px) over which the weight beside an unusable pixel rises from 0 to 1 along a row.
+_EDGE_PX = 3
+
+
+def _row_weights(valid: tuple, taper: np.ndarray) -> np.ndarray | None:
+    """Per-row weights: the edge taper times 0 where a pixel (or, given three masks, its neighbour above or below)
+    is unusable, rising over :data:`_EDGE_PX` px beside it (``w0 · box(w0)²``, as the registration's weights).
+    None when every pixel is usable."""
+    good = valid[0].copy() if len(valid) == 1 else valid[0] & valid[1] & valid[2]
+    if good.all():
+        return None
+    from scipy import ndimage
+
+    w0 = good.astype(np.float32)
+    box = ndimage.uniform_filter1d(w0, 2 * _EDGE_PX + 1, axis=1, mode="nearest")
+    w0 *= box
+    w0 *= box
+    w0 *= taper
+    return w0
+
+
+def _offset(above: np.ndarray, odd: np.ndarray, below: np.ndarray, upsample: int, *, stacklevel: int,
+            valid: tuple | None = None) -> float:
     upsample = positive_int(upsample, "upsample")
     n = odd.shape[1]
     odd = odd.astype(np.float32)
     even = np.add(above, below, dtype=np.float32)
     even *= np.float32(0.5)
     taper = _edge_taper(n)
-    odd -= odd.mean(axis=1, keepdims=True)
-    odd *= taper
-    even -= even.mean(axis=1, keepdims=True)
-    even *= taper
+    w = _row_weights(valid, taper) if valid is not None else None
+    if w is None:
+        odd -= odd.mean(axis=1, keepdims=True)
+        odd *= taper
+        even -= even.mean(axis=1, keepdims=True)
+        even *= taper
+    else:
+        # each row less its mean over the weighted pixels, times the weights: the products hold no edge of their
+        # own (rows without a usable pixel get weight 0 throughout)
+        sw = w.sum(axis=1, keepdims=True)
+        sw[sw <= 0] = np.inf
+        for x in (odd, even):
+            x -= (x * w).sum(axis=1, keepdims=True) / sw
+            x *= w
     spec = sfft.rfft(np.concatenate((odd, even)), axis=1)
     k = odd.shape[0]
     cross = np.einsum("ij,ij->j", spec[:k], spec[k:].conj()).astype(np.complex128)

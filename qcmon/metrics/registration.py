@@ -95,7 +95,8 @@ class ShiftEstimator:
         How many frames the reference is the mean of (its noise is the frames' over this number).
     reference_valid : (M, N) bool ndarray, optional
         True where a reference pixel is usable; the others (e.g. saturated in the frames it was built from) are
-        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift.
+        replaced by the mean of the usable ones, so that a patch fixed on the detector does not hold the shift, and
+        the likelihood refinement gives no weight to frame pixels that meet them.
 
     Notes
     -----
@@ -185,6 +186,18 @@ class ShiftEstimator:
         self.window = bool(window)
         self.max_shift_px = None if max_shift_px is None else float(max_shift_px)
         self.workers = int(workers)
+        self._vmask_last: tuple[np.ndarray, np.ndarray] | None = None  # the last mask's counts and weights
+        self._wm_last: tuple | None = None  # the likelihood's weight spectrum for the last mask (_ml_masked)
+        # the reference's usable pixels as binned weights (None: all): the likelihood leaves out frame pixels that
+        # meet the reference's unusable (featureless) parts, wherever the frame's own mask leaves them in
+        self._ref_vmask = None
+        if reference_valid is not None and not rv.all():
+            from scipy import ndimage
+
+            # every pixel _featureless changed (1 px and a bin's soft edge) and a bin more for the rounding of d0
+            # (at 128², 200 photons/px, the shift was biased 0.03 px toward the patch with 1 px, 0.07 px with none)
+            grow = 2 * self.bin_factor + 1
+            self._ref_vmask = self._binned_valid(~ndimage.binary_dilation(~rv, iterations=grow))
 
         refb = bin_image(ref.astype(np.float32, copy=False), self.bin_factor)
         refb = finite_float32(refb, "reference", warn=False)
@@ -316,6 +329,7 @@ class ShiftEstimator:
             self._ml_blocks.append((slice(mb - kr, mb), slice(0, kc)))
         self._ml_p1 = [(wf * hl)[blk].astype(np.complex64) for blk in self._ml_blocks]
         self._ml_p2 = [(h * wf * np.conj(lamf))[blk].astype(np.complex64) for blk in self._ml_blocks]
+        self._ml_hconjlam, self._ml_lam0 = (h * np.conj(lamf)).astype(np.complex64), float(lamf[0, 0].real)
         self._ml_sum_w = float(w.sum(dtype=np.float64))
         self._ml_sum_wlam = float(np.sum(w * lam))
         taper = self._ALPHA / 2 if self._win is not None else 0.0
@@ -333,7 +347,8 @@ class ShiftEstimator:
         lo, hi = self._ML_BAND
         return 0.5 * (1 + np.cos(np.pi * np.clip((rad - lo) / max(hi - lo, 1e-9), 0.0, 1.0)))
 
-    def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float) -> tuple[float, float] | None:
+    def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float, vmask: np.ndarray | None = None,
+                   gb: np.ndarray | None = None) -> tuple[float, float] | None:
         """Maximise the Poisson log-likelihood of the frame over the shift by Newton's method, from (cy, cx).
 
         The frame's expected counts are the reference moved by ``d`` and scaled by the frame's brightness ``a``:
@@ -342,14 +357,29 @@ class ShiftEstimator:
         dark level) with the logarithm of the reference, less a correction for the window. Its value and first
         two derivatives at any subpixel ``d`` are sums over the spectrum (no interpolation); the maximum is found
         to machine precision in 2-4 Newton steps. Returns None if Newton's method does not stay near the start.
+
+        *Unusable pixels.* With ``vmask`` (the frame's binned weights, 0 on clipped pixels, :meth:`_binned_valid`)
+        the sum runs over the usable pixels only: ``w`` becomes ``w · vmask``, and where the reference has unusable
+        parts (drawn featureless, :func:`_featureless`) also ``· ref_vmask(x - d0)`` at the phase-correlation shift
+        ``d0``, so that no frame pixel is held against a reference value that is not the specimen's. The weight is
+        fixed on the frame's pixel grid — as a stationary saturated patch is fixed on the detector — while the
+        model moves beneath it; the likelihood with any fixed weight has its maximum at the true shift, and the
+        window's terms, no longer confined to the lowest frequencies, take the weight's whole spectrum (one more
+        FFT). The brightness ``a`` is matched over the same weighted pixels at ``d0``.
         """
         c1 = mean - self._dark_b + self._ml_add
-        swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
-        a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
-        r = g_full * self._ml_conjl
-        c1_, a_ = np.complex64(c1), np.complex64(a)
-        for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
-            r[blk] += c1_ * p1 - a_ * p2
+        c1_ = np.complex64(c1)
+        if vmask is None and self._ref_vmask is None:
+            swg = float(g_full[0, 0].real) + c1 * self._ml_sum_w
+            a = swg / self._ml_sum_wlam if self._ml_sum_wlam > 0 else 0.0
+            r = g_full * self._ml_conjl
+            a_ = np.complex64(a)
+            for blk, p1, p2 in zip(self._ml_blocks, self._ml_p1, self._ml_p2):
+                r[blk] += c1_ * p1 - a_ * p2
+        else:
+            r = self._ml_masked(g_full, gb, c1, cy, cx, vmask)
+            if r is None:
+                return None
         uy, ux = self._ml_uy, self._ml_ux
         y, x = cy, cx
         for _ in range(self._ML_STEPS):
@@ -374,6 +404,51 @@ class ShiftEstimator:
             if abs(dy) < 1e-4 and abs(dx) < 1e-4:
                 break
         return y, x
+
+    def _ml_masked(self, g_full: np.ndarray, gb: np.ndarray | None, c1: float, cy: float, cx: float,
+                   vmask: np.ndarray | None) -> np.ndarray | None:
+        """The likelihood's spectrum ``r`` (see :meth:`_ml_refine`) with the weight ``w · vmask · ref_vmask(x -
+        d0)``; ``g_full`` is the transform of ``gb``, the frame less its mean times ``w · vmask``. None if no
+        weight is left. The weight's spectral products are kept for the next frame with the same mask (a
+        stationary patch) at the same whole-pixel shift."""
+        iy, ix = (-int(round(cy)), -int(round(cx))) if self._ref_vmask is not None else (0, 0)
+        key = (vmask, (iy, ix), self._ref_vmask, self._ml_conjl, self._ml_hconjlam)
+        last = self._wm_last
+        if last is not None and all(a is b if not isinstance(a, tuple) else a == b for a, b in zip(last[0], key)):
+            extra, p1, p2, sum_wm = last[1]
+        else:
+            wm = self._win if self._win is not None else np.ones(self._bshape, np.float32)
+            if vmask is not None:
+                wm = wm * vmask
+            extra = None
+            if self._ref_vmask is not None:
+                # the reference's unusable parts where they fall on the frame at the phase-correlation shift d0:
+                # frame pixel x meets reference pixel x - d0
+                extra = np.empty_like(self._ref_vmask)
+                shift_integer(self._ref_vmask, iy, ix, extra)
+                wm = wm * extra
+            wmf = _fft.rfft2(np.ascontiguousarray(wm, dtype=np.float32), self.workers)
+            sum_wm = float(wmf[0, 0].real)
+            p1, p2 = wmf * self._ml_conjl, wmf * self._ml_hconjlam
+            self._wm_last = (key, (extra, p1, p2, sum_wm))
+        if not sum_wm > 0:
+            return None
+        if extra is not None:
+            # the frame's transform must carry the same weight (its sum over the new weight is carried by c1)
+            if gb is None:
+                gb = _fft.irfft2(g_full, self._bshape, self.workers)
+            g_full = _fft.rfft2(np.ascontiguousarray(gb * extra, dtype=np.float32), self.workers)
+        mb, nb = self._bshape
+        # sum_x wm(x) lam(x - d0), over the whole spectrum (the mean term apart: h holds 0 there)
+        er = np.exp((1j * _TWO_PI / mb) * cy * _signed_freqs(mb, mb)).astype(np.complex64)
+        ec = np.exp((1j * _TWO_PI / nb) * cx * np.arange(nb // 2 + 1)).astype(np.complex64)
+        swlam = (float((er @ p2 @ ec).real) + sum_wm * self._ml_lam0) / (mb * nb)
+        swg = float(g_full[0, 0].real) + c1 * sum_wm
+        a = swg / swlam if swlam > 0 else 0.0
+        r = g_full * self._ml_conjl
+        r += np.complex64(c1) * p1
+        r -= np.complex64(a) * p2
+        return r
 
     # ------------------------------------------------------------------ helpers
     def _taper(self, frac: np.ndarray) -> np.ndarray:
@@ -470,9 +545,11 @@ class ShiftEstimator:
                 return _NAN_RESULT
         return self._estimate_binned(gb, stacklevel=3, vmask=self._binned_valid(valid))
 
-    def _binned_valid(self, valid) -> np.ndarray | None:
+    def _binned_valid(self, valid, counts: np.ndarray | None = None) -> np.ndarray | None:
         """Weights of the binned pixels from a full-resolution ``valid`` mask (float32, binned shape); None when
-        every pixel is valid.
+        every pixel is valid. ``counts``, if given, is ``bin_image(valid.view(np.uint8), bin_factor)`` made by the
+        caller (then it is not binned again). The weights of the last mask are kept (read-only) and handed out
+        again for an equal one: a saturated patch fixed on the detector gives the same mask frame after frame.
 
         A binned pixel with any unusable pixel in it gets weight 0; the weight of the usable ones next to them
         rises over one binned pixel (``w0 · box3(w0)²``, ``w0`` the 0/1 weights, ``box3`` the 3 × 3 mean), so that
@@ -484,21 +561,33 @@ class ShiftEstimator:
         v = np.asarray(valid)
         if v.shape != self.shape or v.dtype != np.bool_:
             raise ValueError(f"valid must be a boolean mask of shape {self.shape}, got {v.dtype} {v.shape}")
-        if v.all():
-            return None
         b = self.bin_factor
-        vb = bin_image(v.view(np.uint8), b) if b > 1 else v.astype(np.float32)
-        w0 = (vb >= b * b - 0.5).astype(np.float32)
+        if counts is None:
+            if v.all():
+                return None
+            counts = bin_image(v.view(np.uint8), b) if b > 1 else v.astype(np.float32)
+        elif counts.shape != self._bshape or counts.dtype != np.float32:
+            raise ValueError(f"valid_counts must be a float32 image of shape {self._bshape}, got {counts.dtype} "
+                             f"{counts.shape}")
+        last = self._vmask_last
+        if last is not None and np.array_equal(counts, last[0]):
+            return last[1]
+        w0 = (counts >= b * b - 0.5).astype(np.float32)
+        if w0.all():
+            return None
         pad = np.pad(w0, 1, mode="edge")
-        box = np.zeros_like(w0)
-        for i in range(3):
-            for j in range(3):
-                box += pad[i:i + w0.shape[0], j:j + w0.shape[1]]
+        rows = pad[:-2] + pad[1:-1]  # the 3 x 3 box sum, separably
+        rows += pad[2:]
+        box = rows[:, :-2] + rows[:, 1:-1]
+        box += rows[:, 2:]
         box *= np.float32(1.0 / 9.0)
-        return w0 * box * box
+        w = w0 * box * box
+        w.setflags(write=False)
+        self._vmask_last = (counts.copy(), w)
+        return w
 
     def estimate_binned(self, binned: np.ndarray, *, mean: float | None = None,
-                        valid: np.ndarray | None = None) -> ShiftResult:
+                        valid: np.ndarray | None = None, valid_counts: np.ndarray | None = None) -> ShiftResult:
         """:meth:`estimate` of a frame already binned by :attr:`bin_factor`, for callers that need the binned frame
         themselves (the engine takes the frame's exact mean from it).
 
@@ -510,12 +599,16 @@ class ShiftEstimator:
             Mean of ``binned``, if the caller has computed it already.
         valid : (M, N) bool ndarray, optional
             Full-resolution mask of usable pixels, as for :meth:`estimate`.
+        valid_counts : (M // bin_factor, N // bin_factor) float32 ndarray, optional
+            ``bin_image(valid.view(np.uint8), bin_factor)``, if the caller has binned the mask already (with
+            ``valid``; spares binning it twice).
         """
         self.out_of_range = False
         if binned.shape != self._bshape or binned.dtype != np.float32:
             raise ValueError(f"binned must be a float32 image of shape {self._bshape}, got {binned.dtype} "
                              f"{binned.shape}")
-        return self._estimate_binned(binned, stacklevel=3, mean=mean, vmask=self._binned_valid(valid))
+        return self._estimate_binned(binned, stacklevel=3, mean=mean,
+                                     vmask=self._binned_valid(valid, valid_counts if valid is not None else None))
 
     def _estimate_binned(self, gb: np.ndarray, *, stacklevel: int, mean: float | None = None,
                          vmask: np.ndarray | None = None) -> ShiftResult:
@@ -566,10 +659,9 @@ class ShiftEstimator:
         # the window's taper, content wrapped around the reference's edges gets weight and would bias it, so
         # larger shifts keep the phase-correlation estimate. Newton's method needs no grid finer than the
         # second-last stage's (steps of 1/3 binned px at 512 px), so the last stage runs only if it is not used.
-        # Frames with unusable (clipped) pixels keep the weighted phase-correlation estimate: the likelihood's
-        # window would have to follow each frame's mask (its precomputed spectra assume the whole window), and
-        # without that the masked region biases it (0.19 px toward the patch, tests/test_range.py).
-        use_ml = (vmask is None and self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
+        # Frames with unusable (clipped) pixels, and frames meeting the reference's unusable parts, are refined with
+        # the likelihood over their usable pixels (see _ml_refine).
+        use_ml = (self._ML_STEPS > 0 and abs(cy) <= self._ml_reach[0] + self._coarse_step[0]
                   and abs(cx) <= self._ml_reach[1] + self._coarse_step[1])
         stages = self._stages[:-1] if use_ml and len(self._stages) > 1 else self._stages
         for offs_y, offs_x, er0, ec0 in stages:
@@ -583,7 +675,7 @@ class ShiftEstimator:
             ramp_r, ramp_c = er[a], ec[:, b]
         ml = None
         if use_ml and abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
-            ml = self._ml_refine(g_full, mean, cy, cx)
+            ml = self._ml_refine(g_full, mean, cy, cx, vmask, gb)
         if ml is not None:
             cy, cx = ml
         elif len(stages) < len(self._stages):  # no refinement after all: the last grid stage

@@ -39,7 +39,7 @@ def spectral_gradient(image: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def shift_crb(image, photons_per_px: float, *, background_photons: float = 0.0,
-              read_noise_photons: float = 0.0) -> tuple[float, float]:
+              read_noise_photons: float = 0.0, valid=None) -> tuple[float, float]:
     """Cramér–Rao lower bound on the standard deviation of a rigid (dy, dx) shift estimated from one frame.
 
     Parameters
@@ -53,6 +53,10 @@ def shift_crb(image, photons_per_px: float, *, background_photons: float = 0.0,
     read_noise_photons : float, optional
         Gaussian read noise of the detector in photon units (its variance is added to each pixel's, the usual
         Gaussian approximation of Poisson + read noise).
+    valid : (M, N) bool array_like, optional
+        True where a pixel of the frame is usable (e.g. not saturated). The bound is then that of the usable pixels
+        alone: a mask fixed on the detector (a stationary saturated patch) removes their information while the
+        specimen moves beneath it. The image is still scaled to ``photons_per_px`` over all its pixels.
 
     Returns
     -------
@@ -82,6 +86,11 @@ def shift_crb(image, photons_per_px: float, *, background_photons: float = 0.0,
     # pixels expecting under 1e-9 of the brightest one's count contribute nothing measurable (their derivative is
     # below the transform's rounding error, whose square divided by a vanishing count would dominate)
     w = 1.0 / np.maximum(var, 1e-9 * float(var.max()))
+    if valid is not None:
+        v = np.asarray(valid)
+        if v.shape != img.shape or v.dtype != np.bool_:
+            raise ValueError(f"valid must be a boolean mask of shape {img.shape}, got {v.dtype} {v.shape}")
+        w = w * v
     fisher = np.array([[np.sum(gy * gy * w), np.sum(gy * gx * w)],
                        [np.sum(gx * gy * w), np.sum(gx * gx * w)]])
     det = fisher[0, 0] * fisher[1, 1] - fisher[0, 1] ** 2

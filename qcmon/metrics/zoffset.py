@@ -272,6 +272,17 @@ class RunningMean:
             self._slot = (k + 1) % len(self._frames)
             self._in_block = 0
 
+    def zeros_like(self) -> "RunningMean":
+        """A running mean with this one's parameters, in step with it, as if every frame pushed so far had been 0:
+        from then on, pushed the same frames' companions (e.g. their masks), its window is this one's."""
+        other = RunningMean(self.K, block=self.block, even_rows=self.even_rows, rows=self.rows)
+        other._frames = self._frames.copy()
+        other._slot, other._in_block, other.count = self._slot, self._in_block, self.count
+        if self._ring is not None:
+            other._shape = self._shape
+            other._ring = np.zeros_like(self._ring)
+        return other
+
     @property
     def n_frames(self) -> int:
         """Frames in the current mean."""

@@ -22,10 +22,18 @@ What is the same as in one process, and what is not:
   uncertain) photons per pixel are blank until photon transfer finds one; a worker's engine looks in its own chunk's
   frame triples only, so where they start to be counted may differ (a dark level known from the start: identical).
 - The photon-transfer fit of ``summary.json`` (``photon_transfer.*``) uses the frame pairs of the first chunk only.
+- The detector's levels (saturation ceiling, floor) found from the data in one chunk hold in the later ones, as in
+  one process: each chunk's result lists the level changes its engine made; a later chunk whose worker did not
+  start from the same levels (a level found after the engine was copied, in frames the worker skipped) is measured
+  again in this process with the earlier chunks' changes applied at their frames (``Engine.carry_range``), and the
+  main engine ends with the last chunk's levels (the summary's). A level the data show only by the periodic re-check
+  of :class:`~qcmon.metrics.saturation.RangeFinder` (every 32 frames) inside a later chunk may be found a few frames
+  apart (the re-check's phase differs in a worker).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import multiprocessing
 import pickle
@@ -104,6 +112,7 @@ class ChunkJob:
     first: int                 # first time point whose rows are kept
     stop: int | None           # first time point not measured (None: to the end of the session)
     engine: bytes              # the monitor's engine, pickled once the reference of every stream was built
+    range_log: list | None = None  # detector level changes after the copy, to apply at their frames (a re-run)
 
 
 def measure_chunk(job: ChunkJob) -> dict:
@@ -121,11 +130,16 @@ def measure_chunk(job: ChunkJob) -> dict:
                         skip_frames=job.warm_from * job.frames_per_point,
                         on_problem=lambda err: problems.append(str(err)))
     rows: list[dict] = []
+    carry = sorted(job.range_log or [], key=lambda e: e[0])
+    own = len(engine.range_log)  # the log's entries from here on are this worker's own findings
     with threadpool_limits(limits=1, user_api="blas"):
         frames = src.frames(final=True)  # each frame read as it is measured (see SessionSource.frames)
         for fr in frames:
             if job.stop is not None and fr.index >= job.stop:
                 break
+            while carry and carry[0][0] <= fr.index:  # levels the earlier chunks found, from their frame on
+                _, key, state = carry.pop(0)
+                engine.carry_range({key: state})
             try:
                 rows.extend(engine.process(fr))
             except FrameError as err:
@@ -136,7 +150,8 @@ def measure_chunk(job: ChunkJob) -> dict:
         problems.extend(engine.take_problems())  # the warm-up's are the previous chunk's too: reported once
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
     events = [e for e in engine.take_events() if e.frame >= job.first and (job.stop is None or e.frame < job.stop)]
-    return {"rows": keep, "problems": problems, "events": events}
+    return {"rows": keep, "problems": problems, "events": events, "range_log": engine.range_log[own:],
+            "range_end": engine.range_state()}
 
 
 class RowContinuity:
@@ -215,6 +230,8 @@ class SplitRun:
     _pool: ProcessPoolExecutor | None = None
     _futures: list[Future] = field(default_factory=list)
     _jobs: list[ChunkJob] = field(default_factory=list)
+    _engine: object = None                           # the monitor's engine (it measures the first chunk)
+    _log_at_launch: int = 0                          # its detector level changes before the copy
     decided: bool = False
 
     @property
@@ -252,13 +269,19 @@ class SplitRun:
                                  first=a, stop=None if i == len(chunks) - 1 else b, engine=blob))
         self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=multiprocessing.get_context("spawn"))
         self._jobs = jobs
+        self._engine, self._log_at_launch = engine, len(engine.range_log)
         self._futures = [self._pool.submit(measure_chunk, j) for j in jobs]
         self.stop = chunks[0][1]
         return len(chunks)
 
     def results(self):
         """Each chunk's result, in chunk order (blocks). A chunk whose worker failed (e.g. the process was
-        killed) is measured again in this process, with a problem message saying so: no row is lost."""
+        killed) is measured again in this process, with a problem message saying so: no row is lost. So is a
+        chunk whose worker did not have the detector levels the chunks before it found (see the module notes)."""
+        # the level changes after the copy, as one process makes them: the first chunk's (the monitor's engine has
+        # measured it by now), then each accepted chunk's own
+        log = [e for e in self._engine.range_log[self._log_at_launch:] if self.stop is None or e[0] < self.stop]
+        end_state = None
         try:
             for job, fut in zip(self._jobs, self._futures):
                 try:
@@ -268,7 +291,17 @@ class SplitRun:
                     res["problems"].insert(0, f"worker for time points {job.first}-"
                                               f"{'end' if job.stop is None else job.stop - 1} failed ({err!r}); "
                                               "measured again in the main process")
+                before = [e for e in log if e[0] < job.first]
+                if before != [e for e in res.get("range_log", []) if e[0] < job.first]:
+                    # the worker's levels at its chunk are not those of one process: measure it again with them
+                    problems = res["problems"]
+                    res = measure_chunk(dataclasses.replace(job, range_log=before))
+                    res["problems"] = problems
+                log += [e for e in res.get("range_log", []) if e[0] >= job.first]
+                end_state = res.get("range_end", end_state)
                 yield res
+            if end_state is not None:
+                self._engine.carry_range(end_state)  # the summary's levels are the session's last
         finally:
             self.close()
 
