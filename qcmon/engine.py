@@ -34,6 +34,8 @@ from qcmon.metrics.focus import focus_corr, focus_measure
 from qcmon.metrics.line_offset import line_offset_rows, line_rows
 from qcmon.metrics.noise import immerkaer_sigma
 from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level, is_structureless
+from qcmon.metrics import reference_growth
+from qcmon.metrics.reference_growth import ReferenceGrowth
 from qcmon.metrics.registration import ShiftEstimator, build_reference
 from qcmon.metrics.saturation import RangeFinder
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
@@ -94,6 +96,11 @@ class EngineSettings:
         Frames between two photon-transfer updates after the start-up (each update uses a frame pair; every
         pair of the start-up frames is used). Default 16: about 2 pairs per second at 30 Hz, each of 1/8 of the
         frame's pixels (32 k samples at 512²), so the fit still rests on about 10⁵ samples a second.
+    reference_updates : tuple of int
+        Counts of frames measured since a reference was built at which the shift estimator gets a reference
+        accumulated from the registered frames (:mod:`qcmon.metrics.reference_growth`; its zero stays the first
+        reference's). Default :data:`~qcmon.metrics.reference_growth.REFERENCE_UPDATES` (60 … 1920); empty: the
+        first reference is kept.
     """
 
     frame_rate_hz: float | None = None
@@ -112,6 +119,7 @@ class EngineSettings:
     max_shift_px: float | None = None
     bleach_window_s: float = 60.0
     photon_transfer_every: int = 16
+    reference_updates: tuple[int, ...] = field(default_factory=lambda: reference_growth.REFERENCE_UPDATES)
 
     def __post_init__(self) -> None:
         for name in ("frame_rate_hz", "pixel_size_um", "z_step_um"):
@@ -146,6 +154,7 @@ class _Stream:
     blank_reason: str = ""
     blank_last: tuple | None = None
     shift: ShiftEstimator | None = None
+    grow: ReferenceGrowth | None = None  # the registration reference accumulated from measured frames
     reference: np.ndarray | None = None
     running: RunningMean | None = None
     line_mean: RunningMean | None = None
@@ -296,6 +305,8 @@ class Engine:
         for key, st in self._streams.items():
             info: dict = {"dark_level_dn": st.dark_level, "dark_level_origin": st.dark_origin,
                           "saturation_level_dn": st.max_value, "frames": st.n_measured}
+            if st.grow is not None:  # frames the registration reference is made of (it grows at fixed counts)
+                info["registration_reference_frames"] = st.grow.frames
             if st.range is not None:
                 info.update(saturation_level_origin=st.range.ceiling.origin,
                             saturation_level_text=st.range.ceiling.text, floor_level_dn=st.range.floor.value,
@@ -594,16 +605,23 @@ class Engine:
                 except Exception:  # no photon transfer yet: the estimator falls back to its own floor
                     pass
                 # the likelihood refinement models photon counts: the detector's dark level, gain and read noise
+                ref_valid = self._reference_valid(st, reference, stack)
                 shift = ShiftEstimator(reference, upsample=s.upsample, bin_factor=s.bin_factor,
                                        max_shift_px=max_shift, dark_level=st.dark_level, gain=st.gain,
                                        read_noise_dn=read_noise, reference_frames=len(use),
-                                       reference_valid=self._reference_valid(st, reference, stack))
+                                       reference_valid=ref_valid)
             except ValueError:  # nothing to register to (e.g. frames too small for the registration)
                 if first:
                     return [r for fr in frames for r in self._measure_early(st, fr)]
                 st.new_reference_requested = False
                 return [r for fr in frames for r in self._measure_or_wait(st, fr)]
         st.reference, st.shift = reference, shift
+        # The registration reference grows from the frames measured against it (its zero stays this one's); not
+        # where a stationary clipped patch was made featureless (frames with clipped pixels never join), nor on
+        # channels that take their motion from another.
+        own_motion = s.motion_channel is None or st.channel == s.motion_channel
+        st.grow = (ReferenceGrowth(shift, initial_frames=len(use), updates=s.reference_updates)
+                   if s.reference_updates and own_motion and ref_valid is None else None)
         # Two running means in block sums of gcd(running_mean_frames, z_every) frames (at every estimate each is
         # over exactly the last running_mean_frames frames): the frame binned as for the registration, for focus
         # and z, which need no finer sampling (their correlations bin further; the sharpness is of cell-sized
@@ -899,7 +917,8 @@ class Engine:
                 if s.motion_channel is not None and motion is None:
                     self._remember_motion(frame.index, frame.plane, res)
             elif motion is None:
-                if img.dtype.kind in "ui" or np.isfinite(binned).all():
+                finite = img.dtype.kind in "ui" or bool(np.isfinite(binned).all())
+                if finite:
                     res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img, valid=valid)
@@ -917,6 +936,9 @@ class Engine:
             else:
                 dy, dx, corr = motion
             row.update(dx_px=dx, dy_px=dy, reg_corr=corr)
+            if st.grow is not None and structured and motion is None and valid is None and finite \
+                    and not st.shift.out_of_range and not self._off_plane(st):
+                st.grow.offer(binned, dy, dx, corr)  # frames fit to join the registration reference
             disp = math.hypot(dx, dy)
             row["displacement_px"] = disp
             if s.pixel_size_um:
@@ -1021,7 +1043,32 @@ class Engine:
                     row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
         st.prev, st.prev_shift = img, ishift
         st.n_measured += 1
+        if st.grow is not None:
+            new = st.grow.tick()  # at fixed counts of frames: the estimator of the accumulated reference
+            if new is not None:
+                st.shift = new
+            if st.grow.settled:
+                for note in st.grow.notes:
+                    self.problems.append(f"channel {st.channel}, plane {st.plane}: {note}")
+                st.grow.notes.clear()
         return [row]
+
+    def _off_plane(self, st: _Stream) -> bool:
+        """The last z estimate (from the start's plane) is more than one z-stack step away: the frames show
+        another plane, which the registration reference of this one must not take in."""
+        z = st.last_z[0]
+        return st.zest is not None and math.isfinite(z) and abs(z) > float(self.settings.z_step_um)
+
+    def references_settled(self) -> bool:
+        """Every stream's registration reference is final (built, and no further update scheduled): from here on
+        the rows depend on the frame and this state only (see :mod:`qcmon.split`)."""
+        return bool(self._streams) and all(
+            st.shift is not None and (st.grow is None or st.grow.settled) for st in self._streams.values())
+
+    @property
+    def frames_measured(self) -> int:
+        """The fewest frames any stream has measured."""
+        return min((st.n_measured for st in self._streams.values()), default=0)
 
     def _remember_motion(self, index: int, plane: int, motion: tuple[float, float, float]) -> None:
         key = (index, plane)

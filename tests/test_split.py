@@ -15,10 +15,15 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
+import qcmon.metrics.reference_growth
 import qcmon.monitor.split
 from qcmon.monitor.loop import Monitor, MonitorOptions
 from qcmon.sources import SessionSource
 from qcmon.monitor.split import plan_chunks, warm_start
+
+#: A registration reference that is final after 120 frames (the default grows it for about a minute): these
+#: short sessions split once it is final (qcmon.monitor.split copies the engine only then).
+SHORT_GROWTH = (60, 120)
 
 # ------------------------------------------------------------------------------------------- planning
 
@@ -90,6 +95,7 @@ def split_pair(tmp_path_factory):
                   z_drift_um_per_min=3.0)
     mp = pytest.MonkeyPatch()
     mp.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)        # three chunks of this short session
+    mp.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
     try:
         outs = {}
         for w in (1, 3):
@@ -124,6 +130,8 @@ def test_split_summary_and_events_match_one_process(split_pair):
     assert events(outs[3]) == events(outs[1]) and events(outs[1])              # the planted bleaching alarms
     info1, info3 = s1["engine"]["streams"]["0,0"], s3["engine"]["streams"]["0,0"]
     assert info3["frames"] == info1["frames"] == 1400
+    # the registration reference grew (to the frames that joined by frame 120) before the engine was copied
+    assert info3["registration_reference_frames"] == info1["registration_reference_frames"] > 60
     assert info3["bleach_slope_pct_per_min"] == info1["bleach_slope_pct_per_min"]
     # photon transfer from the first chunk's pairs only: the same gain within the EMVA 1288 tolerance we test
     assert_allclose(s3["photon_transfer"]["gain"], s1["photon_transfer"]["gain"], rtol=0.05)
@@ -132,6 +140,7 @@ def test_split_summary_and_events_match_one_process(split_pair):
 def test_a_failed_worker_is_measured_again_and_nothing_is_lost(tmp_path, monkeypatch):
     frames = _sim(tmp_path / "s", 800, seed=6)
     monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
 
     class Broken:
         def __init__(self, *a, **k):
@@ -160,6 +169,7 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
 
     _sim(tmp_path / "lab" / "m1" / "2026-11-03", 800, seed=8)
     monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
     calls = []
     real = qcmon.monitor.split.SplitRun.launch
     monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
@@ -179,6 +189,7 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
 
 def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch):
     frames = _sim(tmp_path / "s", 200, seed=9)                 # 200 < MIN_CHUNK time points per process
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
     launched = []
     real = qcmon.monitor.split.SplitRun.launch
     monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
@@ -207,6 +218,7 @@ def test_a_level_found_in_one_chunk_holds_in_the_later_ones(tmp_path, monkeypatc
     for i in range(0, 800, 100):
         tifffile.imwrite(folder / f"part_{i // 100:02d}.tif", stack[i:i + 100])
     monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
     outs = {}
     for w in (1, 2):
         outs[w] = tmp_path / f"out{w}"
@@ -220,3 +232,18 @@ def test_a_level_found_in_one_chunk_holds_in_the_later_ones(tmp_path, monkeypatc
     s2 = json.loads((outs[2] / "summary.json").read_text())
     assert s2["engine"]["streams"]["0,0"]["saturation_level_origin"] == \
         s1["engine"]["streams"]["0,0"]["saturation_level_origin"] == "inferred"
+
+
+def test_a_reference_still_growing_where_the_first_chunk_would_end_keeps_one_process(tmp_path, monkeypatch):
+    # the default growth runs to frame 1920: an 800-point session is split nowhere, and gives one process's numbers
+    frames = _sim(tmp_path / "s", 800, seed=10)
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    launched = []
+    real = qcmon.monitor.split.SplitRun.launch
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
+    for w in (1, 2):
+        Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
+    assert launched == []
+    assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
+    info = json.loads((tmp_path / "o2" / "summary.json").read_text())["engine"]["streams"]["0,0"]
+    assert info["registration_reference_frames"] > 400   # it did grow (updates at 60 … 480 of 800 frames)

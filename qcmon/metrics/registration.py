@@ -5,6 +5,7 @@ Public API: :class:`ShiftEstimator`, :class:`ShiftResult`, :func:`build_referenc
 
 from __future__ import annotations
 
+import copy
 import math
 import warnings
 from typing import NamedTuple
@@ -206,19 +207,8 @@ class ShiftEstimator:
         mb, nb = refb.shape
         self._bshape = (mb, nb)
         self._win = _tukey2d((mb, nb), self._ALPHA) if self.window else None
-        fw = self._prepare(refb)
-        f_full = sfft.rfft2(fw, workers=self.workers)
-        # For the Pearson correlation: conj(F) over the whole half-spectrum, Hermitian weights, DC removed.
-        h_full = np.full(f_full.shape, 2.0, dtype=np.float32)
-        h_full[:, 0] = 1.0
-        if nb % 2 == 0:
-            h_full[:, -1] = 1.0
-        h_full[0, 0] = 0.0
-        self._hconjf_full = (h_full * np.conj(f_full)).astype(np.complex64)
         self._kr_full = _signed_freqs(mb, mb)
-        self._kc_full = np.arange(f_full.shape[1], dtype=np.float64)
-        fw_c = fw - fw.mean()
-        self._ref_norm = float(np.sqrt(np.dot(fw_c.ravel(), fw_c.ravel())))
+        self._kc_full = np.arange(nb // 2 + 1, dtype=np.float64)
 
         # Low-pass band for the search and the refinement.
         br = mb if mb <= 64 else 2 * int(round(mb * self._BAND / 2))
@@ -228,22 +218,11 @@ class ShiftEstimator:
         self._kcb = kcb
         self._kr = _signed_freqs(mb, br)
         self._kc = np.arange(kcb, dtype=np.float64)
-        f_band = _crop(f_full, br, kcb)
-        taper = np.outer(self._taper(np.abs(self._kr) / (br / 2)), self._taper(self._kc / (bc / 2)))
-        h = np.full((br, kcb), 2.0)
-        h[:, 0] = 1.0
-        if kcb == f_full.shape[1] and nb % 2 == 0:
-            h[:, -1] = 1.0
-        h[0, 0] = 0.0  # the mean carries no shift information
-        self._absf2 = (np.abs(f_band) ** 2).astype(np.float32)
-        # The frame-independent factor of the weighted spectrum (see _weighted): conj(F) |F| h taper.
-        self._q = (np.conj(f_band) * np.abs(f_band) * h * taper).astype(np.complex64)
-        self._band_power_ref = float(np.sum(self._absf2))
-        self._n_band = self._absf2.size
+        self._set_reference(refb)
         # Noise band: the outer quarter of frequencies along both axes of the full spectrum (a contiguous block).
         r0 = math.ceil(0.375 * mb)
         self._noise_rows = slice(r0, max(r0 + 1, mb - r0 + 1))
-        self._noise_c0 = min(math.ceil(0.375 * nb), f_full.shape[1] - 1)
+        self._noise_c0 = min(math.ceil(0.375 * nb), nb // 2)
 
         # Coarse search on the inner half of the band (at most 64 frequencies along each axis), with its own taper:
         # the peak is first found from the strongest, lowest frequencies, on a grid of mb/cr x nb/cc binned px.
@@ -276,7 +255,63 @@ class ShiftEstimator:
         self._ramp_c = np.exp((1j * _TWO_PI / nb) * np.outer(self._coarse_c, self._kc)).astype(np.complex64)
         #: True when the last frame's correlation peak lay beyond ``max_shift_px`` (its shift is then NaN)
         self.out_of_range = False
+        self._facts = (dark_level, gain, read_noise_dn)  # the detector, for with_reference
         self._ml_setup(refb, dark_level, gain, read_noise_dn, reference_frames)
+
+    def _set_reference(self, refb: np.ndarray) -> None:
+        """The spectra of the (binned, finite) reference that the search and the correlation use."""
+        mb, nb = self._bshape
+        br, bc = self._band
+        kcb = self._kcb
+        fw = self._prepare(refb)
+        f_full = sfft.rfft2(fw, workers=self.workers)
+        # For the Pearson correlation: conj(F) over the whole half-spectrum, Hermitian weights, DC removed.
+        h_full = np.full(f_full.shape, 2.0, dtype=np.float32)
+        h_full[:, 0] = 1.0
+        if nb % 2 == 0:
+            h_full[:, -1] = 1.0
+        h_full[0, 0] = 0.0
+        self._hconjf_full = (h_full * np.conj(f_full)).astype(np.complex64)
+        fw_c = fw - fw.mean()
+        self._ref_norm = float(np.sqrt(np.dot(fw_c.ravel(), fw_c.ravel())))
+        f_band = _crop(f_full, br, kcb)
+        taper = np.outer(self._taper(np.abs(self._kr) / (br / 2)), self._taper(self._kc / (bc / 2)))
+        h = np.full((br, kcb), 2.0)
+        h[:, 0] = 1.0
+        if kcb == f_full.shape[1] and nb % 2 == 0:
+            h[:, -1] = 1.0
+        h[0, 0] = 0.0  # the mean carries no shift information
+        self._absf2 = (np.abs(f_band) ** 2).astype(np.float32)
+        # The frame-independent factor of the weighted spectrum (see _weighted): conj(F) |F| h taper.
+        self._q = (np.conj(f_band) * np.abs(f_band) * h * taper).astype(np.complex64)
+        self._band_power_ref = float(np.sum(self._absf2))
+        self._n_band = self._absf2.size
+
+    def with_reference(self, binned_reference: np.ndarray, *, reference_frames: float) -> "ShiftEstimator":
+        """A copy of this estimator (same binning, band, range and detector) measuring against a new reference.
+
+        Parameters
+        ----------
+        binned_reference : (M // bin_factor, N // bin_factor) array_like
+            The new reference, binned as this estimator bins frames (block sums), in the same coordinates as the
+            frames it will measure: shifts are measured against it, so its origin is the shifts' zero.
+        reference_frames : float
+            How many frames' photons it holds (its noise is a frame's over this number; see the likelihood's
+            Wiener filter in :meth:`_ml_setup`).
+        """
+        refb = np.asarray(binned_reference)
+        if refb.shape != self._bshape:
+            raise ValueError(f"binned_reference must have the binned shape {self._bshape}, got {refb.shape}")
+        refb = finite_float32(refb.astype(np.float32, copy=False), "binned_reference", warn=False)
+        if refb is None:
+            raise ValueError("binned_reference is constant or has no finite pixel: there is nothing to register to")
+        if not (reference_frames > 0):
+            raise ValueError(f"reference_frames must be positive, got {reference_frames!r}")
+        new = copy.copy(self)
+        new.out_of_range = False
+        new._set_reference(refb)
+        new._ml_setup(refb, *self._facts, reference_frames)
+        return new
 
     # ------------------------------------------------------------------ maximum likelihood
     def _ml_setup(self, refb: np.ndarray, dark_level, gain, read_noise_dn, reference_frames) -> None:

@@ -10,7 +10,12 @@ summary as a single-process run.
 What is the same as in one process, and what is not:
 
 - Displacement, registration quality, photometry, saturation, noise, SNR and photons per pixel depend on the
-  frame and on the reference only: identical.
+  frame and on the reference only: identical. The registration reference grows from the measured frames until a
+  fixed count of frames (:mod:`qcmon.metrics.reference_growth`): the engine is copied only once every stream's
+  reference is final (:meth:`~qcmon.engine.Engine.references_settled`), so the workers measure against the very
+  reference one process has there. The first chunk is longer by the frames measured before the copy, so that
+  every process still has about the same work; a session whose reference is still growing where the first chunk
+  would end is measured in one process.
 - Focus correlation, z and the line offset come from the running means of the last ``running_mean_frames`` frames,
   recomputed every ``z_every`` frames: the warm-up fills the running means with the same frames, summed in the same
   blocks, and keeps the same frames as recomputation points, so they are identical.
@@ -111,7 +116,7 @@ class ChunkJob:
     warm_from: int             # first time point fed to the engine
     first: int                 # first time point whose rows are kept
     stop: int | None           # first time point not measured (None: to the end of the session)
-    engine: bytes              # the monitor's engine, pickled once the reference of every stream was built
+    engine: bytes              # the monitor's engine, pickled once the reference of every stream is final
     range_log: list | None = None  # detector level changes after the copy, to apply at their frames (a re-run)
 
 
@@ -255,16 +260,18 @@ class SplitRun:
         """Plan the chunks and start the workers; returns how many processes measure (1: no split)."""
         self.decided = True
         s = engine.settings
+        measured = engine.frames_measured  # the workers start later by this much: the first chunk is longer
         n_points = count_frames(self.path, self.source_kwargs) // self.frames_per_point
-        chunks = plan_chunks(n_points, self.workers, warm_up=self.warm_up, min_chunk=self.min_chunk)
-        if len(chunks) < 2 or chunks[1][0] - self.warm_up < 2 * s.reference_frames:
+        chunks = plan_chunks(n_points, self.workers, warm_up=self.warm_up + measured, min_chunk=self.min_chunk)
+        if len(chunks) < 2 or chunks[1][0] - self.warm_up - s.z_every < max(measured, 2 * s.reference_frames) \
+                or min(b - a for a, b in chunks[1:]) < self.min_chunk // 2:
             return 1
         blob = pickle.dumps(engine, protocol=pickle.HIGHEST_PROTOCOL)
         jobs = []
         for i, (a, b) in enumerate(chunks[1:], start=1):
             jobs.append(ChunkJob(path=self.path, source_kwargs=self.source_kwargs, token=token,
                                  frames_per_point=self.frames_per_point,
-                                 warm_from=warm_start(a, measured=s.reference_frames, z_every=s.z_every,
+                                 warm_from=warm_start(a, measured=measured, z_every=s.z_every,
                                                       warm_up=self.warm_up),
                                  first=a, stop=None if i == len(chunks) - 1 else b, engine=blob))
         self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=multiprocessing.get_context("spawn"))

@@ -1,0 +1,200 @@
+"""A registration reference that improves with the session without moving its zero.
+
+Public API: :class:`ReferenceGrowth`, :data:`REFERENCE_UPDATES`.
+
+The reference a session starts with is the (aligned, trimmed) mean of its first frames: at calcium-imaging photon
+counts it holds a few tens of frames' photons, and its noise, not the frame's, limits how well a shift can be
+measured. :class:`ReferenceGrowth` accumulates every frame that is fit to join, moved back by its measured
+displacement, into the reference's own coordinates, and at fixed points of the session hands the shift estimator a
+reference made from all of them.
+
+Method
+------
+*Accumulation.* The engine registers frames binned (block sums); the accumulated reference is binned alike. A
+frame measured at ``s`` (binned px) is added moved back by the whole-pixel part ``n = round(s)`` (edge pixels
+repeated, :func:`~qcmon.metrics._imageops.add_shifted`: one pass over the binned frame) into one of
+``PHASES`` × ``PHASES`` sums chosen by its fractional part ``f = s - n`` (bins of 1/``PHASES`` binned px); each
+sum also keeps the sum of its frames' exact ``f``. At an update each sum's mean is moved back by its frames' mean
+fractional shift with the Fourier shift theorem (band-limited interpolation on the image mirrored at its edges) and
+the means are averaged, weighted by their frame counts. What remains of the fractional shifts is their spread
+within a bin (at most ±1/(2 ``PHASES``) binned px about the bin's mean): a symmetric blur whose transfer at the
+binned Nyquist frequency is above 0.97 for ``PHASES`` = 4, and no shift of the mean position.
+
+*The zero.* Shifts measured against a reference are relative to wherever that reference sits, so a reference
+built from frames placed by their own measured shifts inherits the mean error of those shifts, and the next
+reference the mean error of the shifts measured against this one: the zero would wander as a random walk (or
+drift, if the errors lean one way). Every new reference is therefore measured against the *initial* reference —
+the one the experimenter saw at the start — by the initial estimator, and moved back by that shift before use: its
+shift relative to the initial reference is zero by construction, to the precision with which a nearly noise-free
+image is registered to the initial reference (a constant for the session, below its initial reference's noise).
+
+*Denoising.* The new reference holds ``N`` frames' photons; the estimator's likelihood model Wiener-filters it
+with the noise power of ``N`` frames from the detector's gain and read noise (``reference_frames``, see
+:meth:`ShiftEstimator._ml_setup <qcmon.metrics.registration.ShiftEstimator>`), so the model follows the photon
+count it has.
+
+*Cadence.* Updates happen when the number of frames measured since the reference was built reaches one of
+``updates`` (default :data:`REFERENCE_UPDATES`: 60, 120, … 1920 — each doubles the photons, so the reference's
+noise halves in steps, and after 1920 frames, about a minute at 30 Hz, it no longer changes). An update costs a
+few estimator set-ups (about 10-30 ms at 512²); between updates a frame costs one binned addition. Fixed points
+keep the numbers reproducible: the same frames in the same order give the same references at the same frames,
+live or offline, and a split run hands its workers the engine only once the reference is final
+(:mod:`qcmon.split`).
+
+Frames that are not fit to join are left out (the engine decides most of it): frames without structure, with
+clipped pixels, without a finite shift or beyond the searched range, and here frames whose correlation with the
+reference is below half the mean of the frames that joined (a failed registration, a frame from another field).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from qcmon.metrics._imageops import add_shifted
+from qcmon.metrics.registration import ShiftEstimator, _fourier_unshift
+
+__all__ = ["ReferenceGrowth", "REFERENCE_UPDATES"]
+
+#: Frames measured since the reference was built at which the estimator gets the accumulated reference.
+REFERENCE_UPDATES: tuple[int, ...] = (60, 120, 240, 480, 960, 1920)
+
+
+class ReferenceGrowth:
+    """Accumulates registered frames into the reference's coordinates and makes improved shift estimators.
+
+    Parameters
+    ----------
+    initial : ShiftEstimator
+        The estimator of the reference the session (or the experimenter's new reference) started with: it defines
+        the zero of every later reference.
+    initial_frames : int
+        How many frames the initial reference is made of; an update with fewer joined frames than twice this
+        number would not improve it and is skipped.
+    updates : sequence of int, optional
+        Counts of frames measured (every call of :meth:`tick`) at which a new reference is made. After the last
+        one the accumulation stops and its memory is freed (:attr:`settled`).
+
+    Attributes
+    ----------
+    frames : int
+        Frames the current estimator's reference is made of (the initial reference's count until the first
+        update).
+    joined : int
+        Frames accumulated so far.
+    notes : list of str
+        Updates that were skipped, and why.
+    """
+
+    PHASES = 4  # fractional-shift bins per axis
+    MIN_CORR_FRACTION = 0.5  # a frame joins when its correlation is at least this fraction of the joined frames' mean
+
+    def __init__(self, initial: ShiftEstimator, *, initial_frames: int, updates=REFERENCE_UPDATES):
+        points = sorted({int(u) for u in updates})
+        if any(u < 1 for u in points):
+            raise ValueError(f"updates must be positive frame counts, got {tuple(updates)!r}")
+        if initial_frames < 1:
+            raise ValueError(f"initial_frames must be at least 1, got {initial_frames!r}")
+        self.initial = initial
+        self.estimator = initial
+        self.initial_frames = int(initial_frames)
+        self.frames = int(initial_frames)
+        self._updates = points
+        self._next = 0  # index of the next update point
+        self.seen = 0
+        self.joined = 0
+        self._corr_sum = 0.0
+        p = self.PHASES
+        self._sums: list[np.ndarray | None] = [None] * (p * p)
+        self._count = np.zeros(p * p, dtype=np.int64)
+        self._frac = np.zeros((p * p, 2), dtype=np.float64)
+        self.notes: list[str] = []
+
+    @property
+    def settled(self) -> bool:
+        """True once the last update point has passed: the reference no longer changes."""
+        return self._next >= len(self._updates)
+
+    def offer(self, binned: np.ndarray, dy_px: float, dx_px: float, corr: float) -> bool:
+        """Accumulate a frame measured at (``dy_px``, ``dx_px``) original px with correlation ``corr``, if it is fit
+        to join. ``binned`` is the frame binned as the estimator bins it (float32, finite). Returns whether it
+        joined."""
+        if self.settled or not (math.isfinite(dy_px) and math.isfinite(dx_px) and math.isfinite(corr)) \
+                or corr <= 0:
+            return False
+        if self.joined >= 10 and corr < self.MIN_CORR_FRACTION * self._corr_sum / self.joined:
+            return False
+        b = self.initial.bin_factor
+        sy, sx = dy_px / b, dx_px / b
+        ny, nx = round(sy), round(sx)
+        fy, fx = sy - ny, sx - nx
+        p = self.PHASES
+        k = min(int((fy + 0.5) * p), p - 1) * p + min(int((fx + 0.5) * p), p - 1)
+        acc = self._sums[k]
+        if acc is None:
+            acc = self._sums[k] = np.zeros(binned.shape, dtype=np.float32)
+        add_shifted(binned, ny, nx, acc)  # acc(x) += frame(x + n): the frame moved back by its whole pixels
+        self._count[k] += 1
+        self._frac[k, 0] += fy
+        self._frac[k, 1] += fx
+        self.joined += 1
+        self._corr_sum += corr
+        return True
+
+    def tick(self) -> ShiftEstimator | None:
+        """Count one measured frame; at an update point return the estimator of the new reference (None otherwise,
+        or when the update is skipped; see :attr:`notes`)."""
+        self.seen += 1
+        if self.settled or self.seen < self._updates[self._next]:
+            return None
+        self._next += 1
+        new = None
+        if self.joined < 2 * self.initial_frames:
+            self.notes.append(f"reference not renewed at frame {self.seen} of it: only {self.joined} frames were "
+                              f"fit to join")
+        else:
+            new = self._rebuild()
+        if self.settled:
+            self._sums = [None] * len(self._sums)  # the accumulation is over: free its memory
+        if new is not None:
+            self.estimator = new
+        return new
+
+    def reference(self) -> np.ndarray | None:
+        """The accumulated reference (binned, float32) in the initial reference's coordinates before its zero is
+        checked, or None when nothing joined."""
+        used = [k for k in range(len(self._sums)) if self._count[k] > 0 and self._sums[k] is not None]
+        if not used:
+            return None
+        means = np.stack([self._sums[k] / np.float32(self._count[k]) for k in used])
+        frac = self._frac[used] / self._count[used, None]
+        aligned = np.empty_like(means)
+        _fourier_unshift(means, frac, aligned)  # each mean moved back by its frames' mean fractional shift
+        w = (self._count[used] / self._count[used].sum()).astype(np.float32)
+        return np.tensordot(w, aligned, axes=1).astype(np.float32)
+
+    def _rebuild(self) -> ShiftEstimator | None:
+        ref = self.reference()
+        if ref is None:
+            return None
+        # the zero: the new reference's shift against the initial one, measured by the initial estimator
+        with np.errstate(all="ignore"):
+            res = self.initial.estimate_binned(ref)
+        self.initial.out_of_range = False
+        b = self.initial.bin_factor
+        oy, ox = res.dy_px / b, res.dx_px / b
+        if not (math.isfinite(oy) and math.isfinite(ox)) or max(abs(oy), abs(ox)) > 1.0:
+            self.notes.append(f"reference not renewed at frame {self.seen} of it: the accumulated reference does "
+                              f"not register to the initial one within 1 binned px ({res.dy_px:.2f}, "
+                              f"{res.dx_px:.2f} px)")
+            return None
+        centred = np.empty_like(ref[None])
+        _fourier_unshift(ref[None], np.array([[oy, ox]]), centred)
+        try:
+            new = self.initial.with_reference(centred[0], reference_frames=self.joined)
+        except ValueError as err:
+            self.notes.append(f"reference not renewed at frame {self.seen} of it: {err}")
+            return None
+        self.frames = self.joined
+        return new
