@@ -6,6 +6,7 @@ Prints, for 256², 512² and 1024² uint16 frames on one core:
   (mean, saturated and zero fractions) and ``skimage.restoration.estimate_sigma``,
 - the ratio of the two and both RMS displacement errors against the planted shifts,
 - the rate of two engine processes side by side, one per core, against one alone (two cores),
+- the cost of the growing registration reference: 1,200 frames at 512² with and without it, interleaved,
 - peak memory of the engine after 10,000 and 100,000 frames (the frames cycle; memory must not grow).
 
 No assertions: speed is printed, never tested.  Run: ``python bench/bench_engine.py [--quick]``.
@@ -47,7 +48,7 @@ def make_frames(size: int, n: int, *, photons: float = 1.5, seed: int = 0):
     return frames, shifts
 
 
-def run_engine(frames, *, repeat: int = 1, zstack=None, keep_rows: bool = True):
+def run_engine(frames, *, repeat: int = 1, zstack=None, keep_rows: bool = True, updates=None):
     """Returns (seconds of steady measuring, rows, seconds of start-up). Start-up = building the reference from
     the first frames and measuring them; steady = every frame after that."""
     from qcmon.engine import Engine, EngineSettings
@@ -55,6 +56,8 @@ def run_engine(frames, *, repeat: int = 1, zstack=None, keep_rows: bool = True):
 
     settings = EngineSettings(frame_rate_hz=30.0, zstack=zstack, bit_depth=12,
                               z_step_um=1.0 if zstack is not None else None)
+    if updates is not None:
+        settings.reference_updates = tuple(updates)
     eng = Engine(settings)
     rows = []
     t0 = time.perf_counter()
@@ -143,6 +146,18 @@ def main() -> int:
         two = list(pool.map(_steady, [(frames512, 3, c) for c in cores]))
     print(f"512², two processes: {two[0]:.0f} + {two[1]:.0f} = {sum(two):.0f} frames/s; {sum(two) / one:.2f}× one "
           f"process ({one:.0f} frames/s on the same frames)")
+
+    # the growing registration reference (updates at 60 … 960 within these 1,200 frames) against the first
+    # reference kept, the same frames, interleaved (the machine's speed drifts; medians of 3 each)
+    times = {"growing": [], "fixed": []}
+    with threadpool_limits(limits=1):
+        for _ in range(3):
+            for name, upd in (("fixed", ()), ("growing", None)):
+                dt, _, startup = run_engine(frames512, repeat=3, keep_rows=False, updates=upd)
+                times[name].append((3 * len(frames512) - 30) / dt)
+    g, f = float(np.median(times["growing"])), float(np.median(times["fixed"]))
+    print(f"512², 1,200 frames: growing reference {g:.0f} frames/s, first reference kept {f:.0f} frames/s "
+          f"({g / f:.2f}×; updates and accumulation included)")
 
     # memory does not grow with the session (frames cycle through the engine)
     small, _ = make_frames(128, 100, seed=1)

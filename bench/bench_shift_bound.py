@@ -1,6 +1,8 @@
 """Displacement error as a multiple of the Cramér–Rao bound, per photon level, next to frames per second.
 
 Run: ``python bench/bench_shift_bound.py [--frames N] [--quick]``. Needs ``make setup`` (the outside data).
+The default sessions are 2,220 frames (74 s at 30 Hz; the reference's last update is at frame 1,920): about 20
+minutes on one core, most of it making the frames.
 
 For 0.5, 1.5, 5 and 20 photons/px it measures two sessions:
 - *real specimen*: the nuclei image of ``tests/outside_data.py`` (a real fluorescence micrograph, 480² window,
@@ -8,12 +10,16 @@ For 0.5, 1.5, 5 and 20 photons/px it measures two sessions:
   through the EMVA 1288 detector model (Poisson × gain 20 + offset 100);
 - *simulator*: qcmon's own simulator (scenario ``clean``, 512², its detector, gain and read noise).
 Each session is measured like the engine does it: the reference is built from the first 30 frames
-(``build_reference``), the estimator gets the dark level, gain and read noise, every frame is measured. The
-error is taken about its median (the reference sits at the median position of its frames). The bound is
-``qcmon.metrics.shift_bound.shift_crb`` of the noise-free specimen at the session's photon count.
-Printed: RMS error per axis (px), RMS / bound for the current estimator and for the same estimator without the
-likelihood refinement (phase correlation only, as before it), and frames per second of both on one core.
-No assertions.
+(``build_reference``), the estimator gets the dark level, gain and read noise, every frame is measured and offered
+to the growing reference (``qcmon.metrics.reference_growth``, updates at 60 … 1920 frames), whose estimator
+measures the frames after each update. The error is taken about its median over the session (the reference sits
+at the median position of its first frames). The bound is ``qcmon.metrics.shift_bound.shift_crb`` of the
+noise-free specimen at the session's photon count.
+Printed per session: RMS error (mean of the two axes, px) and RMS / bound over the first 5 s (frames 0-149) and
+after the first minute (frames from 1,920 on; in ``--quick`` runs after the last update, at 480), for the growing
+reference, for the first reference kept all along, and for the latter without the likelihood refinement (phase
+correlation only); frames per second of each on one core (the growing reference's include its updates). No
+assertions.
 
 ``--patch`` measures instead frames with a stationary saturated patch (12 % of the field at the 12-bit ceiling,
 fixed on the detector), the construction of ``tests/test_range.py``: the nuclei specimen moved by known shifts
@@ -44,6 +50,8 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from outside_data import detect, nuclei_2d, specimen_crop  # noqa: E402
+from qcmon.metrics._imageops import bin_image  # noqa: E402
+from qcmon.metrics.reference_growth import REFERENCE_UPDATES, ReferenceGrowth  # noqa: E402
 from qcmon.metrics.registration import ShiftEstimator, build_reference  # noqa: E402
 from qcmon.metrics.shift_bound import shift_crb  # noqa: E402
 
@@ -79,7 +87,8 @@ def sim_session(photons: float, n: int, seed: int):
     return res.frames_for(0, 0), walk, bound, dict(dark_level=cfg.dark_dn, gain=gain, read_noise_dn=cfg.read_noise_dn)
 
 
-def measure(frames, walk, facts, steps: int):
+def measure(frames, walk, facts, steps: int, updates=()):
+    """Shift errors (about their median) of every frame, and frames per second."""
     old = ShiftEstimator._ML_STEPS
     ShiftEstimator._ML_STEPS = steps
     try:
@@ -87,14 +96,29 @@ def measure(frames, walk, facts, steps: int):
             warnings.simplefilter("ignore", UserWarning)
             ref = build_reference(frames[:30].astype(np.float32), upsample=20)
             est = ShiftEstimator(ref, upsample=20, max_shift_px=min(ref.shape) / 4, reference_frames=30, **facts)
+            growth = ReferenceGrowth(est, initial_frames=30, updates=updates) if updates else None
+            res = np.empty((len(frames), 2))
             t0 = time.perf_counter()
-            res = np.array([est.estimate(f)[:2] for f in frames])
+            for i, f in enumerate(frames):
+                fb = bin_image(f, est.bin_factor)
+                r = est.estimate_binned(fb)
+                res[i] = r[:2]
+                if growth is not None:
+                    growth.offer(fb, r.dy_px, r.dx_px, r.corr)
+                    new = growth.tick()
+                    if new is not None:
+                        est = new
             dt = time.perf_counter() - t0
     finally:
         ShiftEstimator._ML_STEPS = old
     err = res - walk
     err -= np.nanmedian(err, axis=0)
-    return np.sqrt(np.nanmean(err ** 2, axis=0)), len(frames) / dt
+    return err, len(frames) / dt
+
+
+def window_rms(err, window: slice) -> float:
+    """RMS error of the frames in ``window``, the mean of the two axes."""
+    return float(np.mean(np.sqrt(np.nanmean(err[window] ** 2, axis=0))))
 
 
 def patch_session(photons: float, size: int, n: int, rng: np.random.Generator):
@@ -176,24 +200,32 @@ def patch_main(n: int, levels, sizes) -> int:
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--frames", type=int, default=120, help="frames per session (default 120)")
-    parser.add_argument("--quick", action="store_true", help="60 frames, 1.5 and 20 photons/px only")
+    parser.add_argument("--frames", type=int, default=None,
+                        help="frames per session (default 2220; with --patch 120)")
+    parser.add_argument("--quick", action="store_true",
+                        help="700 frames, updates up to 480, 1.5 and 20 photons/px only (with --patch: 30 frames)")
+    parser.add_argument("--sessions", default="real specimen,simulator", help="comma-separated session kinds")
     parser.add_argument("--patch", action="store_true",
                         help="frames with a stationary saturated patch, through the engine (see the module notes)")
     args = parser.parse_args()
     if args.patch:
-        return patch_main(30 if args.quick else args.frames, (5.0, 20.0) if args.quick else PHOTONS,
+        return patch_main(args.frames or (30 if args.quick else 120), (5.0, 20.0) if args.quick else PHOTONS,
                           (128, 256))
-    n = 60 if args.quick else args.frames
+    n = args.frames or (700 if args.quick else 2220)
     levels = (1.5, 20.0) if args.quick else PHOTONS
+    updates = tuple(u for u in REFERENCE_UPDATES if u <= (480 if args.quick else n - 100))
+    late = slice(updates[-1], n)
+    early = slice(0, 150)
     try:
         from threadpoolctl import threadpool_limits
         limit = threadpool_limits(1)
     except ImportError:
         limit = None
-    print(f"{'session':>14} {'photons/px':>10} {'bound px':>9} {'RMS px (y, x)':>16} {'x bound':>8} "
-          f"{'fps':>6} | {'PC only RMS px':>16} {'x bound':>8} {'fps':>6}")
-    for name in ("real specimen", "simulator"):
+    print(f"growing reference: updates at {updates}; first seconds = frames 0-149, late = frames {late.start}-{n - 1}")
+    print(f"{'session':>14} {'photons/px':>10} {'bound px':>9} | {'growing: 5 s RMS':>16} {'x':>5} "
+          f"{'late RMS':>9} {'x':>5} {'fps':>5} | {'first ref: 5 s':>14} {'x':>5} {'late':>7} {'x':>5} {'fps':>5} "
+          f"| {'PC only: late':>13} {'x':>5} {'fps':>5}")
+    for name in args.sessions.split(","):
         for k, p in enumerate(levels):
             rng = np.random.default_rng(100 + k)
             if name == "real specimen":
@@ -201,11 +233,15 @@ def main() -> int:
             else:
                 frames, walk, bound, facts = sim_session(p, n, seed=100 + k)
             b = float(np.mean(bound))
-            rms_new, fps_new = measure(frames, walk, facts, ShiftEstimator._ML_STEPS)
-            rms_old, fps_old = measure(frames, walk, facts, 0)
-            print(f"{name:>14} {p:>10.1f} {b:>9.4f} {rms_new[0]:>7.4f}, {rms_new[1]:.4f} "
-                  f"{np.mean(rms_new) / b:>7.1f}x {fps_new:>6.0f} | {rms_old[0]:>7.4f}, {rms_old[1]:.4f} "
-                  f"{np.mean(rms_old) / b:>7.1f}x {fps_old:>6.0f}", flush=True)
+            cols = []
+            for steps, upd in ((ShiftEstimator._ML_STEPS, updates), (ShiftEstimator._ML_STEPS, ()), (0, ())):
+                err, fps = measure(frames, walk, facts, steps, upd)
+                cols.append((window_rms(err, early), window_rms(err, late), fps))
+            (g5, gl, gf), (f5, fl, ff), (_p5, pl, pf) = cols
+            print(f"{name:>14} {p:>10.1f} {b:>9.4f} | {g5:>16.4f} {g5 / b:>5.1f} {gl:>9.4f} {gl / b:>5.1f} {gf:>5.0f} "
+                  f"| {f5:>14.4f} {f5 / b:>5.1f} {fl:>7.4f} {fl / b:>5.1f} {ff:>5.0f} | {pl:>13.4f} {pl / b:>5.1f} "
+                  f"{pf:>5.0f}", flush=True)
+            del frames
     # the refinement's cost at 512² (binned 2x, as the engine registers it), interleaved with and without it
     rng = np.random.default_rng(7)
     img = nuclei_2d().astype(np.float64) + 1.0

@@ -51,6 +51,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import scipy.fft as sfft
 
 from qcmon.metrics._imageops import add_shifted
 from qcmon.metrics.registration import ShiftEstimator, _fourier_unshift
@@ -167,12 +168,26 @@ class ReferenceGrowth:
         used = [k for k in range(len(self._sums)) if self._count[k] > 0 and self._sums[k] is not None]
         if not used:
             return None
-        means = np.stack([self._sums[k] / np.float32(self._count[k]) for k in used])
         frac = self._frac[used] / self._count[used, None]
-        aligned = np.empty_like(means)
-        _fourier_unshift(means, frac, aligned)  # each mean moved back by its frames' mean fractional shift
-        w = (self._count[used] / self._count[used].sum()).astype(np.float32)
-        return np.tensordot(w, aligned, axes=1).astype(np.float32)
+        m, n = self._sums[used[0]].shape
+        # each sum moved back by its frames' mean fractional shift (Fourier shift theorem on the sum mirrored at
+        # its edges, as registration._fourier_unshift does), the spectra added: one inverse transform
+        margin = 16
+        pm = sfft.next_fast_len(m + 2 * margin, real=True)
+        pn = sfft.next_fast_len(n + 2 * margin, real=True)
+        top, left = (pm - m) // 2, (pn - n) // 2
+        pad = ((top, pm - m - top), (left, pn - n - left))
+        ky = (2j * np.pi) * sfft.fftfreq(pm)
+        kx = (2j * np.pi) * sfft.rfftfreq(pn)
+        total = None
+        for k, (fy, fx) in zip(used, frac):
+            spec = sfft.rfft2(np.pad(self._sums[k], pad, mode="symmetric"))
+            # content moved by +f is moved back by -f: multiply by exp(+2 pi i k f)
+            spec *= np.exp(ky * fy).astype(np.complex64)[:, None]
+            spec *= np.exp(kx * fx).astype(np.complex64)[None, :]
+            total = spec if total is None else total + spec
+        out = sfft.irfft2(total, s=(pm, pn))[top:top + m, left:left + n]
+        return np.ascontiguousarray(out / float(self._count[used].sum()), dtype=np.float32)
 
     def _rebuild(self) -> ShiftEstimator | None:
         ref = self.reference()
