@@ -50,7 +50,7 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from outside_data import detect, nuclei_2d, specimen_crop  # noqa: E402
-from qcmon.metrics._imageops import bin_image  # noqa: E402
+from qcmon.metrics import bin_image  # noqa: E402
 from qcmon.metrics.reference_growth import REFERENCE_UPDATES, ReferenceGrowth  # noqa: E402
 from qcmon.metrics.registration import ShiftEstimator, build_reference  # noqa: E402
 from qcmon.metrics.shift_bound import shift_crb  # noqa: E402

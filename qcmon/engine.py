@@ -1061,7 +1061,7 @@ class Engine:
 
     def references_settled(self) -> bool:
         """Every stream's registration reference is final (built, and no further update scheduled): from here on
-        the rows depend on the frame and this state only (see :mod:`qcmon.split`)."""
+        the rows depend on the frame and this state only (see :mod:`qcmon.monitor.split`)."""
         return bool(self._streams) and all(
             st.shift is not None and (st.grow is None or st.grow.settled) for st in self._streams.values())
 

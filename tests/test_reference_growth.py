@@ -19,7 +19,7 @@ import pytest
 from outside_data import detect, nuclei_2d, specimen_crop
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
-from qcmon.metrics._imageops import bin_image
+from qcmon.metrics import bin_image
 from qcmon.metrics.reference_growth import ReferenceGrowth
 from qcmon.metrics.registration import ShiftEstimator, build_reference
 

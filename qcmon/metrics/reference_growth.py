@@ -39,7 +39,7 @@ noise halves in steps, and after 1920 frames, about a minute at 30 Hz, it no lon
 few estimator set-ups (about 10-30 ms at 512²); between updates a frame costs one binned addition. Fixed points
 keep the numbers reproducible: the same frames in the same order give the same references at the same frames,
 live or offline, and a split run hands its workers the engine only once the reference is final
-(:mod:`qcmon.split`).
+(:mod:`qcmon.monitor.split`).
 
 Frames that are not fit to join are left out (the engine decides most of it): frames without structure, with
 clipped pixels, without a finite shift or beyond the searched range, and here frames whose correlation with the
@@ -54,7 +54,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from qcmon.metrics._imageops import add_shifted
-from qcmon.metrics.registration import ShiftEstimator, _fourier_unshift
+from qcmon.metrics.registration import ShiftEstimator
 
 __all__ = ["ReferenceGrowth", "REFERENCE_UPDATES"]
 
@@ -169,25 +169,8 @@ class ReferenceGrowth:
         if not used:
             return None
         frac = self._frac[used] / self._count[used, None]
-        m, n = self._sums[used[0]].shape
-        # each sum moved back by its frames' mean fractional shift (Fourier shift theorem on the sum mirrored at
-        # its edges, as registration._fourier_unshift does), the spectra added: one inverse transform
-        margin = 16
-        pm = sfft.next_fast_len(m + 2 * margin, real=True)
-        pn = sfft.next_fast_len(n + 2 * margin, real=True)
-        top, left = (pm - m) // 2, (pn - n) // 2
-        pad = ((top, pm - m - top), (left, pn - n - left))
-        ky = (2j * np.pi) * sfft.fftfreq(pm)
-        kx = (2j * np.pi) * sfft.rfftfreq(pn)
-        total = None
-        for k, (fy, fx) in zip(used, frac):
-            spec = sfft.rfft2(np.pad(self._sums[k], pad, mode="symmetric"))
-            # content moved by +f is moved back by -f: multiply by exp(+2 pi i k f)
-            spec *= np.exp(ky * fy).astype(np.complex64)[:, None]
-            spec *= np.exp(kx * fx).astype(np.complex64)[None, :]
-            total = spec if total is None else total + spec
-        out = sfft.irfft2(total, s=(pm, pn))[top:top + m, left:left + n]
-        return np.ascontiguousarray(out / float(self._count[used].sum()), dtype=np.float32)
+        # each sum moved back by its frames' mean fractional shift, then all added: the mean of every frame
+        return _moved_back([self._sums[k] for k in used], frac) / np.float32(self._count[used].sum())
 
     def _rebuild(self) -> ShiftEstimator | None:
         ref = self.reference()
@@ -204,12 +187,36 @@ class ReferenceGrowth:
                               f"not register to the initial one within 1 binned px ({res.dy_px:.2f}, "
                               f"{res.dx_px:.2f} px)")
             return None
-        centred = np.empty_like(ref[None])
-        _fourier_unshift(ref[None], np.array([[oy, ox]]), centred)
         try:
-            new = self.initial.with_reference(centred[0], reference_frames=self.joined)
+            new = self.initial.with_reference(_moved_back([ref], [(oy, ox)]), reference_frames=self.joined)
         except ValueError as err:
             self.notes.append(f"reference not renewed at frame {self.seen} of it: {err}")
             return None
         self.frames = self.joined
         return new
+
+
+def _moved_back(images: list[np.ndarray], shifts) -> np.ndarray:
+    """The sum of ``images``, each with its content moved back by its subpixel shift (rows, columns; at most about
+    a pixel), as float32.
+
+    Fourier shift theorem (band-limited interpolation) on each image mirrored at its edges (``numpy.pad``,
+    ``symmetric``, 16 px), so that no content wraps around; the spectra are added, so there is one inverse transform.
+    """
+    m, n = images[0].shape
+    margin = 16
+    pm = sfft.next_fast_len(m + 2 * margin, real=True)
+    pn = sfft.next_fast_len(n + 2 * margin, real=True)
+    top, left = (pm - m) // 2, (pn - n) // 2
+    pad = ((top, pm - m - top), (left, pn - n - left))
+    ky = (2j * np.pi) * sfft.fftfreq(pm)
+    kx = (2j * np.pi) * sfft.rfftfreq(pn)
+    total = None
+    for img, (fy, fx) in zip(images, shifts):
+        spec = sfft.rfft2(np.pad(img, pad, mode="symmetric"))
+        # content moved by +f is moved back by -f: multiply by exp(+2 pi i k f)
+        spec *= np.exp(ky * fy).astype(np.complex64)[:, None]
+        spec *= np.exp(kx * fx).astype(np.complex64)[None, :]
+        total = spec if total is None else total + spec
+    out = sfft.irfft2(total, s=(pm, pn))[top:top + m, left:left + n]
+    return np.ascontiguousarray(out, dtype=np.float32)
