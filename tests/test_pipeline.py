@@ -191,6 +191,8 @@ def test_live_watch_measures_every_frame_once_and_equals_offline(tmp_path, layou
             np.testing.assert_array_equal(live[name], col, err_msg=name)
     live_summary = json.loads((tmp_path / "live" / "summary.json").read_text())
     assert live_summary["frames"] == n
+    # equal with the registration reference grown at frames 60 and 120 (qcmon.metrics.reference_growth) in both
+    assert live_summary["engine"]["streams"]["0,0"]["registration_reference_frames"] > 60
 
 
 @pytest.mark.slow
