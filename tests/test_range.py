@@ -69,6 +69,33 @@ def test_smooth_tails_are_not_ceilings():
     assert find_pileup(g, top=True) is None and find_pileup(g, top=False) is None
 
 
+def test_wide_photon_counting_comb_zero_peak_is_not_a_floor_but_its_ceiling_clip_is_found():
+    # Photon counting without read noise at 20 DN per photon (EMVA 1288 model with read noise 0): every value is
+    # offset + 20 k, a comb wider than the test's bands. The zero-photon pixels (a fraction exp(-lambda) of each
+    # pixel's frames: Poisson, textbook) pile up at the offset but are true values; before this, they read as a
+    # clipped floor and at 0.5 photons/px masked 62 % of the field, so no frame was registered.
+    rng = np.random.default_rng(16)
+    lam = specimen_crop(_specimen(1.0), SHAPE, 0.0, 0.0)
+    for scale in (0.5, 2.0):
+        fr = detect(lam * scale, rng, gain=20.0, offset=100.0, read_noise_dn=0.0, bits=16)
+        assert np.count_nonzero(fr == 100) > 0.1 * fr.size  # the zero-photon peak is there
+        assert find_pileup(fr, top=False) is None
+    # the same comb clipped by a 12-bit digitiser: the ceiling is found, and counted exactly
+    fr = detect(lam * (4095 / 20 / np.percentile(lam, 97)), rng, gain=20.0, offset=100.0, read_noise_dn=0.0,
+                bits=12)
+    truth = np.count_nonzero(fr == 4095)
+    assert truth > 0.01 * fr.size
+    assert find_pileup(fr, top=True) == (4095, truth)
+    # through the engine, the dim session is registered (its shift defined) and nothing counts as clipped
+    frames = [detect(specimen_crop(_specimen(0.5), SHAPE, 0.3 * (i % 3), 0.0), rng, gain=20.0, offset=100.0,
+                     read_noise_dn=0.0) for i in range(30)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        rows, eng = _run(frames)
+    assert all(r["clipped_frac"] == 0 for r in rows)
+    assert np.isfinite([r["dy_px"] for r in rows[10:]]).all()
+
+
 def test_floor_pileup_of_a_digitiser_offset_below_zero():
     # offset -20 DN with 8 DN read noise: the dark pixels are clipped at 0 (EMVA 1288 model, clipped at 0)
     rng = np.random.default_rng(6)

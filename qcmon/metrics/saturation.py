@@ -123,7 +123,9 @@ def find_pileup(frame, *, top: bool, extreme: float | None = None) -> tuple[floa
     diluting the rates). A smooth histogram predicts at ``v`` at most ``p = r1 · max(1, r1 / r2)`` (a geometric
     extrapolation one band on, never below the nearer band). ``v`` is a pile-up when ``c ≥ 16`` and
     ``c > 3 p + 5 √(p + 1)``: for a Poisson count of mean ``p`` that bound lies more than 5 standard deviations
-    out. A histogram that rises steeply toward ``v`` (``r1 > 0 = r2``, e.g. the zero-photon peak of
+    out. When no value within the two bands is occupied (integer data whose comb is wider than 16 values: a
+    photon-counting detector without read noise at more than 16 DN per photon), the bands are the next 8 and the
+    8 after them of the *occupied* values instead. A histogram that rises steeply toward ``v`` (``r1 > 0 = r2``, e.g. the zero-photon peak of
     photon-counting data at the floor) gives no decision (None): a steep natural peak and a clip cannot be told
     apart there. A constant frame gives None (nothing to compare with), except at a ceiling of 2ⁿ − 1
     (n = 8…16): a digitiser clipped over the whole field (2ⁿ − 1: common practice, no source). The rule and its
@@ -157,6 +159,12 @@ def find_pileup(frame, *, top: bool, extreme: float | None = None) -> tuple[floa
             sel = a[a <= v + 2 * w]
             counts = np.bincount((sel - v).astype(np.int64), minlength=2 * w + 1)
         b1, b2 = counts[1:w + 1], counts[w + 1:2 * w + 1]
+        if not b1.any() and not b2.any():
+            # a comb wider than the bands (a gain of more than 2w DN per photon without read noise): compare with
+            # the next 2w occupied values instead — the zero-photon peak of such data must not read as a clip
+            vals, cnt = np.unique(a[a < v] if top else a[a > v], return_counts=True)
+            near = cnt[::-1][:2 * w] if top else cnt[:2 * w]
+            b1, b2 = near[:w], near[w:]
     else:
         w = (hi_v - lo_v) / 256.0
         if top:
