@@ -437,6 +437,30 @@ class Engine:
             return False
         return float(np.dot(prev, st.prev_cells)) > 5.0 / math.sqrt(cells.size)
 
+    def _alike_in_clipping(self, st: _Stream, frames: list[Frame]) -> list[Frame]:
+        """The frames to build a reference from: those alike in their clipped pixels. A saturated patch that
+        appears among the reference's frames (a light leak switched on, a gain raised) would otherwise enter their
+        alignment in some frames and not in others, and the average of the two kinds registers to neither (clean,
+        unmoved frames came out tens of px off). The larger of the two groups — frames within half a percent of
+        the field of the least clipped one, and the rest — is kept if it has two frames or more; a patch in every
+        frame keeps all of them (the estimator then makes its place featureless)."""
+        if len(frames) < 4:
+            return frames
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        frac = []
+        for f in frames:
+            d = f.data
+            n = np.count_nonzero(d >= hi) if math.isfinite(hi) else 0
+            if st.range.clip_floor and math.isfinite(lo):
+                n += np.count_nonzero(d <= lo)
+            frac.append(n / d.size)
+        frac = np.asarray(frac)
+        low = frac <= frac.min() + 0.005
+        keep = low if low.sum() >= (~low).sum() else ~low
+        if keep.all() or keep.sum() < 2:
+            return frames
+        return [f for f, k in zip(frames, keep) if k]
+
     def _reference_valid(self, st: _Stream, reference: np.ndarray, stack: np.ndarray) -> np.ndarray | None:
         """Pixels of the reference usable for the registration, or None if all are: not clipped in half of the
         reference's frames or more, nor at the detector's ceiling in the reference itself. The estimator makes the
@@ -589,6 +613,7 @@ class Engine:
                 return [r for fr in frames for r in self._measure_early(st, fr)]
             st.new_reference_requested = False  # nothing to build a new one on: keep the old reference
             return [r for fr in frames for r in self._measure_or_wait(st, fr)]
+        use = self._alike_in_clipping(st, use)
         stack = np.stack([f.data for f in use]).astype(np.float32, copy=False)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # constant frames give NaN; reported per row
