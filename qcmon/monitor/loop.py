@@ -43,7 +43,7 @@ from qcmon.sources.raw import RAW_SUFFIXES
 from qcmon.sources.session import TIFF_SUFFIXES, SessionSource
 from qcmon.monitor.split import SplitRun
 from qcmon.status import Listener, Status
-from qcmon.record.summary import exclude_ranges, summarize_traces, verdict_line
+from qcmon.record.summary import exclude_ranges, jsonable, summarize_traces, verdict_line
 from qcmon.thresholds import Profile, ThresholdTracker, load_profile
 
 
@@ -725,7 +725,7 @@ class Monitor:
                 "saturation.floor_dn": first.get("floor_level_dn", math.nan),
                 "saturation.floor_origin": first.get("floor_level_text", ""),
                 "z.start_um": first.get("z_start_um", math.nan),
-                "streams": {f"{c},{p}": _jsonable(v) for (c, p), v in info.items()},
+                "streams": {f"{c},{p}": jsonable(v) for (c, p), v in info.items()},
             }
         if self._blank:
             for key in ("photon_transfer.gain", "photon_transfer.read_noise_dn", "photon_transfer.r2"):
@@ -742,7 +742,7 @@ class Monitor:
             paths["earlier"] = str(self.earlier_record)
         # the summary, exclude list, reference image and report are written as one set (all new, or all as
         # they were: a full disk or an abort half-way must not leave a new summary beside an old report)
-        files = {SUMMARY_FILE: json.dumps(_jsonable(summary), indent=2, ensure_ascii=False),
+        files = {SUMMARY_FILE: json.dumps(jsonable(summary), indent=2, ensure_ascii=False),
                  EXCLUDE_FILE: _exclude_csv(exclude_ranges(traces, events, self.profile))}
         names = {SUMMARY_FILE: "summary", EXCLUDE_FILE: "exclude", REFERENCE_FILE: "reference", REPORT_FILE: "report"}
         ref = None
@@ -898,19 +898,6 @@ def _tiff_bytes(image: np.ndarray) -> bytes:
     buf = io.BytesIO()
     tifffile.imwrite(buf, np.asarray(image, dtype=np.float32))
     return buf.getvalue()
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    if isinstance(obj, np.integer):
-        return int(obj)
-    return obj
 
 
 def read_zstack(path: Path) -> tuple[np.ndarray, float | None]:

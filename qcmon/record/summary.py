@@ -88,6 +88,7 @@ from qcmon.thresholds import Profile, load_profile
 
 __all__ = [
     "GROUPS",
+    "jsonable",
     "GROUP_LABELS",
     "readable_number",
     "session_clock",
@@ -605,11 +606,12 @@ def exclude_csv(ranges: Iterable[ExcludeRange]) -> str:
     return buf.getvalue()
 
 
-def _jsonable(obj):
+def jsonable(obj):
+    """``obj`` with numpy scalars as Python numbers, non-finite floats as None, paths as text, keys as text."""
     if isinstance(obj, Mapping):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
+        return {str(k): jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
+        return [jsonable(v) for v in obj]
     if isinstance(obj, (np.floating, float)):
         v = float(obj)
         return v if math.isfinite(v) else None
@@ -622,4 +624,4 @@ def _jsonable(obj):
 
 def summary_json(summary: Mapping) -> str:
     """``summary`` as JSON text (NaN written as null)."""
-    return json.dumps(_jsonable(summary), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    return json.dumps(jsonable(summary), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
