@@ -112,3 +112,19 @@ def wait_until(cond, timeout: float, step: float = 0.05) -> bool:
             return True
         time.sleep(step)
     return cond()
+
+
+class PausedReasons:
+    """A monitor listener that keeps the ``paused_reason`` of every status it is sent (rows and events ignored)."""
+
+    def __init__(self) -> None:
+        self.seen: list[str] = []
+
+    def on_rows(self, rows) -> None:
+        pass
+
+    def on_event(self, ev) -> None:
+        pass
+
+    def on_status(self, st) -> None:
+        self.seen.append(st.paused_reason)

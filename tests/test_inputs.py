@@ -33,7 +33,7 @@ from qcmon.frames import RATE_UNKNOWN, UNTIMED_FRAMES_PER_S, Frame
 from qcmon.monitor.loop import Monitor, MonitorOptions, PaceEstimate
 from qcmon.record.journal import read_events, read_traces
 from qcmon.thresholds import load_profile
-from reliability_data import run_qcmon, snapshot
+from reliability_data import PausedReasons, run_qcmon, snapshot
 
 SIZE = 64
 
@@ -402,21 +402,11 @@ def test_watched_folder_with_nothing_readable_says_so(tmp_path):
     sess = tmp_path / "sess"
     sess.mkdir()
     (sess / "a.tif").write_bytes(b"not a tiff")
-    seen = []
-
-    class Listen:
-        def on_rows(self, rows):
-            pass
-
-        def on_event(self, ev):
-            pass
-
-        def on_status(self, st):
-            seen.append(st.paused_reason)
-
+    listener = PausedReasons()
+    seen = listener.seen
     mon = Monitor(MonitorOptions(path=sess, out_dir=tmp_path / "out", follow=True, until_idle_s=0.6,
                                  poll_interval_s=0.1))
     started = time.monotonic()
-    mon.run(Listen())
+    mon.run(listener)
     assert time.monotonic() - started < 20
     assert any(s == "no readable frame yet: 1 file problem" for s in seen), seen

@@ -380,22 +380,14 @@ def test_an_empty_folder_says_it_waits_for_the_first_frame(tmp_path):
 
     from qcmon.monitor.loop import WAITING_FIRST, Monitor, MonitorOptions
 
-    seen = []
+    from reliability_data import PausedReasons
 
-    class Listener:
-        def on_rows(self, rows):
-            pass
-
-        def on_event(self, ev):
-            pass
-
-        def on_status(self, st):
-            seen.append(st.paused_reason)
-
+    listener = PausedReasons()
+    seen = listener.seen
     (tmp_path / "watched").mkdir()
     mon = Monitor(MonitorOptions(path=tmp_path / "watched", out_dir=tmp_path / "rec", poll_interval_s=0.1,
                                  resume=False))
-    th = threading.Thread(target=mon.run, args=(Listener(),))
+    th = threading.Thread(target=mon.run, args=(listener,))
     th.start()
     try:
         t0 = time.monotonic()
