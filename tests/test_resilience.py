@@ -470,3 +470,49 @@ def test_second_ctrl_c_aborts_without_the_summary_and_keeps_the_rows(tmp_path):
     # the record is whole: the next run resumes it and writes the summary
     res = run_qcmon("summarize", frames, "--frame-rate", RATE, "--out", out, timeout=60)
     assert res.returncode == 0 and (out / "summary.json").exists(), res.stderr
+
+
+# --------------------------------------------------------------------------------- the dashboard's terminal closes
+def test_a_closed_terminal_ends_the_dashboard_and_writes_the_summary(tmp_path):
+    # The dashboard on a real pseudo-terminal (its controlling terminal); closing the terminal's other end is what a
+    # dropped remote login does: the kernel sends SIGHUP (POSIX, "Terminal Hangup"). Before, the watch went on and
+    # then the dashboard hung for ever on its way out (its writes to the dead terminal blocked), with no summary.
+    import fcntl
+    import pty
+    import termios
+    import threading
+
+    frames, out = tmp_path / "frames", tmp_path / "record"
+    _write_frames(frames, good_pages(80))
+    master, slave = pty.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, b"\x28\x00\xa0\x00\x00\x00\x00\x00")  # 40 rows x 160 columns
+
+    def controlling_terminal():
+        os.setsid()
+        fcntl.ioctl(0, termios.TIOCSCTTY, 0)
+
+    env = dict(os.environ, TERM="xterm-256color")
+    proc = subprocess.Popen(qcmon_cmd("watch", frames, "--until-idle", 600, "--frame-rate", RATE, "--out", out),
+                            stdin=slave, stdout=slave, stderr=slave, preexec_fn=controlling_terminal, env=env,
+                            close_fds=True)
+    os.close(slave)
+
+    def drain():  # a terminal shows what it is sent; unread, the dashboard's writes would fill its buffer
+        try:
+            while os.read(master, 65536):
+                pass
+        except OSError:
+            pass
+
+    threading.Thread(target=drain, daemon=True).start()
+    try:
+        assert _wait(lambda: _rows(out) == 80, 60), f"{_rows(out)} rows"
+        os.close(master)  # the terminal is gone
+        proc.wait(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+            pytest.fail("the dashboard did not end when its terminal closed")
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["frames"] == 80

@@ -1,10 +1,9 @@
 """Run a watch on a screen: the dashboard, or plain lines with commands read from standard input; the first
-Ctrl-C or SIGTERM ends the watch cleanly. Used by ``qcmon watch`` (:mod:`qcmon.cli`) and ``qcmon demo``
+Ctrl-C, SIGTERM or SIGHUP ends the watch cleanly. Used by ``qcmon watch`` (:mod:`qcmon.cli`) and ``qcmon demo``
 (:mod:`qcmon.demo`)."""
 
 from __future__ import annotations
 
-import signal
 import sys
 import threading
 
@@ -12,24 +11,7 @@ from qcmon import __version__
 from qcmon.arguments import EXIT_OK
 from qcmon.errors import display_path
 from qcmon.frames import RATE_UNKNOWN
-
-
-def stop_on_signals(monitor) -> None:
-    """First Ctrl-C or SIGTERM ends the watch cleanly (the summary is written); a second Ctrl-C aborts without
-    writing the summary, report, exclude list and reference image (``Monitor.abort``)."""
-    hits = {"n": 0}
-
-    def handler(signum, frame):
-        hits["n"] += 1
-        if hits["n"] > 1 and signum == signal.SIGINT:
-            monitor.abort()
-            raise KeyboardInterrupt
-        print("\nqcmon: ending the watch, writing the summary…", file=sys.stderr, flush=True)
-        monitor.stop()
-
-    if threading.current_thread() is threading.main_thread():
-        signal.signal(signal.SIGINT, handler)
-        signal.signal(signal.SIGTERM, handler)
+from qcmon.ui.signals import stop_on_signals
 
 
 def read_commands(monitor, stream) -> None:
@@ -49,11 +31,11 @@ def read_commands(monitor, stream) -> None:
 
 
 def run_watch(monitor, *, plain: bool) -> int:
-    stop_on_signals(monitor)
     if not plain:
         from qcmon.ui.dashboard.app import run_dashboard
 
-        return run_dashboard(monitor)
+        return run_dashboard(monitor)  # with its own stop_on_signals, which also leaves the dashboard
+    stop_on_signals(monitor)
     from qcmon.ui.console import PlainConsole
 
     console = PlainConsole()

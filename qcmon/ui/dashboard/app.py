@@ -112,6 +112,7 @@ class QcmonApp(App[dict | None]):
         self._unshown_events: list[Event] = []
         self._dirty = False
         self._stopping = False
+        self.ending_by_signal = False  # set by a signal handler (SIGTERM, a closed terminal): leave without q
         self._run_returned = threading.Event()
         self._listener = AppListener(self)
 
@@ -225,6 +226,10 @@ class QcmonApp(App[dict | None]):
         return ""
 
     def _refresh_if_dirty(self) -> None:
+        if self.ending_by_signal and not self.watch_running:
+            # the watch was ended by a signal and has written its summary: leave (no one may be there to press q)
+            self.exit(self.result, return_code=1 if self.error is not None else 0)
+            return
         if self._dirty:
             self.refresh_display()
 
@@ -379,6 +384,9 @@ def run_dashboard(monitor, *, title: str | None = None) -> int:
         otherwise, 130 when aborted (a second Ctrl-C: no summary set).
     """
     app = QcmonApp(monitor, title=title)
+    from qcmon.ui.signals import stop_on_signals
+
+    stop_on_signals(monitor, also=lambda: setattr(app, "ending_by_signal", True))
     try:
         result = app.run()
     except KeyboardInterrupt:  # outside the app's own keys: abort like a second Ctrl-C (no summary set)
