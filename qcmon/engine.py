@@ -307,6 +307,11 @@ class Engine:
                           "saturation_level_dn": st.max_value, "frames": st.n_measured}
             if st.grow is not None:  # frames the registration reference is made of (it grows at fixed counts)
                 info["registration_reference_frames"] = st.grow.frames
+                # the likelihood's roll-off (fractions of the binned Nyquist frequency; "none": every frequency),
+                # as the growing reference last chose it from how the frames follow a rigid shift
+                lo, hi = st.shift._ML_BAND
+                info["registration_rolloff"] = "none" if not math.isfinite(lo) else [lo, hi]
+                info["registration_rolloff_chosen_at"] = st.grow.choices[-1][0] if st.grow.choices else None
             if st.range is not None:
                 info.update(saturation_level_origin=st.range.ceiling.origin,
                             saturation_level_text=st.range.ceiling.text, floor_level_dn=st.range.floor.value,

@@ -61,6 +61,17 @@ __all__ = ["ReferenceGrowth", "REFERENCE_UPDATES"]
 #: Frames measured since the reference was built at which the estimator gets the accumulated reference.
 REFERENCE_UPDATES: tuple[int, ...] = (60, 120, 240, 480, 960, 1920)
 
+#: The likelihood's roll-offs (``ShiftEstimator._ML_BAND``, fractions of the binned Nyquist frequency) an update
+#: chooses from; the first is the estimator's default.
+ML_BANDS: tuple[tuple[float, float], ...] = ((0.5, 1.0), (0.9, 1.4), (math.inf, math.inf))
+#: The roll-off of the yardstick the choice measures bias against (low frequencies move alike in every model of
+#: motion: its bias stayed within 0.8x the bound on four, see ``bench/bench_shift_models.py``)
+YARDSTICK_BAND = (0.25, 0.5)
+#: Fewest joined frames for an update to choose the roll-off (fewer: the estimator's stays)
+CHOOSE_FROM = 60
+#: Updates after this many frames measured keep the last choice (each choice costs about 0.2 s at 512²)
+CHOOSE_UNTIL = 480
+
 
 class ReferenceGrowth:
     """Accumulates registered frames into the reference's coordinates and makes improved shift estimators.
@@ -107,10 +118,15 @@ class ReferenceGrowth:
         self.joined = 0
         self._corr_sum = 0.0
         p = self.PHASES
-        self._sums: list[np.ndarray | None] = [None] * (p * p)
-        self._count = np.zeros(p * p, dtype=np.int64)
-        self._frac = np.zeros((p * p, 2), dtype=np.float64)
+        # two sums per bin (alternate frames), so that their difference measures the noise (model_agreement)
+        self._sums: list[np.ndarray | None] = [None] * (2 * p * p)
+        self._count = np.zeros(2 * p * p, dtype=np.int64)
+        self._frac = np.zeros((2 * p * p, 2), dtype=np.float64)
         self.notes: list[str] = []
+        #: the roll-off each update chose, with the measured mean square error of every candidate (px²):
+        #: ``(frames seen, chosen band, {band: mse})``
+        self.choices: list[tuple[int, tuple[float, float], dict]] = []
+        self.band: tuple[float, float] | None = None  # the roll-off last chosen (None: the initial estimator's)
 
     @property
     def settled(self) -> bool:
@@ -132,6 +148,7 @@ class ReferenceGrowth:
         fy, fx = sy - ny, sx - nx
         p = self.PHASES
         k = min(int((fy + 0.5) * p), p - 1) * p + min(int((fx + 0.5) * p), p - 1)
+        k = 2 * k + int(self._count[2 * k] > self._count[2 * k + 1])  # alternate frames go to the two halves
         acc = self._sums[k]
         if acc is None:
             acc = self._sums[k] = np.zeros(binned.shape, dtype=np.float32)
@@ -165,17 +182,111 @@ class ReferenceGrowth:
     def reference(self) -> np.ndarray | None:
         """The accumulated reference (binned, float32) in the initial reference's coordinates before its zero is
         checked, or None when nothing joined."""
+        groups = self._groups()
+        return None if groups is None else groups[0]
+
+    def _groups(self) -> tuple[np.ndarray, list] | None:
+        """The accumulated reference, and per phase bin the means of its two halves, each moved back by its frames'
+        mean fractional shift, with their frame counts (``((mean_a, n_a), (mean_b, n_b))``, a mean None where a
+        half is empty); None when nothing joined."""
         used = [k for k in range(len(self._sums)) if self._count[k] > 0 and self._sums[k] is not None]
         if not used:
             return None
-        frac = self._frac[used] / self._count[used, None]
-        # each sum moved back by its frames' mean fractional shift, then all added: the mean of every frame
-        return _moved_back([self._sums[k] for k in used], frac) / np.float32(self._count[used].sum())
+        counts = self._count[used]
+        frac = self._frac[used] / counts[:, None]
+        means = _moved_back_each([self._sums[k] / np.float32(c) for k, c in zip(used, counts)], frac)
+        # the mean of every frame
+        ref = np.sum([m * np.float32(c) for m, c in zip(means, counts)], axis=0) / np.float32(counts.sum())
+        by_sum = {k: (m, int(c)) for k, m, c in zip(used, means, counts)}
+        halves = [(by_sum.get(2 * b, (None, 0)), by_sum.get(2 * b + 1, (None, 0))) for b in range(len(self._sums) // 2)]
+        return ref.astype(np.float32, copy=False), halves
+
+    def _choose_band(self, ref: np.ndarray, halves: list) -> tuple[float, float] | None:
+        """The likelihood roll-off (of :data:`ML_BANDS`) with the smallest measured error; the last choice (None
+        before any: the initial estimator's) before :data:`CHOOSE_FROM` frames joined, after :data:`CHOOSE_UNTIL`
+        frames measured, or with fewer than four phase bins holding two halves.
+
+        How much of a frame's spectrum moves as a rigid shift depends on the specimen and the optics (a scene finer
+        than the pixels aliases differently at every fractional shift) and cannot be known beforehand: keeping
+        every frequency is the maximum-likelihood estimator when frames do follow a rigid shift, and biased by the
+        fractional shift when they do not; rolling off the highest frequencies trades that bias for variance. Each
+        candidate estimator (the new reference, one roll-off each) measures the means of the two halves of every
+        phase bin (frames at about the same fractional shift, alternate frames in each half). Its error variance
+        per frame follows from the two halves' difference; its bias from the difference to the yardstick
+        (:data:`YARDSTICK_BAND`, which keeps only low frequencies — where every model of motion agrees — and has
+        little bias and much variance), the yardstick's own noise taken off as measured by the halves. The choice
+        minimises bias² + variance.
+        """
+        pairs = [(a, b) for a, b in halves if a[0] is not None and b[0] is not None]
+        if self.joined < CHOOSE_FROM or self.seen > CHOOSE_UNTIL or len(pairs) < 4:
+            return self.band
+        na = np.array([a[1] for a, _ in pairs], dtype=np.float64)
+        nb = np.array([b[1] for _, b in pairs], dtype=np.float64)
+
+        def measured(band) -> tuple[ShiftEstimator | None, np.ndarray | None]:
+            try:
+                est = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band)
+            except ValueError:
+                return None, None
+            with np.errstate(all="ignore"):
+                out = np.array([[est.estimate_binned(m)[:2] for m in (a[0], b[0])] for a, b in pairs])
+            return est, (out if np.all(np.isfinite(out)) else None)
+
+        _, yard = measured(YARDSTICK_BAND)
+        trials = self._trial_frames(ref)
+        if yard is None or trials is None:
+            return self.band
+        frames, truth = trials
+        scores = {}
+        for band in ML_BANDS:
+            est, x = measured(band)
+            if x is None:
+                continue
+            with np.errstate(all="ignore"):
+                got = np.array([est.estimate_binned(f)[:2] for f in frames])
+            err = got - truth
+            if not np.all(np.isfinite(err)):
+                continue
+            _, bias2 = _mean_square(x - yard, na, nb)
+            scores[band] = max(bias2, 0.0) + float(np.mean((err - err.mean(axis=0)) ** 2))
+        if not scores:
+            return self.band
+        best = min(scores, key=scores.get)
+        self.choices.append((self.seen, best, scores))
+        self.band = best
+        return best
+
+    #: Frames drawn from the new reference to measure each candidate's variance
+    TRIALS = 16
+
+    def _trial_frames(self, ref: np.ndarray) -> tuple[list[np.ndarray], np.ndarray] | None:
+        """:attr:`TRIALS` binned frames drawn from the reference under the detector's model — the reference moved by
+        a random subpixel shift (Fourier), photon noise at the detector's gain, read noise — and their shifts
+        (original px); None without a known gain. The same seed at every update: the same frames give the same
+        choice, live or offline."""
+        dark, gain, read_noise = self.initial._facts
+        if gain is None or not (math.isfinite(gain) and gain > 0):
+            return None
+        b = self.initial.bin_factor
+        dark_b = b * b * float(dark) if dark is not None and math.isfinite(dark) else 0.0
+        rn = float(read_noise) * b if read_noise is not None and math.isfinite(read_noise) else 0.0
+        rng = np.random.default_rng(20261203)
+        shifts = rng.uniform(-0.5, 0.5, (self.TRIALS, 2))
+        moved = _moved_back_each([ref] * self.TRIALS, -shifts)  # content moved by +shift
+        frames = []
+        for lam in moved:
+            photons = np.clip(lam.astype(np.float64) - dark_b, 0.0, None) / gain
+            frame = rng.poisson(photons) * gain + dark_b
+            if rn > 0:
+                frame = frame + rng.normal(0.0, rn, frame.shape)
+            frames.append(frame.astype(np.float32))
+        return frames, shifts * b
 
     def _rebuild(self) -> ShiftEstimator | None:
-        ref = self.reference()
-        if ref is None:
+        groups = self._groups()
+        if groups is None:
             return None
+        ref, halves = groups
         # the zero: the new reference's shift against the initial one, measured by the initial estimator
         with np.errstate(all="ignore"):
             res = self.initial.estimate_binned(ref)
@@ -187,8 +298,10 @@ class ReferenceGrowth:
                               f"not register to the initial one within 1 binned px ({res.dy_px:.2f}, "
                               f"{res.dx_px:.2f} px)")
             return None
+        ref = _moved_back_each([ref], [(oy, ox)])[0]
+        band = self._choose_band(ref, halves)
         try:
-            new = self.initial.with_reference(_moved_back([ref], [(oy, ox)]), reference_frames=self.joined)
+            new = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band)
         except ValueError as err:
             self.notes.append(f"reference not renewed at frame {self.seen} of it: {err}")
             return None
@@ -196,12 +309,25 @@ class ReferenceGrowth:
         return new
 
 
-def _moved_back(images: list[np.ndarray], shifts) -> np.ndarray:
-    """The sum of ``images``, each with its content moved back by its subpixel shift (rows, columns; at most about
-    a pixel), as float32.
+def _mean_square(x: np.ndarray, na: np.ndarray, nb: np.ndarray) -> tuple[float, float]:
+    """For differences ``x`` (groups, 2 halves, 2 axes) of two estimators' shifts measured on the means of each
+    group's two halves (``na``, ``nb`` frames): one frame's variance of the difference, from the halves'
+    differences (``var(x_a - x_b) = V (1/na + 1/nb)``), and the groups' mean square (weighted by frames) less its
+    noise, ``sum_k (n_k/N) x_k^2 - K V / N``, per axis."""
+    inv = (1.0 / na + 1.0 / nb)[:, None]
+    var = float(np.mean((x[:, 0] - x[:, 1]) ** 2 / inv))
+    n = na + nb
+    group = (na[:, None] * x[:, 0] + nb[:, None] * x[:, 1]) / n[:, None]
+    ms = float(np.sum(n[:, None] * group ** 2) / (2 * n.sum())) - len(n) * var / n.sum()
+    return var, ms
+
+
+def _moved_back_each(images: list[np.ndarray], shifts) -> list[np.ndarray]:
+    """``images``, each with its content moved back by its subpixel shift (rows, columns; at most about a pixel),
+    as float32.
 
     Fourier shift theorem (band-limited interpolation) on each image mirrored at its edges (``numpy.pad``,
-    ``symmetric``, 16 px), so that no content wraps around; the spectra are added, so there is one inverse transform.
+    ``symmetric``, 16 px), so that no content wraps around.
     """
     m, n = images[0].shape
     margin = 16
@@ -211,12 +337,12 @@ def _moved_back(images: list[np.ndarray], shifts) -> np.ndarray:
     pad = ((top, pm - m - top), (left, pn - n - left))
     ky = (2j * np.pi) * sfft.fftfreq(pm)
     kx = (2j * np.pi) * sfft.rfftfreq(pn)
-    total = None
+    out = []
     for img, (fy, fx) in zip(images, shifts):
         spec = sfft.rfft2(np.pad(img, pad, mode="symmetric"))
         # content moved by +f is moved back by -f: multiply by exp(+2 pi i k f)
         spec *= np.exp(ky * fy).astype(np.complex64)[:, None]
         spec *= np.exp(kx * fx).astype(np.complex64)[None, :]
-        total = spec if total is None else total + spec
-    out = sfft.irfft2(total, s=(pm, pn))[top:top + m, left:left + n]
-    return np.ascontiguousarray(out, dtype=np.float32)
+        out.append(np.ascontiguousarray(sfft.irfft2(spec, s=(pm, pn))[top:top + m, left:left + n],
+                                        dtype=np.float32))
+    return out

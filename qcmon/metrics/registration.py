@@ -287,7 +287,8 @@ class ShiftEstimator:
         self._band_power_ref = float(np.sum(self._absf2))
         self._n_band = self._absf2.size
 
-    def with_reference(self, binned_reference: np.ndarray, *, reference_frames: float) -> "ShiftEstimator":
+    def with_reference(self, binned_reference: np.ndarray, *, reference_frames: float,
+                       ml_band: tuple[float, float] | None = None) -> "ShiftEstimator":
         """A copy of this estimator (same binning, band, range and detector) measuring against a new reference.
 
         Parameters
@@ -298,6 +299,10 @@ class ShiftEstimator:
         reference_frames : float
             How many frames' photons it holds (its noise is a frame's over this number; see the likelihood's
             Wiener filter in :meth:`_ml_setup`).
+        ml_band : (float, float), optional
+            Where the likelihood's frequencies roll off (fractions of the binned Nyquist frequency, as
+            ``_ML_BAND``; ``(inf, inf)`` keeps every frequency), e.g. chosen by the growing reference from how its
+            frames follow a rigid shift (:mod:`qcmon.metrics.reference_growth`). None keeps this estimator's.
         """
         refb = np.asarray(binned_reference)
         if refb.shape != self._bshape:
@@ -307,7 +312,13 @@ class ShiftEstimator:
             raise ValueError("binned_reference is constant or has no finite pixel: there is nothing to register to")
         if not (reference_frames > 0):
             raise ValueError(f"reference_frames must be positive, got {reference_frames!r}")
+        if ml_band is not None:
+            lo, hi = (float(v) for v in ml_band)
+            if not (0 < lo <= hi):
+                raise ValueError(f"ml_band must be (low, high) with 0 < low <= high, got {ml_band!r}")
         new = copy.copy(self)
+        if ml_band is not None:
+            new._ML_BAND = (lo, hi)  # this estimator's own roll-off (the class's is the default)
         new.out_of_range = False
         new._set_reference(refb)
         new._ml_setup(refb, *self._facts, reference_frames)
@@ -380,6 +391,8 @@ class ShiftEstimator:
         fx = np.arange(nb // 2 + 1) / (nb / 2)
         rad = np.hypot(fy[:, None], fx[None, :])
         lo, hi = self._ML_BAND
+        if not math.isfinite(lo):
+            return np.ones_like(rad)
         return 0.5 * (1 + np.cos(np.pi * np.clip((rad - lo) / max(hi - lo, 1e-9), 0.0, 1.0)))
 
     def _ml_refine(self, g_full: np.ndarray, mean: float, cy: float, cx: float, vmask: np.ndarray | None = None,
