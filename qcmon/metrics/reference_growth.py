@@ -236,11 +236,15 @@ class ReferenceGrowth:
         trials = self._trial_frames(ref)
         if yard is None or trials is None:
             return self.band
-        frames, truth = trials
+        frames, truth, drawn_ref = trials
         scores = {}
         for band in ML_BANDS:
-            est, x = measured(band)
+            _, x = measured(band)
             if x is None:
+                continue
+            try:
+                est = self.initial.with_reference(drawn_ref, reference_frames=self.joined, ml_band=band)
+            except ValueError:
                 continue
             with np.errstate(all="ignore"):
                 got = np.array([est.estimate_binned(f)[:2] for f in frames])
@@ -259,11 +263,14 @@ class ReferenceGrowth:
     #: Frames drawn from the new reference to measure each candidate's variance
     TRIALS = 16
 
-    def _trial_frames(self, ref: np.ndarray) -> tuple[list[np.ndarray], np.ndarray] | None:
+    def _trial_frames(self, ref: np.ndarray) -> tuple[list[np.ndarray], np.ndarray, np.ndarray] | None:
         """:attr:`TRIALS` binned frames drawn from the reference under the detector's model — the reference moved by
-        a random subpixel shift (Fourier), photon noise at the detector's gain, read noise — and their shifts
-        (original px); None without a known gain. The same seed at every update: the same frames give the same
-        choice, live or offline."""
+        a random subpixel shift (Fourier), photon noise at the detector's gain, read noise — their shifts (original
+        px), and a reference drawn alike with the photons of :attr:`joined` frames (the candidates measure the
+        trial frames against it, so that a reference's own noise counts in their variance, as it does in the
+        session's; the reference itself already holds that much noise, so this errs toward the roll-off); None
+        without a known gain. The same seed at every update: the same frames give the same choice, live or
+        offline."""
         dark, gain, read_noise = self.initial._facts
         if gain is None or not (math.isfinite(gain) and gain > 0):
             return None
@@ -280,7 +287,11 @@ class ReferenceGrowth:
             if rn > 0:
                 frame = frame + rng.normal(0.0, rn, frame.shape)
             frames.append(frame.astype(np.float32))
-        return frames, shifts * b
+        n = float(self.joined)
+        drawn = rng.poisson(np.clip(ref.astype(np.float64) - dark_b, 0.0, None) * (n / gain)) * (gain / n) + dark_b
+        if rn > 0:
+            drawn = drawn + rng.normal(0.0, rn / math.sqrt(n), drawn.shape)
+        return frames, shifts * b, drawn.astype(np.float32)
 
     def _rebuild(self) -> ShiftEstimator | None:
         groups = self._groups()
