@@ -69,8 +69,10 @@ ML_BANDS: tuple[tuple[float, float], ...] = ((0.5, 1.0), (0.9, 1.4), (math.inf, 
 YARDSTICK_BAND = (0.25, 0.5)
 #: Fewest joined frames for an update to choose the roll-off (fewer: the estimator's stays)
 CHOOSE_FROM = 60
-#: Updates after this many frames measured keep the last choice (each choice costs about 0.2 s at 512²)
-CHOOSE_UNTIL = 480
+#: The roll-off is chosen twice: at the first update with CHOOSE_FROM joined frames, and again (with more frames to
+#: tell bias from noise) at the first update at or after this many frames measured; the other updates keep the
+#: last choice (a choice costs about 0.25 s at 512²)
+CHOOSE_AGAIN = 480
 
 
 class ReferenceGrowth:
@@ -202,9 +204,10 @@ class ReferenceGrowth:
         return ref.astype(np.float32, copy=False), halves
 
     def _choose_band(self, ref: np.ndarray, halves: list) -> tuple[float, float] | None:
-        """The likelihood roll-off (of :data:`ML_BANDS`) with the smallest measured error; the last choice (None
-        before any: the initial estimator's) before :data:`CHOOSE_FROM` frames joined, after :data:`CHOOSE_UNTIL`
-        frames measured, or with fewer than four phase bins holding two halves.
+        """The likelihood roll-off (of :data:`ML_BANDS`) with the smallest measured error, at the first update with
+        :data:`CHOOSE_FROM` joined frames and the first at or after :data:`CHOOSE_AGAIN` frames measured; otherwise
+        (and with fewer than four phase bins holding two halves) the last choice (None before any: the initial
+        estimator's).
 
         How much of a frame's spectrum moves as a rigid shift depends on the specimen and the optics (a scene finer
         than the pixels aliases differently at every fractional shift) and cannot be known beforehand: keeping
@@ -218,7 +221,8 @@ class ReferenceGrowth:
         minimises bias² + variance.
         """
         pairs = [(a, b) for a, b in halves if a[0] is not None and b[0] is not None]
-        if self.joined < CHOOSE_FROM or self.seen > CHOOSE_UNTIL or len(pairs) < 4:
+        due = not self.choices or (len(self.choices) == 1 and self.seen >= CHOOSE_AGAIN)
+        if self.joined < CHOOSE_FROM or not due or len(pairs) < 4:
             return self.band
         na = np.array([a[1] for a, _ in pairs], dtype=np.float64)
         nb = np.array([b[1] for _, b in pairs], dtype=np.float64)
