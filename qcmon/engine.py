@@ -1095,6 +1095,90 @@ class Engine:
         return bool(self._streams) and all(
             st.shift is not None and (st.grow is None or st.grow.settled) for st in self._streams.values())
 
+    def register_only(self, frame: Frame) -> bool:
+        """Advance the registration of ``frame``'s stream as :meth:`process` would, and nothing else: no row.
+
+        For a copy of this engine that must reach the final registration reference of a later part of the session
+        without measuring every frame before it (:mod:`qcmon.monitor.split`): the frame is checked, its extremes go
+        to the detector's range finder, it is binned and registered against the current reference, offered to the
+        reference's growth and counted, exactly as in :meth:`_measure`; photometry, noise, the running means and
+        photon transfer are left alone. Returns False, with nothing changed, when the frame cannot be handled so
+        (a stream without a reference yet, a reference requested anew, a changed frame size, motion taken from
+        another channel, a z-stack whose estimates decide which frames join): :meth:`process` it then. Raises
+        :class:`~qcmon.errors.FrameError` for a bad frame, as :meth:`process` does.
+        """
+        s = self.settings
+        st = self._streams.get((frame.channel, frame.plane))
+        data = frame.data
+        if s.zstack is not None or s.motion_channel is not None or st is None or st.shift is None \
+                or st.new_reference_requested or st.pending or st.range is None \
+                or not isinstance(data, np.ndarray) or data.shape != st.shape or data.dtype != st.dtype:
+            return False
+        self._check(st, frame)  # the same size and type: only its checks of the pixels' type
+        img = data if data.dtype.kind in "ui" and data.dtype.itemsize <= 2 else data.astype(np.float32, copy=False)
+        factor = st.shift.bin_factor
+        binned = bin_image(img, factor)
+        fmin, fmax = self._observe_range(st, frame)
+        hi, lo = st.range.ceiling.value, st.range.floor.value
+        if fmax >= hi or fmin <= lo:
+            sat, clip, valid = self._clipped(st, data, fmin, fmax)
+        else:
+            sat, clip, valid = 0.0, 0.0, None
+        structured = fmax > fmin and sat + (clip if st.range.clip_floor else 0.0) <= 0.5
+        if structured:
+            self._end_blank(st)
+        else:
+            self._note_blank(st, frame, "constant frames, or more than half of the pixels at a detector limit")
+        dy = dx = NAN
+        if structured:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)
+                mean_binned = valid_counts = None
+                if valid is not None:
+                    valid_counts = bin_image(valid.view(np.uint8), factor)
+                elif st.exact_binning:
+                    mean_binned = float(np.add.reduce(binned, axis=None, dtype=np.float64)) / binned.size
+                finite = img.dtype.kind in "ui" or bool(np.isfinite(binned).all())
+                if finite:
+                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
+                else:
+                    res = st.shift.estimate(img, valid=valid)
+                dy, dx = res.dy_px, res.dx_px
+                if st.grow is not None and valid is None and finite and not st.shift.out_of_range:
+                    st.grow.offer(binned, dy, dx, res.corr)
+        st.prev, st.prev_shift = img, ((int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy)
+                                       else (0, 0))
+        st.prev2 = None  # photon transfer's triples start again with the frames measured in full
+        st.n_measured += 1
+        if st.grow is not None:
+            new = st.grow.tick()
+            if new is not None:
+                st.shift = new
+            if st.grow.settled:
+                st.grow.notes.clear()  # the engine that measures these frames in full reports them
+        return True
+
+    def split_digest(self) -> dict:
+        """The state a later part of the session's rows depend on beyond the last few hundred frames, per stream
+        (picklable, comparable): registration reference, detector levels, dark levels and gain. Two engines with
+        the same digest, warmed up on the same frames, give the same rows (see :mod:`qcmon.monitor.split`)."""
+        import hashlib
+
+        out = {}
+        for key, st in sorted(self._streams.items()):
+            ref = None
+            if st.shift is not None:  # the estimator's arrays and numbers (a pickle's bytes vary with sharing)
+                h = hashlib.sha256()
+                for name, v in sorted(vars(st.shift).items()):
+                    h.update(name.encode())
+                    h.update(v.tobytes() if isinstance(v, np.ndarray) else repr(v).encode())
+                ref = h.hexdigest()
+            out[key] = repr((ref, st.shape, None if st.grow is None else (st.grow.frames, st.grow.joined, st.grow.settled),
+                        None if st.range is None else (st.range.ceiling, st.range.floor, st.range.clip_floor),
+                        st.dark_level, st.dark_origin, st.gain, st.refit_gain, st.photon_dark, st.photon_dark_origin,
+                        st.new_reference_requested, st.untimed))  # repr: NaN equals NaN
+        return out
+
     @property
     def frames_measured(self) -> int:
         """The fewest frames any stream has measured."""
