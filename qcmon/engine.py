@@ -1095,6 +1095,19 @@ class Engine:
         return bool(self._streams) and all(
             st.shift is not None and (st.grow is None or st.grow.settled) for st in self._streams.values())
 
+    def can_register_only(self) -> bool:
+        """Whether :meth:`register_only` can advance every stream of this engine (see there)."""
+        s = self.settings
+        return bool(self._streams) and s.zstack is None and s.motion_channel is None and all(
+            st.shift is not None and not st.new_reference_requested and not st.pending and st.range is not None
+            for st in self._streams.values())
+
+    def frames_to_final(self) -> int:
+        """Frames each stream still measures before every registration reference is final (the most of any)."""
+        last = max((int(u) for u in self.settings.reference_updates), default=0)  # the growth's last update
+        return max((max(0, last - st.grow.seen) for st in self._streams.values()
+                    if st.grow is not None and not st.grow.settled), default=0)
+
     def register_only(self, frame: Frame) -> bool:
         """Advance the registration of ``frame``'s stream as :meth:`process` would, and nothing else: no row.
 

@@ -176,7 +176,7 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
                         lambda self, *a: calls.append(real(self, *a)) or calls[-1])
     one = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a1", workers=1), progress=False)
     two = run_audit(AuditOptions(roots=[tmp_path / "lab"], out_dir=tmp_path / "a2", workers=2), progress=False)
-    assert calls == [2]                                   # only the two-process audit split the session
+    assert [c for c in calls if c] == [2]                 # only the two-process audit split the session (0: not yet)
     # photon-transfer figures (gain, its dark level, photons) come from the first chunk's pairs in a split run
     drop = ("seconds", "frames_per_s", "reused", "status", "record", "dark_level_dn")
 
@@ -192,10 +192,11 @@ def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch
     monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
     launched = []
     real = qcmon.monitor.split.SplitRun.launch
-    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
+                        lambda self, *a: launched.append(real(self, *a)) or launched[-1])
     for w in (1, 2):
         Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
-    assert launched == [1]
+    assert [n for n in launched if n] == [1]                 # 0: not decided yet (the reference still grows)
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
 
 
@@ -235,15 +236,17 @@ def test_a_level_found_in_one_chunk_holds_in_the_later_ones(tmp_path, monkeypatc
 
 
 def test_a_reference_still_growing_where_the_first_chunk_would_end_keeps_one_process(tmp_path, monkeypatch):
-    # the default growth runs to frame 1920: an 800-point session is split nowhere, and gives one process's numbers
+    # the default growth runs to frame 1920: a worker of an 800-point session would register to beyond its end
+    # before its chunk, so the session is split nowhere, and gives one process's numbers
     frames = _sim(tmp_path / "s", 800, seed=10)
     monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
     launched = []
     real = qcmon.monitor.split.SplitRun.launch
-    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", lambda self, *a: launched.append(real(self, *a)) or 1)
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
+                        lambda self, *a: launched.append(real(self, *a)) or launched[-1])
     for w in (1, 2):
         Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
-    assert launched == []
+    assert not any(launched)                               # 0: not yet, to the end
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
     info = json.loads((tmp_path / "o2" / "summary.json").read_text())["engine"]["streams"]["0,0"]
     assert info["registration_reference_frames"] > 400   # it did grow (updates at 60 … 480 of 800 frames)

@@ -397,8 +397,9 @@ class Monitor:
                 rows.extend(new)
                 if sp is not None and not sp.decided:
                     sp.note_rows(new)
-                    if sp.ready() and run.engine.references_settled() \
-                            and sp.launch(run.engine, source.position) == 1:
+                    sp.note_frame(fr.index)
+                    # once every reference is built: the workers start (0: not yet; 1: too short to split)
+                    if sp.ready() and sp.launch(run.engine, source.position) == 1:
                         run.split = None  # too short to split: one process, the engine's own values
         finally:
             frames.close()  # the file being read is closed now, not when the generator is collected

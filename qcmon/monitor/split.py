@@ -50,13 +50,16 @@ from qcmon.errors import FrameError
 from qcmon.frames import UNTIMED_FRAMES_PER_S
 from qcmon.metrics.brightness import BrightnessTracker
 
-__all__ = ["WARM_UP", "MIN_CHUNK", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
+__all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
            "RowContinuity", "SplitRun"]
 
 #: Time points measured before a chunk, rows dropped (fills the running means; see the module notes).
 WARM_UP = 300
 #: Fewest time points per process for a split to be worth starting a process (one to a few seconds of work).
 MIN_CHUNK = 1500
+#: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`, its reading included) costs a worker,
+#: as a fraction of measuring it in full: 0.57-0.61 at 256²-512² (bench/bench_split.py); it balances the chunks.
+FAST_COST = 0.6
 
 
 def plan_chunks(n_points: int, workers: int, *, warm_up: int = WARM_UP, min_chunk: int = MIN_CHUNK
@@ -116,12 +119,18 @@ class ChunkJob:
     warm_from: int             # first time point fed to the engine
     first: int                 # first time point whose rows are kept
     stop: int | None           # first time point not measured (None: to the end of the session)
-    engine: bytes              # the monitor's engine, pickled once the reference of every stream is final
+    engine: bytes              # the monitor's engine, pickled once the reference of every stream is built
     range_log: list | None = None  # detector level changes after the copy, to apply at their frames (a re-run)
+    fast_from: int | None = None  # the copy's references still grow: register from this time point on
+                                  # (Engine.register_only) until they are final, then skip to the warm-up
+    warm_up: int = WARM_UP        # time points measured before the chunk, rows dropped (with fast_from)
 
 
 def measure_chunk(job: ChunkJob) -> dict:
-    """Measure one chunk in this process. Returns ``rows`` and ``problems`` (messages)."""
+    """Measure one chunk in this process. Returns ``rows`` and ``problems`` (messages), the events, the detector
+    level changes, ``digest_first`` (:meth:`~qcmon.engine.Engine.split_digest` before the chunk's first frame) and,
+    for a chunk that another follows, ``digest_end`` and ``end_engine`` (the engine after its last frame, pickled:
+    the next chunk can be measured again from it exactly)."""
     from threadpoolctl import threadpool_limits
 
     from qcmon.monitor._memory import keep_freed_memory
@@ -131,32 +140,77 @@ def measure_chunk(job: ChunkJob) -> dict:
     problems: list[str] = []
     engine = pickle.loads(job.engine)
     token = {**job.token, "pages": 0, "files": {}, "given_up": []}
-    src = SessionSource(job.path, **job.source_kwargs, start=token,
-                        skip_frames=job.warm_from * job.frames_per_point,
-                        on_problem=lambda err: problems.append(str(err)))
+
+    def frames_from(point: int):
+        src = SessionSource(job.path, **job.source_kwargs, start=token, skip_frames=point * job.frames_per_point,
+                            on_problem=lambda err: problems.append(str(err)))
+        return src.frames(final=True)  # each frame read as it is measured (see SessionSource.frames)
+
     rows: list[dict] = []
     carry = sorted(job.range_log or [], key=lambda e: e[0])
     own = len(engine.range_log)  # the log's entries from here on are this worker's own findings
+    fast = job.fast_from is not None  # registering only, until every reference is final
+    point = -1                        # time point of the last frame registered only
+    digest_first = None
     with threadpool_limits(limits=1, user_api="blas"):
-        frames = src.frames(final=True)  # each frame read as it is measured (see SessionSource.frames)
-        for fr in frames:
-            if job.stop is not None and fr.index >= job.stop:
-                break
-            while carry and carry[0][0] <= fr.index:  # levels the earlier chunks found, from their frame on
-                _, key, state = carry.pop(0)
-                engine.carry_range({key: state})
-            try:
-                rows.extend(engine.process(fr))
-            except FrameError as err:
-                problems.append(str(err))
-        frames.close()
+        frames = frames_from(job.fast_from if fast else job.warm_from)
+        try:
+            while True:
+                restart = None
+                for fr in frames:
+                    if job.stop is not None and fr.index >= job.stop:
+                        break
+                    if fast and fr.index != point and engine.references_settled():
+                        # final after a whole time point: on to the warm-up (its frames read, not decoded, before)
+                        fast = False
+                        try:
+                            start = warm_start(job.first, measured=fr.index, z_every=engine.settings.z_every,
+                                               warm_up=job.warm_up)
+                        except ValueError:
+                            raise RuntimeError(f"the registration reference was final only at time point "
+                                               f"{fr.index}, too late for a warm-up before {job.first}") from None
+                        if start > fr.index:
+                            restart = start
+                            break
+                    if fast and fr.index >= job.first - job.warm_up:
+                        raise RuntimeError(f"the registration reference was still growing at time point {fr.index}, "
+                                           f"too late for a warm-up before {job.first}")
+                    while carry and carry[0][0] <= fr.index:  # levels the earlier chunks found, from their frame on
+                        _, key, state = carry.pop(0)
+                        engine.carry_range({key: state})
+                    if fast:
+                        point = fr.index
+                        try:
+                            if engine.register_only(fr):
+                                continue
+                        except FrameError:
+                            continue  # the process that measures this frame reports it
+                        fast = False  # a frame register_only cannot take: measured in full from here on
+                    if fr.index >= job.first and digest_first is None:
+                        digest_first = engine.split_digest()
+                    try:
+                        rows.extend(engine.process(fr))
+                    except FrameError as err:
+                        problems.append(str(err))
+                if restart is None:
+                    break
+                frames.close()
+                frames = frames_from(restart)
+        finally:
+            frames.close()
+        if digest_first is None:
+            digest_first = engine.split_digest()
         if job.stop is None:
             rows.extend(engine.flush())
         problems.extend(engine.take_problems())  # the warm-up's are the previous chunk's too: reported once
     keep = [r for r in rows if r["frame"] >= job.first and (job.stop is None or r["frame"] < job.stop)]
     events = [e for e in engine.take_events() if e.frame >= job.first and (job.stop is None or e.frame < job.stop)]
-    return {"rows": keep, "problems": problems, "events": events, "range_log": engine.range_log[own:],
-            "range_end": engine.range_state()}
+    out = {"rows": keep, "problems": problems, "events": events, "range_log": engine.range_log[own:],
+           "range_end": engine.range_state(), "digest_first": digest_first}
+    if job.stop is not None:
+        out["digest_end"] = engine.split_digest()
+        out["end_engine"] = pickle.dumps(engine, protocol=pickle.HIGHEST_PROTOCOL)
+    return out
 
 
 class RowContinuity:
@@ -237,6 +291,9 @@ class SplitRun:
     _jobs: list[ChunkJob] = field(default_factory=list)
     _engine: object = None                           # the monitor's engine (it measures the first chunk)
     _log_at_launch: int = 0                          # its detector level changes before the copy
+    _point: int = -1                                 # time point of the last frame measured (note_frame)
+    _in_point: int = 0                               # frames of it measured
+    _n_points: int | None = None                     # time points of the session
     decided: bool = False
 
     @property
@@ -252,28 +309,57 @@ class SplitRun:
         for r in rows:
             self.started.add((int(r["channel"]), int(r["plane"])))
 
+    def note_frame(self, index: int) -> None:
+        """A frame of time point ``index`` went through the engine (in acquisition order)."""
+        if index != self._point:
+            self._point, self._in_point = index, 0
+        self._in_point += 1
+
     def ready(self) -> bool:
         """The engine has built every stream's reference: time to decide on the split."""
         return not self.decided and len(self.started) >= self.frames_per_point
 
     def launch(self, engine, token: dict) -> int:
-        """Plan the chunks and start the workers; returns how many processes measure (1: no split)."""
-        self.decided = True
+        """Plan the chunks and start the workers; returns how many processes measure (1: no split; 0: not yet).
+
+        Once every reference is built but some still grow (:mod:`qcmon.metrics.reference_growth`), and the
+        engine has just measured a whole time point, the workers start at once: each takes a copy of the engine,
+        registers the frames up to where the references are final (:meth:`~qcmon.engine.Engine.register_only`,
+        :data:`FAST_COST` of a frame's whole cost), then skips to its warm-up; the first chunk is longer by that
+        work. Where that does not fit before the second chunk (0), the workers start once the references are
+        final, with the engine as it is then."""
         s = engine.settings
+        early = not engine.references_settled()
+        if early and (self._in_point != self.frames_per_point or not engine.can_register_only()):
+            return 0  # not at the end of a time point, or a copy cannot register only: wait for the final ones
         measured = engine.frames_measured  # the workers start later by this much: the first chunk is longer
-        n_points = count_frames(self.path, self.source_kwargs) // self.frames_per_point
-        chunks = plan_chunks(n_points, self.workers, warm_up=self.warm_up + measured, min_chunk=self.min_chunk)
-        if len(chunks) < 2 or chunks[1][0] - self.warm_up - s.z_every < max(measured, 2 * s.reference_frames) \
+        if self._n_points is None:  # a finished session: counted once
+            self._n_points = count_frames(self.path, self.source_kwargs) // self.frames_per_point
+        n_points = self._n_points
+        if early:
+            here = self._point + 1                                   # the copy continues from this time point
+            final = here + engine.frames_to_final()                  # every reference final (no bad frame)
+            extra = self.warm_up + here + int(math.ceil(FAST_COST * (final - here)))
+        else:
+            here = final = measured
+            extra = self.warm_up + measured
+        chunks = plan_chunks(n_points, self.workers, warm_up=extra, min_chunk=self.min_chunk)
+        if len(chunks) < 2 or chunks[1][0] - self.warm_up - s.z_every < max(final, 2 * s.reference_frames) \
                 or min(b - a for a, b in chunks[1:]) < self.min_chunk // 2:
+            if early:
+                return 0  # perhaps once the references are final (the plan is then without their growth)
+            self.decided = True
             return 1
+        self.decided = True
         blob = pickle.dumps(engine, protocol=pickle.HIGHEST_PROTOCOL)
         jobs = []
         for i, (a, b) in enumerate(chunks[1:], start=1):
             jobs.append(ChunkJob(path=self.path, source_kwargs=self.source_kwargs, token=token,
                                  frames_per_point=self.frames_per_point,
-                                 warm_from=warm_start(a, measured=measured, z_every=s.z_every,
-                                                      warm_up=self.warm_up),
-                                 first=a, stop=None if i == len(chunks) - 1 else b, engine=blob))
+                                 warm_from=here if early else warm_start(a, measured=measured, z_every=s.z_every,
+                                                                         warm_up=self.warm_up),
+                                 first=a, stop=None if i == len(chunks) - 1 else b, engine=blob,
+                                 fast_from=here if early else None, warm_up=self.warm_up))
         self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=multiprocessing.get_context("spawn"))
         self._jobs = jobs
         self._engine, self._log_at_launch = engine, len(engine.range_log)
@@ -284,28 +370,50 @@ class SplitRun:
     def results(self):
         """Each chunk's result, in chunk order (blocks). A chunk whose worker failed (e.g. the process was
         killed) is measured again in this process, with a problem message saying so: no row is lost. So is a
-        chunk whose worker did not have the detector levels the chunks before it found (see the module notes)."""
+        chunk whose worker did not have the detector levels the chunks before it found, and a chunk whose worker
+        started before the references were final and did not reach, at its first frame, the state one process has
+        there (:meth:`~qcmon.engine.Engine.split_digest`: a brightness step or a dark level found in the frames it
+        only registered, a level found in the frames it skipped): that one is measured again from the engine of
+        the chunk before it, as it was after that chunk's last frame — one process's state (see the module
+        notes)."""
         # the level changes after the copy, as one process makes them: the first chunk's (the monitor's engine has
         # measured it by now), then each accepted chunk's own
         log = [e for e in self._engine.range_log[self._log_at_launch:] if self.stop is None or e[0] < self.stop]
         end_state = None
+        # one process's state before the next chunk: the monitor's engine after the first chunk, then each chunk's
+        prev_digest = self._engine.split_digest()
+        prev_engine = None  # pickled; None: the monitor's engine (pickled only if needed)
+
+        def again(job: ChunkJob) -> dict:
+            blob = prev_engine if prev_engine is not None else pickle.dumps(self._engine,
+                                                                            protocol=pickle.HIGHEST_PROTOCOL)
+            return measure_chunk(dataclasses.replace(job, engine=blob, warm_from=job.first, fast_from=None,
+                                                     range_log=None))
+
         try:
             for job, fut in zip(self._jobs, self._futures):
                 try:
                     res = fut.result()
                 except Exception as err:  # noqa: BLE001 - a broken pool raises several types
-                    res = measure_chunk(job)
+                    res = again(job) if job.fast_from is not None else measure_chunk(job)
                     res["problems"].insert(0, f"worker for time points {job.first}-"
                                               f"{'end' if job.stop is None else job.stop - 1} failed ({err!r}); "
                                               "measured again in the main process")
-                before = [e for e in log if e[0] < job.first]
-                if before != [e for e in res.get("range_log", []) if e[0] < job.first]:
-                    # the worker's levels at its chunk are not those of one process: measure it again with them
-                    problems = res["problems"]
-                    res = measure_chunk(dataclasses.replace(job, range_log=before))
-                    res["problems"] = problems
+                if job.fast_from is not None:
+                    if res.get("digest_first") != prev_digest:
+                        problems = res["problems"]
+                        res = again(job)
+                        res["problems"] = problems
+                else:
+                    before = [e for e in log if e[0] < job.first]
+                    if before != [e for e in res.get("range_log", []) if e[0] < job.first]:
+                        # the worker's levels at its chunk are not those of one process: measure it again with them
+                        problems = res["problems"]
+                        res = measure_chunk(dataclasses.replace(job, range_log=before))
+                        res["problems"] = problems
                 log += [e for e in res.get("range_log", []) if e[0] >= job.first]
                 end_state = res.get("range_end", end_state)
+                prev_digest, prev_engine = res.pop("digest_end", None), res.pop("end_engine", None)
                 yield res
             if end_state is not None:
                 self._engine.carry_range(end_state)  # the summary's levels are the session's last
