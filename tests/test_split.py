@@ -250,3 +250,109 @@ def test_a_reference_still_growing_where_the_first_chunk_would_end_keeps_one_pro
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
     info = json.loads((tmp_path / "o2" / "summary.json").read_text())["engine"]["streams"]["0,0"]
     assert info["registration_reference_frames"] > 400   # it did grow (updates at 60 … 480 of 800 frames)
+
+
+# ------------------------------------------------- workers that start while the registration reference grows
+
+def _real_session(folder: Path, n: int, *, seed: int, gain_at=None):
+    """A real specimen (tests/outside_data.py: the nuclei image, moving by up to ±1.5 px, nuclei with calcium-like
+    transients) through the EMVA 1288 camera model (2.5 DN/photon, offset 100 DN, 6 DN read noise, 12 bits in
+    16-bit pages), written as files of 100 frames. ``gain_at=(frame, gain)``: the gain changes there (a step)."""
+    import tifffile
+    from outside_data import detect, living_specimen, nuclei_2d
+
+    rng = np.random.default_rng(seed)
+    folder.mkdir(parents=True)
+    frames = []
+    scale = 3.0 / float(nuclei_2d().mean())  # about 3 photons/px in the specimen, 1 more of background
+    for i, lam in enumerate(living_specimen((64, 64), n, rng, photons_scale=scale, background=1.0,
+                                            motion_px=1.5, rate_hz=0.05)):
+        gain = gain_at[1] if gain_at is not None and i >= gain_at[0] else 2.5
+        frames.append(detect(lam, rng, gain=gain, offset=100.0, read_noise_dn=6.0, bits=12))
+    stack = np.stack(frames)
+    for i in range(0, n, 100):
+        tifffile.imwrite(folder / f"part_{i // 100:02d}.tif", stack[i:i + 100])
+    return folder
+
+
+def _measure_split(folder: Path, out: Path, workers: int, monkeypatch, **options) -> dict:
+    """Measure with ``workers`` processes; what the split did (early launch, chunks measured again)."""
+    seen = {"launch": [], "again": []}
+    real_launch, real_close = qcmon.monitor.split.SplitRun.launch, qcmon.monitor.split.SplitRun.close
+
+    def launch(self, *a):
+        n = real_launch(self, *a)
+        seen["launch"].append((n, [j.fast_from for j in self._jobs]))
+        return n
+
+    def close(self):
+        seen["again"] = list(self.measured_again)
+        real_close(self)
+
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch", launch)
+    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "close", close)
+    Monitor(MonitorOptions(path=folder, out_dir=out, follow=False, workers=workers, frame_rate_hz=30.0,
+                           **options)).run()
+    monkeypatch.undo()
+    return seen
+
+
+def _events(out: Path):
+    evs = [json.loads(ln) for ln in (out / "events.jsonl").read_text().splitlines() if ln.strip()]
+    return [{k: v for k, v in e.items() if k != "wall_time"} for e in evs]  # the clock differs, rightly
+
+
+def test_workers_that_start_while_the_reference_grows_give_one_process_rows(tmp_path, monkeypatch):
+    # The reference grows to frame 240 here; the workers start at the first reference (frame ~31), register up to
+    # frame 240 with Engine.register_only, then warm up and measure. Outside data; the reference is one process.
+    folder = _real_session(tmp_path / "s", 1200, seed=11)
+    growth = (60, 120, 240)
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", growth)
+    monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+    outs = {w: tmp_path / f"out{w}" for w in (1, 2, 3)}
+    seen = {}
+    for w in (1, 2, 3):
+        with monkeypatch.context() as m:
+            m.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", growth)
+            m.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+            seen[w] = _measure_split(folder, outs[w], w, m)
+    for w in (2, 3):
+        launched = [(n, fast) for n, fast in seen[w]["launch"] if n]
+        assert len(launched) == 1 and launched[0][0] == w, seen[w]
+        assert all(f is not None and f < growth[-1] for f in launched[0][1])  # started before the final reference
+        assert seen[w]["again"] == []          # each worker reached one process's state by itself
+    one = _traces(outs[1])
+    info = json.loads((outs[1] / "summary.json").read_text())["engine"]["streams"]["0,0"]
+    assert info["registration_reference_frames"] > 120                    # the reference did grow
+    assert len({r["dx_px"] for r in one}) > 100                           # the shifts vary: the check can fail
+    for w in (2, 3):
+        rows = _traces(outs[w])
+        assert [r["frame"] for r in rows] == [str(i) for i in range(1200)]
+        for a, b in zip(one, rows):
+            assert a == b, (w, a["frame"])
+        assert _events(outs[w]) == _events(outs[1])
+
+
+def test_a_brightness_step_while_a_worker_only_registers_is_measured_again_exactly(tmp_path, monkeypatch):
+    # The gain triples at frame 400, inside the frames the worker only registers: one process blanks photons per
+    # pixel and refits the gain there (dark level given: photons are counted); the worker's engine never saw the
+    # step. Its state at its first frame is not one process's (Engine.split_digest), so its chunk is measured again
+    # from the first chunk's engine. Without that, its photons per pixel would stay blank.
+    folder = _real_session(tmp_path / "s", 1500, seed=12, gain_at=(400, 7.5))
+    outs = {w: tmp_path / f"out{w}" for w in (1, 2)}
+    seen = {}
+    for w in (1, 2):
+        with monkeypatch.context() as m:
+            m.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", (60, 120, 240, 480))
+            m.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+            seen[w] = _measure_split(folder, outs[w], w, m, dark_level=100.0)
+    launched = [(n, fast) for n, fast in seen[2]["launch"] if n]
+    assert launched and launched[0][0] == 2 and launched[0][1][0] is not None
+    one, two = _traces(outs[1]), _traces(outs[2])
+    assert any(r["level_step"] not in ("", "nan") for r in one[400:500])   # one process saw the step
+    # and counts photons from the gain it fitted after it (blank before: the copy the worker took has no gain)
+    assert one[300]["photons_per_px"] == "" and float(one[-1]["photons_per_px"]) > 0
+    assert len(seen[2]["again"]) == 1
+    assert [r["frame"] for r in two] == [str(i) for i in range(1500)]
+    for a, b in zip(one, two):
+        assert a == b, a["frame"]

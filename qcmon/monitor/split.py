@@ -294,6 +294,8 @@ class SplitRun:
     _point: int = -1                                 # time point of the last frame measured (note_frame)
     _in_point: int = 0                               # frames of it measured
     _n_points: int | None = None                     # time points of the session
+    measured_again: list = field(default_factory=list)  # first time points of chunks measured again from the
+                                                         # previous chunk's engine (their worker's state differed)
     decided: bool = False
 
     @property
@@ -404,6 +406,7 @@ class SplitRun:
                         problems = res["problems"]
                         res = again(job)
                         res["problems"] = problems
+                        self.measured_again.append(job.first)
                 else:
                     before = [e for e in log if e[0] < job.first]
                     if before != [e for e in res.get("range_log", []) if e[0] < job.first]:
