@@ -36,7 +36,7 @@ from qcmon.metrics.noise import immerkaer_sigma
 from qcmon.metrics.photon_transfer import PhotonTransfer, estimate_dark_level, is_structureless
 from qcmon.metrics import reference_growth
 from qcmon.metrics.reference_growth import ReferenceGrowth
-from qcmon.metrics.registration import ShiftEstimator, build_reference
+from qcmon.metrics.registration import ShiftEstimator, ShiftResult, build_reference
 from qcmon.metrics.saturation import RangeFinder
 from qcmon.metrics.zoffset import RunningMean, ZEstimator
 
@@ -220,6 +220,8 @@ class Engine:
         #: messages about frames that were measured but left partly blank (e.g. moved beyond the searched range);
         #: the caller reports and clears them (:meth:`take_problems`)
         self.problems: list[str] = []
+        # registrations measured ahead by a copy of this engine (give_registrations), by (frame, channel, plane)
+        self._given: dict[tuple[int, int, int], tuple] = {}
 
     # ------------------------------------------------------------------ public
     @property
@@ -948,7 +950,11 @@ class Engine:
                     self._remember_motion(frame.index, frame.plane, res)
             elif motion is None:
                 finite = img.dtype.kind in "ui" or bool(np.isfinite(binned).all())
-                if finite:
+                given = self._given.pop((frame.index, frame.channel, frame.plane), None) if self._given else None
+                if given is not None and given[4] == _growth_state(st):
+                    # measured by a copy of this engine in the same state (register_only): the same numbers
+                    res, st.shift.out_of_range = ShiftResult(*given[:3]), given[3]
+                elif finite:
                     res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
                 else:  # non-finite pixels: the estimator replaces them (and warns) before binning
                     res = st.shift.estimate(img, valid=valid)
@@ -1108,16 +1114,17 @@ class Engine:
         return max((max(0, last - st.grow.seen) for st in self._streams.values()
                     if st.grow is not None and not st.grow.settled), default=0)
 
-    def register_only(self, frame: Frame) -> bool:
+    def register_only(self, frame: Frame) -> tuple | None:
         """Advance the registration of ``frame``'s stream as :meth:`process` would, and nothing else: no row.
 
         For a copy of this engine that must reach the final registration reference of a later part of the session
         without measuring every frame before it (:mod:`qcmon.monitor.split`): the frame is checked, its extremes go
         to the detector's range finder, it is binned and registered against the current reference, offered to the
         reference's growth and counted, exactly as in :meth:`_measure`; photometry, noise, the running means and
-        photon transfer are left alone. Returns False, with nothing changed, when the frame cannot be handled so
-        (a stream without a reference yet, a reference requested anew, a changed frame size, motion taken from
-        another channel, a z-stack whose estimates decide which frames join): :meth:`process` it then. Raises
+        photon transfer are left alone. Returns the registration, for :meth:`give_registrations` of an engine in
+        the same state; None, with nothing changed, when the frame cannot be handled so (a stream without a
+        reference yet, a reference requested anew, a changed frame size, motion taken from another channel, a
+        z-stack whose estimates decide which frames join): :meth:`process` it then. Raises
         :class:`~qcmon.errors.FrameError` for a bad frame, as :meth:`process` does.
         """
         s = self.settings
@@ -1126,7 +1133,7 @@ class Engine:
         if s.zstack is not None or s.motion_channel is not None or st is None or st.shift is None \
                 or st.new_reference_requested or st.pending or st.range is None \
                 or not isinstance(data, np.ndarray) or data.shape != st.shape or data.dtype != st.dtype:
-            return False
+            return None
         self._check(st, frame)  # the same size and type: only its checks of the pixels' type
         img = data if data.dtype.kind in "ui" and data.dtype.itemsize <= 2 else data.astype(np.float32, copy=False)
         factor = st.shift.bin_factor
@@ -1142,7 +1149,8 @@ class Engine:
             self._end_blank(st)
         else:
             self._note_blank(st, frame, "constant frames, or more than half of the pixels at a detector limit")
-        dy = dx = NAN
+        dy = dx = corr = NAN
+        before = _growth_state(st)
         if structured:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)
@@ -1156,20 +1164,31 @@ class Engine:
                     res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
                 else:
                     res = st.shift.estimate(img, valid=valid)
-                dy, dx = res.dy_px, res.dx_px
+                dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if st.grow is not None and valid is None and finite and not st.shift.out_of_range:
-                    st.grow.offer(binned, dy, dx, res.corr)
+                    st.grow.offer(binned, dy, dx, corr)
         st.prev, st.prev_shift = img, ((int(round(dy)), int(round(dx))) if math.isfinite(dx) and math.isfinite(dy)
                                        else (0, 0))
         st.prev2 = None  # photon transfer's triples start again with the frames measured in full
         st.n_measured += 1
+        out = (dy, dx, corr, bool(structured and st.shift.out_of_range), before)
         if st.grow is not None:
             new = st.grow.tick()
             if new is not None:
                 st.shift = new
             if st.grow.settled:
                 st.grow.notes.clear()  # the engine that measures these frames in full reports them
-        return True
+        return out
+
+    def give_registrations(self, items) -> None:
+        """Registrations of frames still to come, from :meth:`register_only` of a copy of this engine:
+        ``(frame, channel, plane, registration)``. Each is used instead of registering the frame if this engine's
+        reference growth is where the copy's was (else the frame is registered here); None forgets them all."""
+        if items is None:
+            self._given.clear()
+            return
+        for index, channel, plane, reg in items:
+            self._given[(index, channel, plane)] = reg
 
     def split_digest(self) -> dict:
         """The state a later part of the session's rows depend on beyond the last few hundred frames, per stream
@@ -1214,6 +1233,11 @@ _STARTUP_SAMPLES = 1 << 17
 #: the gain, at a bounded cost (every 4th row at 256², 7th at 512², 8th at 1024²; bench_photometry).
 _TRIPLE_ROW_STEP = 4
 _TRIPLE_SAMPLES = 1 << 15
+
+
+def _growth_state(st: _Stream) -> tuple[int, int] | None:
+    """Where the stream's reference growth is: frames counted and joined (None without a growth)."""
+    return None if st.grow is None else (st.grow.seen, st.grow.joined)
 
 
 def _startup_row_step(shape: tuple[int, ...], row_step: int, samples: int = _STARTUP_SAMPLES) -> int:

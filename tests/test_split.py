@@ -356,3 +356,55 @@ def test_a_brightness_step_while_a_worker_only_registers_is_measured_again_exact
     assert [r["frame"] for r in two] == [str(i) for i in range(1500)]
     for a, b in zip(one, two):
         assert a == b, a["frame"]
+
+
+def _rows_equal(a: list[dict], b: list[dict]) -> bool:
+    def norm(r):
+        return {k: ("nan" if isinstance(v, float) and v != v else v) for k, v in r.items()}
+    return [norm(r) for r in a] == [norm(r) for r in b]
+
+
+def test_registering_only_reaches_one_engines_reference_and_its_registrations_give_the_same_rows(monkeypatch):
+    # Outside data: the real specimen moving by up to ±1.5 px through the EMVA 1288 model. Engine A measures every
+    # frame; B, a copy taken at the first reference, only registers (Engine.register_only); C, another copy, measures
+    # every frame with B's registrations given. The reference growth (to frame 240 here) must end the same in all
+    # three, and C's rows must be A's, although C registered none of those frames itself.
+    import pickle
+
+    from outside_data import detect, living_specimen, nuclei_2d
+
+    import qcmon.metrics.registration as registration
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+
+    rng = np.random.default_rng(13)
+    scale = 3.0 / float(nuclei_2d().mean())
+    data = [detect(lam, rng, gain=2.5, offset=100.0, read_noise_dn=6.0, bits=12)
+            for lam in living_specimen((64, 64), 320, rng, photons_scale=scale, background=1.0, motion_px=1.5)]
+    settings = EngineSettings(frame_rate_hz=30.0, reference_updates=(60, 120, 240))
+    a = Engine(settings)
+    rows_a, copy, at = [], None, 0
+    for i, d in enumerate(data):
+        rows_a.extend(a.process(Frame(d, i)))
+        if copy is None and rows_a:
+            copy, at = pickle.dumps(a), i + 1
+    b, c = pickle.loads(copy), pickle.loads(copy)
+    regs = [(i, 0, 0, b.register_only(Frame(data[i], i))) for i in range(at, len(data))]
+    assert all(r[3] is not None for r in regs)
+    assert b.references_settled() and a.references_settled()
+    assert b.split_digest() == a.split_digest()
+    calls = []
+    real = registration.ShiftEstimator.estimate_binned
+    monkeypatch.setattr(registration.ShiftEstimator, "estimate_binned",
+                        lambda self, *x, **k: calls.append(1) or real(self, *x, **k))
+    c.give_registrations(regs)
+    rows_c = [r for i in range(at, len(data)) for r in c.process(Frame(data[i], i))]
+    assert _rows_equal(rows_c, rows_a[-len(rows_c):]) and len(rows_c) == len(data) - at
+    assert len(calls) < 10  # only the zero checks of the reference updates: no frame was registered here
+    assert c.split_digest() == a.split_digest()
+    # a registration made in another state of the growth is not used: the frame is registered here
+    d = pickle.loads(copy)
+    d.give_registrations([(i, ch, p, reg[:4] + ((0, 0),)) for i, ch, p, reg in regs])
+    calls.clear()
+    rows_d = [r for i in range(at, len(data)) for r in d.process(Frame(data[i], i))]
+    assert _rows_equal(rows_d, rows_c) and len(calls) > len(data) - at - 10

@@ -387,6 +387,8 @@ class Monitor:
                 if sp is not None and sp.stop is not None and fr.index >= sp.stop:
                     sp.reading_done = True  # the rest is measured by the workers
                     break
+                if sp is not None and sp.launched:
+                    sp.feed(run.engine)  # registrations a worker measured ahead (while the reference grows)
                 try:
                     new = run.engine.process(fr)
                 except FrameError as err:

@@ -42,6 +42,7 @@ import dataclasses
 import math
 import multiprocessing
 import pickle
+import queue
 import warnings
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, field
@@ -50,16 +51,18 @@ from qcmon.errors import FrameError
 from qcmon.frames import UNTIMED_FRAMES_PER_S
 from qcmon.metrics.brightness import BrightnessTracker
 
-__all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
+__all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "FED_SAVING", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
            "RowContinuity", "SplitRun"]
 
 #: Time points measured before a chunk, rows dropped (fills the running means; see the module notes).
 WARM_UP = 300
 #: Fewest time points per process for a split to be worth starting a process (one to a few seconds of work).
 MIN_CHUNK = 1500
-#: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`, its reading included) costs a worker,
-#: as a fraction of measuring it in full: 0.57-0.61 at 256²-512² (bench/bench_split.py); it balances the chunks.
+#: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`) costs a worker, as a fraction of
+#: measuring it in full, and what the monitor saves on a frame whose registration a worker sent it (feed): 0.61 and
+#: 0.42 at 512², 0.61 and 0.40 at 256² (bench/bench_split.py --costs). They balance the chunks.
 FAST_COST = 0.6
+FED_SAVING = 0.4
 
 
 def plan_chunks(n_points: int, workers: int, *, warm_up: int = WARM_UP, min_chunk: int = MIN_CHUNK
@@ -124,6 +127,21 @@ class ChunkJob:
     fast_from: int | None = None  # the copy's references still grow: register from this time point on
                                   # (Engine.register_only) until they are final, then skip to the warm-up
     warm_up: int = WARM_UP        # time points measured before the chunk, rows dropped (with fast_from)
+    feed: bool = False            # send the registrations of fast_from on to the monitor (SplitRun.feed)
+
+
+#: Registrations a worker sends the monitor at once (SplitRun.feed).
+_FEED_BATCH = 8
+#: The queue to the monitor, in a worker process (set by :func:`_worker_init`).
+_FEED = None
+
+
+def _worker_init(feed) -> None:
+    """Set up a worker process: the queue its registrations go to (see :meth:`SplitRun.feed`)."""
+    global _FEED
+    _FEED = feed
+    if feed is not None:
+        feed.cancel_join_thread()  # what the monitor no longer reads is not worth waiting for at the end
 
 
 def measure_chunk(job: ChunkJob) -> dict:
@@ -150,6 +168,8 @@ def measure_chunk(job: ChunkJob) -> dict:
     carry = sorted(job.range_log or [], key=lambda e: e[0])
     own = len(engine.range_log)  # the log's entries from here on are this worker's own findings
     fast = job.fast_from is not None  # registering only, until every reference is final
+    feed = _FEED if job.feed else None  # where the registrations go (SplitRun.feed)
+    batch: list = []
     point = -1                        # time point of the last frame registered only
     digest_first = None
     with threadpool_limits(limits=1, user_api="blas"):
@@ -181,10 +201,16 @@ def measure_chunk(job: ChunkJob) -> dict:
                     if fast:
                         point = fr.index
                         try:
-                            if engine.register_only(fr):
-                                continue
+                            reg = engine.register_only(fr)
                         except FrameError:
                             continue  # the process that measures this frame reports it
+                        if reg is not None:
+                            if feed is not None:  # to the monitor, which measures these frames in full
+                                batch.append((fr.index, fr.channel, fr.plane, reg))
+                                if len(batch) >= _FEED_BATCH:
+                                    feed.put(batch)
+                                    batch = []
+                            continue
                         fast = False  # a frame register_only cannot take: measured in full from here on
                     if fr.index >= job.first and digest_first is None:
                         digest_first = engine.split_digest()
@@ -198,6 +224,8 @@ def measure_chunk(job: ChunkJob) -> dict:
                 frames = frames_from(restart)
         finally:
             frames.close()
+            if feed is not None and batch:
+                feed.put(batch)
         if digest_first is None:
             digest_first = engine.split_digest()
         if job.stop is None:
@@ -294,6 +322,8 @@ class SplitRun:
     _point: int = -1                                 # time point of the last frame measured (note_frame)
     _in_point: int = 0                               # frames of it measured
     _n_points: int | None = None                     # time points of the session
+    _feed_q: object = None                           # registrations from the first worker (feed)
+    _fed: bool = False                               # every reference final: no more of them
     measured_again: list = field(default_factory=list)  # first time points of chunks measured again from the
                                                          # previous chunk's engine (their worker's state differed)
     decided: bool = False
@@ -341,7 +371,9 @@ class SplitRun:
         if early:
             here = self._point + 1                                   # the copy continues from this time point
             final = here + engine.frames_to_final()                  # every reference final (no bad frame)
-            extra = self.warm_up + here + int(math.ceil(FAST_COST * (final - here)))
+            # each worker registers up to the final references; the monitor measures those frames with the first
+            # worker's registrations (feed): they cost it less
+            extra = self.warm_up + here + int(math.ceil((FAST_COST + FED_SAVING) * (final - here)))
         else:
             here = final = measured
             extra = self.warm_up + measured
@@ -362,12 +394,34 @@ class SplitRun:
                                                                          warm_up=self.warm_up),
                                  first=a, stop=None if i == len(chunks) - 1 else b, engine=blob,
                                  fast_from=here if early else None, warm_up=self.warm_up))
-        self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=multiprocessing.get_context("spawn"))
+        ctx = multiprocessing.get_context("spawn")
+        if early:  # the first worker sends its registrations of the frames before the final reference (feed)
+            self._feed_q = ctx.Queue()
+            jobs[0].feed = True
+        self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=ctx, initializer=_worker_init,
+                                         initargs=(self._feed_q,))
         self._jobs = jobs
         self._engine, self._log_at_launch = engine, len(engine.range_log)
         self._futures = [self._pool.submit(measure_chunk, j) for j in jobs]
         self.stop = chunks[0][1]
         return len(chunks)
+
+    def feed(self, engine) -> None:
+        """Before the monitor's engine measures a frame: hand it the registrations the first worker has sent so
+        far (frames the worker registered while its references grew, :meth:`Engine.register_only`), so that it
+        need not register them itself; once every reference is final, stop."""
+        if self._feed_q is None or self._fed:
+            return
+        if engine.references_settled():
+            engine.give_registrations(None)
+            self._fed = True
+            return
+        while True:
+            try:
+                batch = self._feed_q.get_nowait()
+            except queue.Empty:
+                return
+            engine.give_registrations(batch)
 
     def results(self):
         """Each chunk's result, in chunk order (blocks). A chunk whose worker failed (e.g. the process was
@@ -390,7 +444,7 @@ class SplitRun:
             blob = prev_engine if prev_engine is not None else pickle.dumps(self._engine,
                                                                             protocol=pickle.HIGHEST_PROTOCOL)
             return measure_chunk(dataclasses.replace(job, engine=blob, warm_from=job.first, fast_from=None,
-                                                     range_log=None))
+                                                     range_log=None, feed=False))
 
         try:
             for job, fut in zip(self._jobs, self._futures):
@@ -427,3 +481,6 @@ class SplitRun:
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
+        if self._feed_q is not None:
+            self._feed_q.close()
+            self._feed_q = None
