@@ -8,7 +8,12 @@ and the ratios of their medians over interleaved rounds: summarize / engine (tar
 (target ≥ 1.8 on two idle cores). Consecutive identical runs of summarize differ by up to 15 % on this
 machine; one run of each would say more about the moment than about qcmon.
 
-No assertions: speed is read, never asserted. Run: ``python bench/bench_split.py [--size PX] [--frames N]``.
+With ``--costs`` it prints instead what the split's plan rests on (qcmon.monitor.split FAST_COST, FED_SAVING), per
+frame of the growing reference's span, frames in memory, one core, best of interleaved rounds: measuring in full
+(``Engine.process``), registering only (``Engine.register_only``) and measuring in full with the registrations given
+(``Engine.give_registrations``), as ratios to the first.
+
+No assertions: speed is read, never asserted. Run: ``python bench/bench_split.py [--size PX] [--frames N] [--costs]``.
 """
 
 from __future__ import annotations
@@ -42,6 +47,47 @@ def engine_fps(frames: np.ndarray, n: int) -> float:
         return n / (time.perf_counter() - t0)
 
 
+def costs(frames: np.ndarray, rounds: int) -> None:
+    """Per frame: full, register only, full with registrations given (see the module notes)."""
+    import pickle
+
+    from qcmon.engine import Engine, EngineSettings
+    from qcmon.frames import Frame
+
+    n = 900
+    settings = EngineSettings(frame_rate_hz=30.0, bit_depth=12, reference_updates=(60, 120, 240, 480, 960))
+    with threadpool_limits(1):
+        eng = Engine(settings)
+        at = next(i + 1 for i in range(len(frames)) if eng.process(Frame(frames[i], i)))
+        blob = pickle.dumps(eng)
+        t: dict[str, list[float]] = {"full": [], "register": [], "given": []}
+        for _ in range(rounds):
+            full = pickle.loads(blob)
+            t0 = time.perf_counter()
+            for j in range(at, at + n):
+                full.process(Frame(frames[j % len(frames)], j))
+            t["full"].append(time.perf_counter() - t0)
+            reg = pickle.loads(blob)
+            regs = []
+            t0 = time.perf_counter()
+            for j in range(at, at + n):
+                regs.append((j, 0, 0, reg.register_only(Frame(frames[j % len(frames)], j))))
+            t["register"].append(time.perf_counter() - t0)
+            fed = pickle.loads(blob)
+            fed.give_registrations(regs)
+            t0 = time.perf_counter()
+            for j in range(at, at + n):
+                fed.process(Frame(frames[j % len(frames)], j))
+            t["given"].append(time.perf_counter() - t0)
+            if fed.split_digest() != full.split_digest():
+                raise SystemExit("the registrations given did not reproduce the engine's state")
+    f, r, g = (min(t[k]) / n * 1e3 for k in ("full", "register", "given"))
+    print(f"{frames.shape[1]}² uint16, frames {at}-{at + n - 1} while the reference grows, best of {rounds} rounds")
+    print(f"  measured in full                        {f:6.2f} ms/frame")
+    print(f"  registered only (a worker)              {r:6.2f} ms/frame  {r / f:5.2f}× (FAST_COST)")
+    print(f"  in full, registrations given (monitor)  {g:6.2f} ms/frame  {g / f:5.2f}× (1 - FED_SAVING)")
+
+
 def warm(path: Path) -> None:
     """Read the file once, so that it is in the page cache (some virtual machines page out idle file pages within
     seconds: warmed right before each timed run, the reads measure qcmon, not the disk)."""
@@ -64,8 +110,12 @@ def main() -> None:
     p.add_argument("--size", type=int, default=512)
     p.add_argument("--frames", type=int, default=4000)
     p.add_argument("--rounds", type=int, default=3, help="interleaved rounds of the three measurements")
+    p.add_argument("--costs", action="store_true", help="the per-frame costs the split's plan rests on")
     args = p.parse_args()
     distinct, _ = make_frames(args.size, 200)
+    if args.costs:
+        costs(distinct, args.rounds)
+        return
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "session" / "run.tif"
         path.parent.mkdir()

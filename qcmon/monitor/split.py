@@ -59,8 +59,8 @@ WARM_UP = 300
 #: Fewest time points per process for a split to be worth starting a process (one to a few seconds of work).
 MIN_CHUNK = 1500
 #: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`) costs a worker, as a fraction of
-#: measuring it in full, and what the monitor saves on a frame whose registration a worker sent it (feed): 0.61 and
-#: 0.42 at 512², 0.61 and 0.40 at 256² (bench/bench_split.py --costs). They balance the chunks.
+#: measuring it in full, and what the monitor saves on a frame whose registration a worker sent it (feed): 0.60 and
+#: 0.42 at 512², 0.60 and 0.51 at 256² (bench/bench_split.py --costs). They balance the chunks.
 FAST_COST = 0.6
 FED_SAVING = 0.4
 
