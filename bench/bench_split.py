@@ -4,8 +4,11 @@ Writes a multi-page TIFF session (cells on neuropil at 1.5 photons/px with plant
 ``bench_engine.make_frames`` cycled), then prints frames per second of:
 - the engine alone over the same frames held in memory (one core),
 - ``qcmon summarize PATH`` (reading, measuring, the record, summary and report) with ``--workers 1`` and ``2``,
-and the ratios of their medians over interleaved rounds: summarize / engine (target ≥ 0.8) and two / one process
-(target ≥ 1.8 on two idle cores). Consecutive identical runs of summarize differ by up to 15 % on this
+- two engine processes side by side, each over half the frames (the sum of their rates): what two processes of
+  this machine give at that moment (the ceiling of any split: on a virtual machine whose two cores are shared,
+  or busy with other work, it is well below 2),
+and the ratios of their medians over interleaved rounds: summarize / engine (target ≥ 0.8), two / one process
+(target ≥ 1.8 on two idle cores) and two engines / one. Consecutive identical runs of summarize differ by up to 15 % on this
 machine; one run of each would say more about the moment than about qcmon.
 
 With ``--costs`` it prints instead what the split's plan rests on (qcmon.monitor.split FAST_COST, FED_SAVING), per
@@ -88,6 +91,16 @@ def costs(frames: np.ndarray, rounds: int) -> None:
     print(f"  in full, registrations given (monitor)  {g:6.2f} ms/frame  {g / f:5.2f}× (1 - FED_SAVING)")
 
 
+def pair_fps(frames: np.ndarray, n: int) -> float:
+    """Two engine processes at once, each over ``n // 2`` frames: the sum of their rates."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(2, mp_context=multiprocessing.get_context("spawn")) as pool:
+        list(pool.map(engine_fps, [frames[:2], frames[:2]], [1, 1]))  # processes started and qcmon imported first
+        return sum(pool.map(engine_fps, [frames, frames], [n // 2, n // 2]))
+
+
 def warm(path: Path) -> None:
     """Read the file once, so that it is in the page cache (some virtual machines page out idle file pages within
     seconds: warmed right before each timed run, the reads measure qcmon, not the disk)."""
@@ -125,20 +138,24 @@ def main() -> None:
         # written to disk before anything is timed (the kernel's write-back would otherwise slow the first
         # measurement); summarize_fps warms the page cache before each run
         os.sync()
-        eng, one, two = [], [], []
-        for r in range(args.rounds):  # interleaved, so that a slow spell of the machine hits all three alike
+        eng, one, two, pair = [], [], [], []
+        for r in range(args.rounds):  # interleaved, so that a slow spell of the machine hits all alike
             eng.append(engine_fps(distinct, args.frames))
+            pair.append(pair_fps(distinct, args.frames))
             one.append(summarize_fps(path, Path(tmp) / f"out1_{r}", 1, args.frames))
             two.append(summarize_fps(path, Path(tmp) / f"out2_{r}", 2, args.frames))
-    e, o, t = (float(np.median(x)) for x in (eng, one, two))
+    e, o, t, q = (float(np.median(x)) for x in (eng, one, two, pair))
     spread = [b / a for a, b in zip(eng, one)]
     print(f"{args.size}² uint16, {args.frames} frames, {os.cpu_count()} cores, "
           f"median of {args.rounds} interleaved rounds")
     print(f"  engine alone (frames in memory, one core)   {e:8.1f} frames/s   (rounds: {_fmt(eng)})")
     print(f"  qcmon summarize --workers 1                 {o:8.1f} frames/s   {o / e:5.2f}× the engine "
           f"(rounds: {_fmt(one)}; per round {min(spread):.2f}–{max(spread):.2f}×)")
+    print(f"  two engines side by side (the ceiling)      {q:8.1f} frames/s   {q / e:5.2f}× one engine "
+          f"(rounds: {_fmt(pair)})")
     print(f"  qcmon summarize --workers 2                 {t:8.1f} frames/s   {t / o:5.2f}× one process "
-          f"(rounds: {_fmt(two)})")
+          f"(rounds: {_fmt(two)}; per round {min(b / a for a, b in zip(one, two)):.2f}–"
+          f"{max(b / a for a, b in zip(one, two)):.2f}×)")
 
 
 def _fmt(values) -> str:

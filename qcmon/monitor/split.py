@@ -1,21 +1,35 @@
 """Measuring one finished session on several processes: chunks of time points, the reference carried across.
 
 The monitor measures the first chunk itself. As soon as its engine has built the reference of every
-(channel, plane), the engine is copied (pickled) to worker processes, one per later chunk. Each worker opens the
-session on its own, passes over the frames before its chunk without decoding them
-(:class:`~qcmon.sources.SessionSource` ``skip_frames``), measures a warm-up of ``warm_up`` time points whose rows it
-drops, then its chunk. Rows come back in acquisition order and go through the same record, thresholds and
-summary as a single-process run.
+(channel, plane) and measured a whole time point, the engine is copied (pickled) to worker processes, one per later
+chunk. Each worker opens the session on its own. While the registration reference still grows
+(:mod:`qcmon.metrics.reference_growth`), it *registers only* the frames up to where every reference is final
+(:meth:`~qcmon.engine.Engine.register_only`: the frame's registration, the reference's growth and the detector's
+range finder, as one process does them; no row, about 0.6 of a frame's cost), and the first worker sends those
+registrations to the monitor (a queue; :meth:`SplitRun.feed`), which measures the same frames without registering
+them again (:meth:`~qcmon.engine.Engine.give_registrations`, about 0.6 of the cost). Then each worker passes over the
+frames before its warm-up without decoding them (:class:`~qcmon.sources.SessionSource` ``skip_frames``), measures a
+warm-up of ``warm_up`` time points whose rows it drops, then its chunk. The first chunk is longer by the work the
+workers do before their chunks. Rows come back in acquisition order and go through the same record, thresholds
+and summary as a single-process run. With a z-stack (its z estimates decide which frames join the reference) or a
+motion channel, or where the registering would not end before the second chunk's warm-up, the engine is copied
+only once every reference is final (the first chunk then runs alone until there).
 
 What is the same as in one process, and what is not:
 
 - Displacement, registration quality, photometry, saturation, noise, SNR and photons per pixel depend on the
   frame and on the reference only: identical. The registration reference grows from the measured frames until a
-  fixed count of frames (:mod:`qcmon.metrics.reference_growth`): the engine is copied only once every stream's
-  reference is final (:meth:`~qcmon.engine.Engine.references_settled`), so the workers measure against the very
-  reference one process has there. The first chunk is longer by the frames measured before the copy, so that
-  every process still has about the same work; a session whose reference is still growing where the first chunk
-  would end is measured in one process.
+  fixed count of frames (:mod:`qcmon.metrics.reference_growth`): a worker registers the same frames in the same
+  order as one process, so it measures against the very reference one process has there; the monitor takes a
+  worker's registration of a frame only where its own reference growth stands where the worker's stood (else it
+  registers the frame itself).
+- State one process carries longer than the warm-up — the registration reference, the detector's levels, the dark
+  levels, the gain and a refit pending after a brightness step (:meth:`~qcmon.engine.Engine.split_digest`) — is
+  compared at each chunk's first frame with one process's (the monitor's engine after the first chunk, each
+  worker's after its chunk). A chunk whose worker differs there (a brightness step or a dark level found in the
+  frames it only registered, a level found in the frames it skipped) is measured again in the monitor from the
+  engine of the chunk before it, as that engine was after its last frame: exactly one process's rows, at the cost
+  of that chunk's time.
 - Focus correlation, z and the line offset come from the running means of the last ``running_mean_frames`` frames,
   recomputed every ``z_every`` frames: the warm-up fills the running means with the same frames, summed in the same
   blocks, and keeps the same frames as recomputation points, so they are identical.
@@ -187,14 +201,12 @@ def measure_chunk(job: ChunkJob) -> dict:
                             start = warm_start(job.first, measured=fr.index, z_every=engine.settings.z_every,
                                                warm_up=job.warm_up)
                         except ValueError:
-                            raise RuntimeError(f"the registration reference was final only at time point "
-                                               f"{fr.index}, too late for a warm-up before {job.first}") from None
+                            return {"redo": True, "problems": []}  # final too late (bad frames on the way)
                         if start > fr.index:
                             restart = start
                             break
                     if fast and fr.index >= job.first - job.warm_up:
-                        raise RuntimeError(f"the registration reference was still growing at time point {fr.index}, "
-                                           f"too late for a warm-up before {job.first}")
+                        return {"redo": True, "problems": []}  # still growing: no room for the warm-up
                     while carry and carry[0][0] <= fr.index:  # levels the earlier chunks found, from their frame on
                         _, key, state = carry.pop(0)
                         engine.carry_range({key: state})
@@ -456,7 +468,7 @@ class SplitRun:
                                               f"{'end' if job.stop is None else job.stop - 1} failed ({err!r}); "
                                               "measured again in the main process")
                 if job.fast_from is not None:
-                    if res.get("digest_first") != prev_digest:
+                    if res.get("redo") or res.get("digest_first") != prev_digest:
                         problems = res["problems"]
                         res = again(job)
                         res["problems"] = problems
