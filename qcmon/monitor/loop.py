@@ -451,6 +451,7 @@ class Monitor:
                 source_kwargs=dict(channels=o.channels, planes=o.planes, raw_dtype=o.raw_dtype,
                                    raw_shape=o.raw_shape, frame_rate_hz=o.frame_rate_hz,
                                    pixel_size_um=o.pixel_size_um, dataset=o.dataset))
+            run.split.prepare()  # the worker processes start now, ready when the engine is copied
 
     def _collect_split(self, run: "_RunState", source: SessionSource, record, listeners) -> None:
         """The workers' rows, chunk after chunk, through the same record, thresholds and listeners."""

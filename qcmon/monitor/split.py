@@ -75,8 +75,8 @@ MIN_CHUNK = 1500
 #: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`) costs a worker, as a fraction of
 #: measuring it in full, and what the monitor saves on a frame whose registration a worker sent it (feed): 0.60 and
 #: 0.42 at 512², 0.60 and 0.51 at 256² (bench/bench_split.py --costs). They balance the chunks.
-FAST_COST = 0.6
-FED_SAVING = 0.4
+FAST_COST = 0.55
+FED_SAVING = 0.3
 
 
 def plan_chunks(n_points: int, workers: int, *, warm_up: int = WARM_UP, min_chunk: int = MIN_CHUNK
@@ -145,7 +145,7 @@ class ChunkJob:
 
 
 #: Registrations a worker sends the monitor at once (SplitRun.feed).
-_FEED_BATCH = 8
+_FEED_BATCH = 2
 #: The queue to the monitor, in a worker process (set by :func:`_worker_init`).
 _FEED = None
 
@@ -156,6 +156,13 @@ def _worker_init(feed) -> None:
     _FEED = feed
     if feed is not None:
         feed.cancel_join_thread()  # what the monitor no longer reads is not worth waiting for at the end
+
+
+def _load_qcmon() -> None:
+    """A worker process's first task: load what measuring a chunk needs (SplitRun.prepare)."""
+    import qcmon.engine  # noqa: F401
+    import qcmon.sources  # noqa: F401
+    from qcmon.monitor._memory import keep_freed_memory  # noqa: F401
 
 
 def measure_chunk(job: ChunkJob) -> dict:
@@ -395,6 +402,7 @@ class SplitRun:
             if early:
                 return 0  # perhaps once the references are final (the plan is then without their growth)
             self.decided = True
+            self.close()  # processes started by prepare
             return 1
         self.decided = True
         blob = pickle.dumps(engine, protocol=pickle.HIGHEST_PROTOCOL)
@@ -406,17 +414,35 @@ class SplitRun:
                                                                          warm_up=self.warm_up),
                                  first=a, stop=None if i == len(chunks) - 1 else b, engine=blob,
                                  fast_from=here if early else None, warm_up=self.warm_up))
-        ctx = multiprocessing.get_context("spawn")
+        if self._pool is None:
+            self._start_pool(len(jobs))
         if early:  # the first worker sends its registrations of the frames before the final reference (feed)
-            self._feed_q = ctx.Queue()
             jobs[0].feed = True
-        self._pool = ProcessPoolExecutor(max_workers=len(jobs), mp_context=ctx, initializer=_worker_init,
-                                         initargs=(self._feed_q,))
         self._jobs = jobs
         self._engine, self._log_at_launch = engine, len(engine.range_log)
         self._futures = [self._pool.submit(measure_chunk, j) for j in jobs]
         self.stop = chunks[0][1]
         return len(chunks)
+
+    def prepare(self) -> None:
+        """Start the worker processes now (the monitor's engine builds its first references meanwhile), if the
+        session is long enough to be split at all: started and with qcmon loaded when the engine is copied, the
+        first worker registers ahead of the monitor from the start (see :meth:`feed`)."""
+        if self._pool is not None or self.decided:
+            return
+        if self._n_points is None:
+            self._n_points = count_frames(self.path, self.source_kwargs) // self.frames_per_point
+        if len(plan_chunks(self._n_points, self.workers, warm_up=0, min_chunk=self.min_chunk)) < 2:
+            return
+        self._start_pool(self.workers - 1)
+        for _ in range(self.workers - 1):
+            self._pool.submit(_load_qcmon)
+
+    def _start_pool(self, n: int) -> None:
+        ctx = multiprocessing.get_context("spawn")
+        self._feed_q = ctx.Queue()
+        self._pool = ProcessPoolExecutor(max_workers=n, mp_context=ctx, initializer=_worker_init,
+                                         initargs=(self._feed_q,))
 
     def feed(self, engine) -> None:
         """Before the monitor's engine measures a frame: hand it the registrations the first worker has sent so
