@@ -146,7 +146,7 @@ def test_a_failed_worker_is_measured_again_and_nothing_is_lost(tmp_path, monkeyp
         def __init__(self, *a, **k):
             pass
 
-        def submit(self, fn, job):
+        def submit(self, fn, *args):
             from concurrent.futures import Future
 
             fut = Future()
