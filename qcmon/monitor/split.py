@@ -72,9 +72,11 @@ __all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "FED_SAVING", "ChunkJob", "plan_
 WARM_UP = 300
 #: Fewest time points per process for a split to be worth starting a process (one to a few seconds of work).
 MIN_CHUNK = 1500
-#: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`) costs a worker, as a fraction of
-#: measuring it in full, and what the monitor saves on a frame whose registration a worker sent it (feed): 0.60 and
-#: 0.42 at 512², 0.60 and 0.51 at 256² (bench/bench_split.py --costs). They balance the chunks.
+#: What registering a frame only (:meth:`qcmon.engine.Engine.register_only`) costs a worker, as a fraction of a
+#: frame measured in full by the monitor, and what the monitor saves on a frame whose registration a worker sent it
+#: (feed). The engine alone: 0.60 and 0.42 at 512², 0.60 and 0.51 at 256² (bench/bench_split.py --costs); in a
+#: whole run the monitor's frames also carry reading and the record, and it finds about 1,750 of 1,890
+#: registrations ready: 0.55 and 0.3 balanced 6,000- and 12,000-frame runs at 512² (docs/performance.md).
 FAST_COST = 0.55
 FED_SAVING = 0.3
 
