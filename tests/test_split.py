@@ -413,19 +413,19 @@ def test_registering_only_reaches_one_engines_reference_and_its_registrations_gi
 def test_workers_that_start_while_the_references_grow_with_channels_and_planes(tmp_path, monkeypatch):
     # four streams (2 channels × 2 planes), each with its own growing reference: the workers register every stream
     # up to where all are final, the monitor takes their registrations per stream; one process's rows
-    frames = _sim(tmp_path / "s", 1000, seed=14, channels=2, planes=2)
+    frames = _sim(tmp_path / "s", 800, seed=14, channels=2, planes=2)
     outs = {w: tmp_path / f"out{w}" for w in (1, 2)}
     seen = {}
     for w in (1, 2):
         with monkeypatch.context() as m:
             m.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", (60, 120, 240))
-            m.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
+            m.setattr(qcmon.monitor.split, "MIN_CHUNK", 250)
             seen[w] = _measure_split(frames, outs[w], w, m)
     launched = [(n, fast) for n, fast in seen[2]["launch"] if n]
     assert len(launched) == 1 and launched[0][0] == 2 and launched[0][1][0] is not None
     assert seen[2]["again"] == []
     one, two = _traces(outs[1]), _traces(outs[2])
-    assert len(one) == 4000 and len({r["dx_px"] for r in one}) > 100
+    assert len(one) == 3200 and len({r["dx_px"] for r in one}) > 100
     assert [(r["frame"], r["channel"], r["plane"]) for r in two] == [(r["frame"], r["channel"], r["plane"]) for r in one]
     for a, b in zip(one, two):
         assert a == b, (a["frame"], a["channel"], a["plane"])
