@@ -1205,10 +1205,11 @@ class Engine:
                     h.update(name.encode())
                     h.update(v.tobytes() if isinstance(v, np.ndarray) else repr(v).encode())
                 ref = h.hexdigest()
-            out[key] = repr((ref, st.shape, None if st.grow is None else (st.grow.frames, st.grow.joined, st.grow.settled),
-                        None if st.range is None else (st.range.ceiling, st.range.floor, st.range.clip_floor),
-                        st.dark_level, st.dark_origin, st.gain, st.refit_gain, st.photon_dark, st.photon_dark_origin,
-                        st.new_reference_requested, st.untimed))  # repr: NaN equals NaN
+            grow = None if st.grow is None else (st.grow.frames, st.grow.joined, st.grow.settled)
+            levels = None if st.range is None else (st.range.ceiling, st.range.floor, st.range.clip_floor)
+            out[key] = repr((ref, st.shape, grow, levels, st.dark_level, st.dark_origin, st.gain, st.refit_gain,
+                             st.photon_dark, st.photon_dark_origin, st.new_reference_requested,
+                             st.untimed))  # repr: NaN equals NaN
         return out
 
     @property

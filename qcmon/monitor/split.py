@@ -65,8 +65,8 @@ from qcmon.errors import FrameError
 from qcmon.frames import UNTIMED_FRAMES_PER_S
 from qcmon.metrics.brightness import BrightnessTracker
 
-__all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "FED_SAVING", "ChunkJob", "plan_chunks", "warm_start", "count_frames", "measure_chunk",
-           "RowContinuity", "SplitRun"]
+__all__ = ["WARM_UP", "MIN_CHUNK", "FAST_COST", "FED_SAVING", "ChunkJob", "plan_chunks", "warm_start", "count_frames",
+           "measure_chunk", "RowContinuity", "SplitRun"]
 
 #: Time points measured before a chunk, rows dropped (fills the running means; see the module notes).
 WARM_UP = 300
