@@ -307,8 +307,8 @@ class PhotonTransfer:
         rows = np.concatenate((centre - 1, centre, centre + 1))
         fa, fb, fc = (f[rows].astype(np.float32) for f in (a, b, c))
         k = centre.size
-        bad = ((fa >= self.max_value) | (fa <= self.floor) | (fb >= self.max_value) | (fb <= self.floor)
-               | (fc >= self.max_value) | (fc <= self.floor))
+        bad = ~((fa < self.max_value) & (fa > self.floor) & (fb < self.max_value) & (fb > self.floor)
+                & (fc < self.max_value) & (fc > self.floor))  # NaN pixels too, as in _samples
         s = fa + fb + fc
         mid = slice(k, 2 * k)
         delta = (fc[mid, 1:-1] - 2.0 * fb[mid, 1:-1] + fa[mid, 1:-1]).astype(np.float64).ravel()
@@ -389,7 +389,8 @@ class PhotonTransfer:
         fa = a[rows].astype(np.float32)
         fb = b[rows].astype(np.float32)
         k = centre.size
-        bad = (fa >= self.max_value) | (fa <= self.floor) | (fb >= self.max_value) | (fb <= self.floor)
+        # a limit, or no number at all (NaN in float frames: a comparison with NaN is never true)
+        bad = ~((fa < self.max_value) & (fa > self.floor) & (fb < self.max_value) & (fb > self.floor))
         d = fa - fb
         s = fa + fb
         h = d[k : 2 * k, 1:-1] - 0.5 * (d[:k, 1:-1] + d[2 * k :, 1:-1])
