@@ -12,11 +12,11 @@ from numpy.testing import assert_allclose
 from scipy import ndimage, stats
 from skimage.registration import phase_cross_correlation
 
-from outside_data import detect, nuclei_2d, specimen_crop
+from outside_data import detect, nuclei_2d, specimen_area, specimen_crop
 from qcmon.engine import Engine, EngineSettings
 from qcmon.frames import Frame
 from qcmon.metrics.registration import ShiftEstimator
-from qcmon.metrics.shift_bound import shift_crb, spectral_gradient
+from qcmon.metrics.shift_bound import area_shift_crb, shift_crb, spectral_gradient
 
 
 def _gaussian_spot(shape, centre, sigma):
@@ -86,6 +86,63 @@ def test_bound_over_the_usable_pixels():
     assert_allclose(sy_h ** -2 + sy_o ** -2, sy ** -2, rtol=1e-3)
     with pytest.raises(ValueError, match="valid"):
         shift_crb(img, 5.0, valid=np.ones((3, 3), bool))
+
+
+def _spots(rng, n, sigma, size, margin):
+    """f(dy, dx): a scene of Gaussian spots (closed form) moved by (dy, dx) scene px, sampled at whole scene px."""
+    ys, xs = rng.uniform(margin, size - margin, (2, n))
+    amps = rng.uniform(0.5, 2.0, n)
+    y, x = np.mgrid[0:size, 0:size].astype(np.float64)
+
+    def f(dy, dx):
+        out = np.full((size, size), 0.2)
+        for a, yc, xc in zip(amps, ys, xs):
+            out += a * np.exp(-((y - dy - yc) ** 2 + (x - dx - xc) ** 2) / (2 * sigma ** 2))
+        return out
+    return f
+
+
+@pytest.mark.parametrize("b", [2, 4])
+def test_pixel_area_bound_is_the_brute_force_fisher_information(b):
+    # Fisher information of Poisson pixels, I = sum (d lambda/d d)^2 / lambda (its definition: Cramér 1946; Ober,
+    # Ram & Ward 2004), with d lambda/d d by central differences of the closed-form scene moved by 1e-4 detector px
+    # and integrated by b x b detector pixels (tests/outside_data.specimen_area) — no transform involved. Spots of
+    # 1.5 scene px are finer than the detector's grid (0.75 or 0.375 detector px): the frame is aliased.
+    f = _spots(np.random.default_rng(3), 40, 1.5, 128, 12)
+    n, p, h = 128 // b, 3.0, 1e-4
+    frame = specimen_area(f(0, 0), b, (n, n), 0, 0)
+    scale = p / frame.mean()
+
+    def lam(dy, dx):
+        return specimen_area(f(dy * b, dx * b), b, (n, n), 0, 0) * scale
+    gy = (lam(h, 0) - lam(-h, 0)) / (2 * h)
+    gx = (lam(0, h) - lam(0, -h)) / (2 * h)
+    fisher = np.array([[np.sum(gy * gy / (frame * scale)), np.sum(gy * gx / (frame * scale))],
+                       [np.sum(gx * gy / (frame * scale)), np.sum(gx * gx / (frame * scale))]])
+    brute = np.sqrt(np.diag(np.linalg.inv(fisher)))
+    assert_allclose(area_shift_crb(f(0, 0), b, p), brute, rtol=1e-4)  # measured within 1e-6
+    # the spectral derivative of the sampled (aliased) frame is not the motion's derivative: shift_crb of the frame
+    # is 0.97x the true bound at b = 2 and 0.72x at b = 4 here (measured)
+    off = np.array(shift_crb(frame, p)) / brute
+    assert np.all(np.abs(off - 1) > (0.02 if b == 2 else 0.2))
+
+
+def test_pixel_area_bound_agrees_with_shift_crb_on_a_band_limited_scene():
+    # Spots of 6 scene px (3 detector px at b = 2) hold nothing above the detector's Nyquist frequency (their
+    # spectrum there is exp(-44) of its peak): the binned frame samples a band-limited function, whose motion
+    # derivative is its spectral derivative (the sampling theorem), so both bounds must agree.
+    f = _spots(np.random.default_rng(4), 12, 6.0, 160, 40)
+    frame = specimen_area(f(0, 0), 2, (80, 80), 0, 0)
+    assert_allclose(area_shift_crb(f(0, 0), 2, 2.0), shift_crb(frame, 2.0), rtol=1e-4)
+    # factor 1 over the whole scene is shift_crb itself; a window takes the scene's derivative at its edges
+    img = nuclei_2d()[:96, :96].astype(np.float64) + 1.0
+    assert_allclose(area_shift_crb(img, 1, 1.5), shift_crb(img, 1.5), rtol=1e-12)
+    win = area_shift_crb(img, 1, 1.5, window=(slice(8, 88), slice(8, 88)))
+    assert_allclose(win, shift_crb(img[8:88, 8:88], 1.5), rtol=0.05)
+    with pytest.raises(ValueError, match="multiple of factor=4"):
+        area_shift_crb(img, 4, 1.5, window=(slice(0, 90), slice(0, 96)))
+    with pytest.raises(ValueError, match="factor"):
+        area_shift_crb(img, 1.5, 1.5)
 
 
 def _fourier_crop(image, shape, dy, dx):
