@@ -1,13 +1,30 @@
 """Displacement error as a multiple of the Cramér–Rao bound, per photon level, next to frames per second.
 
-Run: ``python bench/bench_shift_bound.py [--frames N] [--quick]``. Needs ``make setup`` (the outside data).
-The default sessions are 2,220 frames (74 s at 30 Hz; the reference's last update is at frame 1,920): about 20
-minutes on one core, most of it making the frames.
+Run: ``python bench/bench_shift_bound.py [--frames N] [--quick] [--motion {area,fourier,spline}]``. Needs ``make
+setup`` (the outside data). The default sessions are 2,220 frames (74 s at 30 Hz; the reference's last update is at
+frame 1,920): about 20 minutes on one core for both kinds of session, most of it making the frames.
 
 For 0.5, 1.5, 5 and 20 photons/px it measures two sessions:
-- *real specimen*: the nuclei image of ``tests/outside_data.py`` (a real fluorescence micrograph, 480² window,
-  moved by ``specimen_crop``: cubic spline, real edges) along a random walk with a 8 px jump half-way, recorded
-  through the EMVA 1288 detector model (Poisson × gain 20 + offset 100);
+- *real specimen*: the nuclei image of ``tests/outside_data.py`` (a real fluorescence micrograph) along a random walk
+  with a 8 px jump half-way (held within ±12 px), recorded through the EMVA 1288 detector model (Poisson × gain 20 +
+  offset 100), the frames holding the given photons per px on average. ``--motion`` says how the specimen moves:
+
+  - ``area`` (default; the physical detector): each detector px is the mean of b × b px of a scene finer than the
+    detector's grid, the scene moving by whole scene px — no interpolation, aliased wherever the specimen holds
+    detail finer than two detector px. The scene is the image's band-limited interpolant on a grid
+    ``--area-steps / --area-pixel`` times finer than the image (default 2×, by the Fourier shift of the mirror
+    extension), b = ``--area-steps`` (default 4): detector px of 2 image px, shifts in steps of 1/4 px (the walk is
+    rounded to them; steps of 1/2 px alone would hide an estimator's bias at quarter px). 224² frames: a detector
+    coarser than the image leaves at most 256² of the 512² image, less the walk's margin. The bound is
+    ``area_shift_crb`` of the scene (the scene's derivative integrated over each detector px), not ``shift_crb`` of
+    the sampled frame (1.13× higher for this specimen).
+  - ``fourier``: the Fourier shift of the image's mirror extension (``tests/outside_data.fourier_mover``), a 480²
+    window: exact for a scene band-limited at the image's grid. 480² and not 512²: the window keeps 16 px from the
+    image's edges, where the mirrored copy begins, and the walk reaches 12 px. The bound is ``area_shift_crb`` with
+    factor 1 over the window (the scene's derivative at the window's edges).
+  - ``spline``: ``specimen_crop`` (cubic spline, ``scipy.ndimage.shift``), 480², the harness of the earlier runs;
+    the spline errs 0.008 px RMS without noise (``bench/bench_shift_models.py``), 3× the bound at 20 photons/px.
+    The bound is ``shift_crb`` of the still frame.
 - *simulator*: qcmon's own simulator (scenario ``clean``, 512², its detector, gain and read noise).
 Each session is measured like the engine does it: the reference is built from the first 30 frames
 (``build_reference``), the estimator gets the dark level, gain and read noise, every frame is measured and offered
@@ -49,25 +66,79 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
-from outside_data import detect, nuclei_2d, specimen_crop  # noqa: E402
+from outside_data import detect, fourier_mover, nuclei_2d, specimen_area, specimen_crop  # noqa: E402
 from qcmon.metrics import bin_image  # noqa: E402
 from qcmon.metrics.reference_growth import REFERENCE_UPDATES, ReferenceGrowth  # noqa: E402
 from qcmon.metrics.registration import ShiftEstimator, build_reference  # noqa: E402
-from qcmon.metrics.shift_bound import shift_crb  # noqa: E402
+from qcmon.metrics.shift_bound import area_shift_crb, shift_crb  # noqa: E402
 
 PHOTONS = (0.5, 1.5, 5.0, 20.0)
 
 
-def real_session(photons: float, n: int, rng: np.random.Generator):
+MOTIONS = ("area", "fourier", "spline")
+WALK_LIMIT = 12.0  # px: the random walk (with its jump) is held within this on each axis
+
+
+def _finer_scene(img: np.ndarray, k: int) -> np.ndarray:
+    """The band-limited interpolant of ``img`` sampled on a grid ``k`` times finer (the image's samples kept), by the
+    Fourier shift of its mirror extension (tests/outside_data.fourier_mover); the outermost image px is dropped, and
+    the interpolant's ringing below zero next to the sharpest edges (a few px of 1020², down to -4 of a mean of 33)
+    is clipped: the scene is then what the frames and the bound both use."""
+    if k == 1:
+        return img
+    move = fourier_mover(img)
+    shape = (img.shape[0] - 2, img.shape[1] - 2)
+    out = np.empty((shape[0] * k, shape[1] * k))
+    for a in range(k):
+        for c in range(k):
+            out[a::k, c::k] = move(shape, -a / k, -c / k)  # the image at (row + a/k, column + c/k)
+    return np.clip(out, 0, None)
+
+
+def real_session(photons: float, n: int, rng: np.random.Generator, motion: str = "area", area_pixel: int = 2,
+                 area_steps: int = 4):
+    """Frames of the real specimen moved along the session's walk by ``motion`` (see the module notes), the walk as
+    the frames hold it, the Cramér–Rao bound of that motion model, the detector's facts, and a description."""
     img = nuclei_2d().astype(np.float64) + 1.0  # +1: no pixel expects exactly zero photons
-    shape = (480, 480)
     walk = np.cumsum(rng.normal(0, 0.3, (n, 2)), axis=0)
     walk[n // 2:] += 8.0
-    walk = np.clip(walk, -12, 12)
-    scale = photons / img.mean()
-    frames = np.stack([detect(specimen_crop(img, shape, *d) * scale, rng, gain=20.0, offset=100.0) for d in walk])
-    bound = shift_crb(specimen_crop(img, shape, 0.0, 0.0) * scale, photons)
-    return frames, walk, bound, dict(dark_level=100.0, gain=20.0, read_noise_dn=0.0)
+    walk = np.clip(walk, -WALK_LIMIT, WALK_LIMIT)
+    m = int(WALK_LIMIT)
+    if motion == "area":
+        b = area_steps
+        scene = _finer_scene(img, area_steps // area_pixel)
+        walk = np.round(walk * b) / b  # the scene moves by whole scene px
+        size = (min(scene.shape) - 2 * m * b) // b // 8 * 8
+        shape = (size, size)
+        top = (scene.shape[0] - size * b) // 2
+        window = (slice(top, top + size * b), slice(top, top + size * b))
+
+        def move(dy, dx):
+            return specimen_area(scene, b, shape, dy, dx)
+        what = (f"pixel area: detector px = {area_pixel} image px = {b}x{b} px of the scene (the image's band-limited "
+                f"interpolant on a {area_steps // area_pixel}x finer grid), steps of 1/{b} px, {size}²")
+    elif motion == "fourier":
+        b, scene, shape = 1, img, (480, 480)
+        window = (slice(16, 496), slice(16, 496))
+        fmove = fourier_mover(img)
+
+        def move(dy, dx):
+            return np.clip(fmove(shape, dy, dx), 0, None)  # the interpolant rings below zero at under 12 px of 480²
+        what = "Fourier shift of the mirror-extended image, 480² window (16 px margin for shifts up to 12 px)"
+    elif motion == "spline":
+        shape, scene = (480, 480), None
+
+        def move(dy, dx):
+            return specimen_crop(img, shape, dy, dx)
+        what = "cubic spline (specimen_crop, scipy.ndimage.shift order 3), 480²"
+    else:
+        raise ValueError(f"motion must be one of {MOTIONS}, got {motion!r}")
+    still = move(0.0, 0.0)
+    scale = photons / still.mean()  # the frames hold `photons` per px on average
+    frames = np.stack([detect(move(*d) * scale, rng, gain=20.0, offset=100.0) for d in walk])
+    sampled = shift_crb(still, photons)
+    bound = sampled if scene is None else area_shift_crb(scene, b, photons, window=window)
+    return frames, walk, bound, dict(dark_level=100.0, gain=20.0, read_noise_dn=0.0), what, sampled
 
 
 def sim_session(photons: float, n: int, seed: int):
@@ -205,12 +276,20 @@ def main() -> int:
     parser.add_argument("--quick", action="store_true",
                         help="700 frames, updates up to 480, 1.5 and 20 photons/px only (with --patch: 30 frames)")
     parser.add_argument("--sessions", default="real specimen,simulator", help="comma-separated session kinds")
+    parser.add_argument("--motion", choices=MOTIONS, default="area",
+                        help="how the real specimen moves (default area: the detector's pixel-area integration)")
+    parser.add_argument("--area-pixel", type=int, default=2, choices=(2, 4),
+                        help="--motion area: a detector px covers this many image px (default 2)")
+    parser.add_argument("--area-steps", type=int, default=4,
+                        help="--motion area: shift steps per detector px, a multiple of --area-pixel (default 4)")
     parser.add_argument("--patch", action="store_true",
                         help="frames with a stationary saturated patch, through the engine (see the module notes)")
     args = parser.parse_args()
     if args.patch:
         return patch_main(args.frames or (30 if args.quick else 120), (5.0, 20.0) if args.quick else PHOTONS,
                           (128, 256))
+    if args.area_steps % args.area_pixel:
+        parser.error(f"--area-steps {args.area_steps} is not a multiple of --area-pixel {args.area_pixel}")
     n = args.frames or (700 if args.quick else 2220)
     levels = (1.5, 20.0) if args.quick else PHOTONS
     updates = tuple(u for u in REFERENCE_UPDATES if u <= (480 if args.quick else n - 100))
@@ -229,7 +308,11 @@ def main() -> int:
         for k, p in enumerate(levels):
             rng = np.random.default_rng(100 + k)
             if name == "real specimen":
-                frames, walk, bound, facts = real_session(p, n, rng)
+                frames, walk, bound, facts, what, sampled = real_session(p, n, rng, args.motion, args.area_pixel,
+                                                                         args.area_steps)
+                if k == 0:
+                    print(f"real specimen moved by {what}; shift_crb of the sampled still frame / the motion's bound "
+                          f"= {np.mean(sampled) / np.mean(bound):.3f}", flush=True)
             else:
                 frames, walk, bound, facts = sim_session(p, n, seed=100 + k)
             b = float(np.mean(bound))
