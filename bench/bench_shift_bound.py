@@ -115,8 +115,10 @@ def real_session(photons: float, n: int, rng: np.random.Generator, motion: str =
 
         def move(dy, dx):
             return specimen_area(scene, b, shape, dy, dx)
-        what = (f"pixel area: detector px = {area_pixel} image px = {b}x{b} px of the scene (the image's band-limited "
-                f"interpolant on a {area_steps // area_pixel}x finer grid), steps of 1/{b} px, {size}²")
+        k = area_steps // area_pixel
+        finer = "the image itself" if k == 1 else f"the image's band-limited interpolant on a {k}x finer grid"
+        what = (f"pixel area: detector px = {area_pixel} image px = {b}x{b} px of the scene ({finer}), steps of 1/{b} "
+                f"px, {size}²")
     elif motion == "fourier":
         b, scene, shape = 1, img, (480, 480)
         window = (slice(16, 496), slice(16, 496))
