@@ -14,8 +14,10 @@ For 0.5, 1.5, 5 and 20 photons/px it measures two sessions:
     detail finer than two detector px. The scene is the image's band-limited interpolant on a grid
     ``--area-steps / --area-pixel`` times finer than the image (default 2×, by the Fourier shift of the mirror
     extension), b = ``--area-steps`` (default 4): detector px of 2 image px, shifts in steps of 1/4 px (the walk is
-    rounded to them; steps of 1/2 px alone would hide an estimator's bias at quarter px). 224² frames: a detector
-    coarser than the image leaves at most 256² of the 512² image, less the walk's margin. The bound is
+    rounded to them; steps of 1/2 px alone would hide an estimator's bias at quarter px). The specimen makes the
+    same motion as in the other models, in image px: in detector px it is ``--area-pixel`` times smaller (a walk
+    within ±6 px, a 4 px jump, at the default). 240² frames, the field of 480 image px as in the others (a detector
+    coarser than the image leaves at most 256² of the 512² image, less the walk's margin). The bound is
     ``area_shift_crb`` of the scene (the scene's derivative integrated over each detector px), not ``shift_crb`` of
     the sampled frame (1.13× higher for this specimen).
   - ``fourier``: the Fourier shift of the image's mirror extension (``tests/outside_data.fourier_mover``), a 480²
@@ -107,7 +109,9 @@ def real_session(photons: float, n: int, rng: np.random.Generator, motion: str =
     if motion == "area":
         b = area_steps
         scene = _finer_scene(img, area_steps // area_pixel)
-        walk = np.round(walk * b) / b  # the scene moves by whole scene px
+        # the same motion of the specimen, in detector px (coarser than the image's by area_pixel), on whole scene px
+        walk = np.round(walk / area_pixel * b) / b
+        m = int(np.ceil(WALK_LIMIT / area_pixel))
         size = (min(scene.shape) - 2 * m * b) // b // 8 * 8
         shape = (size, size)
         top = (scene.shape[0] - size * b) // 2
