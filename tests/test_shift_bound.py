@@ -9,7 +9,7 @@ import warnings
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
-from scipy import ndimage, stats
+from scipy import stats
 from skimage.registration import phase_cross_correlation
 
 from outside_data import detect, nuclei_2d, specimen_area, specimen_crop
@@ -143,14 +143,6 @@ def test_pixel_area_bound_agrees_with_shift_crb_on_a_band_limited_scene():
         area_shift_crb(img, 4, 1.5, window=(slice(0, 90), slice(0, 96)))
     with pytest.raises(ValueError, match="factor"):
         area_shift_crb(img, 1.5, 1.5)
-
-
-def _fourier_crop(image, shape, dy, dx):
-    """Central window of ``image`` with its content moved by (dy, dx) by the Fourier shift theorem (band-limited;
-    the window's edges are not periodic)."""
-    moved = np.fft.ifft2(ndimage.fourier_shift(np.fft.fft2(image), (dy, dx))).real
-    t, le = (image.shape[0] - shape[0]) // 2, (image.shape[1] - shape[1]) // 2
-    return np.clip(moved[t:t + shape[0], le:le + shape[1]], 0, None)
 
 
 def test_estimator_against_the_bound_on_a_real_specimen():
