@@ -169,7 +169,8 @@ def sim_session(photons: float, n: int, seed: int):
 
 
 def measure(frames, walk, facts, steps: int, updates=()):
-    """Shift errors of every frame (raw: the reference's zero not removed), and frames per second."""
+    """Shift errors of every frame (raw: the reference's zero not removed), frames per second, and the growing
+    reference's choices of the likelihood's roll-off (``ReferenceGrowth.choices``; empty without growth)."""
     old = ShiftEstimator._ML_STEPS
     ShiftEstimator._ML_STEPS = steps
     try:
@@ -192,7 +193,7 @@ def measure(frames, walk, facts, steps: int, updates=()):
             dt = time.perf_counter() - t0
     finally:
         ShiftEstimator._ML_STEPS = old
-    return res - walk, len(frames) / dt
+    return res - walk, len(frames) / dt, (growth.choices if growth is not None else [])
 
 
 def window_rms(err, window: slice) -> float:
@@ -326,15 +327,18 @@ def main() -> int:
             b = float(np.mean(bound))
             cols = []
             for steps, upd in ((ShiftEstimator._ML_STEPS, updates), (ShiftEstimator._ML_STEPS, ()), (0, ())):
-                raw, fps = measure(frames, walk, facts, steps, upd)
+                raw, fps, choices = measure(frames, walk, facts, steps, upd)
                 err = raw - np.nanmedian(raw, axis=0)
                 cols.append((window_rms(err, early), window_rms(err, late), fps))
                 if upd:
                     g0 = window_rms(raw - np.nanmedian(raw[early], axis=0), late)
+                    chosen = ", ".join(f"{c[0]}: {c[1]}" for c in choices)
             (g5, gl, gf), (f5, fl, ff), (_p5, pl, pf) = cols
             print(f"{name:>14} {p:>10.1f} {b:>9.4f} | {g5:>16.4f} {g5 / b:>5.1f} {gl:>9.4f} {gl / b:>5.1f} {gf:>5.0f} "
                   f"| {f5:>14.4f} {f5 / b:>5.1f} {fl:>7.4f} {fl / b:>5.1f} {ff:>5.0f} | {pl:>13.4f} {pl / b:>5.1f} "
                   f"{pf:>5.0f} | {g0:>28.4f} {g0 / b:>5.1f}", flush=True)
+            print(f"{'':>14} roll-off chosen by the growing reference (frames seen: band): {chosen or 'none'}",
+                  flush=True)
             del frames
     # the refinement's cost at 512² (binned 2x, as the engine registers it), interleaved with and without it
     rng = np.random.default_rng(7)
