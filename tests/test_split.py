@@ -187,15 +187,22 @@ def test_audit_of_one_long_session_splits_it_and_gives_the_same_row(tmp_path, mo
     assert r1 == r2 and r1["frames"] == 800
 
 
-def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch):
-    frames = _sim(tmp_path / "s", 200, seed=9)                 # 200 < MIN_CHUNK time points per process
-    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
+def _one_and_two_processes(frames, tmp_path, monkeypatch) -> list:
+    """Measure ``frames`` with one and with two processes (outputs in ``o1``, ``o2``); the chunk counts each
+    ``SplitRun.launch`` returned."""
     launched = []
     real = qcmon.monitor.split.SplitRun.launch
     monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
                         lambda self, *a: launched.append(real(self, *a)) or launched[-1])
     for w in (1, 2):
         Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
+    return launched
+
+
+def test_a_session_too_short_to_split_stays_in_one_process(tmp_path, monkeypatch):
+    frames = _sim(tmp_path / "s", 200, seed=9)                 # 200 < MIN_CHUNK time points per process
+    monkeypatch.setattr(qcmon.metrics.reference_growth, "REFERENCE_UPDATES", SHORT_GROWTH)
+    launched = _one_and_two_processes(frames, tmp_path, monkeypatch)
     assert [n for n in launched if n] == [1]                 # 0: not decided yet (the reference still grows)
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
 
@@ -240,12 +247,7 @@ def test_a_reference_still_growing_where_the_first_chunk_would_end_keeps_one_pro
     # before its chunk, so the session is split nowhere, and gives one process's numbers
     frames = _sim(tmp_path / "s", 800, seed=10)
     monkeypatch.setattr(qcmon.monitor.split, "MIN_CHUNK", 350)
-    launched = []
-    real = qcmon.monitor.split.SplitRun.launch
-    monkeypatch.setattr(qcmon.monitor.split.SplitRun, "launch",
-                        lambda self, *a: launched.append(real(self, *a)) or launched[-1])
-    for w in (1, 2):
-        Monitor(MonitorOptions(path=frames, out_dir=tmp_path / f"o{w}", follow=False, workers=w)).run()
+    launched = _one_and_two_processes(frames, tmp_path, monkeypatch)
     assert not any(launched)                               # 0: not yet, to the end
     assert _traces(tmp_path / "o2") == _traces(tmp_path / "o1")
     info = json.loads((tmp_path / "o2" / "summary.json").read_text())["engine"]["streams"]["0,0"]
