@@ -200,7 +200,8 @@ class ReferenceGrowth:
         # the mean of every frame
         ref = np.sum([m * np.float32(c) for m, c in zip(means, counts)], axis=0) / np.float32(counts.sum())
         by_sum = {k: (m, int(c)) for k, m, c in zip(used, means, counts)}
-        halves = [(by_sum.get(2 * b, (None, 0)), by_sum.get(2 * b + 1, (None, 0))) for b in range(len(self._sums) // 2)]
+        halves = [(by_sum.get(2 * b, (None, 0)), by_sum.get(2 * b + 1, (None, 0)))
+                  for b in range(len(self._sums) // 2)]
         return ref.astype(np.float32, copy=False), halves
 
     def _choose_band(self, ref: np.ndarray, halves: list) -> tuple[float, float] | None:
@@ -214,11 +215,12 @@ class ReferenceGrowth:
         every frequency is the maximum-likelihood estimator when frames do follow a rigid shift, and biased by the
         fractional shift when they do not; rolling off the highest frequencies trades that bias for variance. Each
         candidate estimator (the new reference, one roll-off each) measures the means of the two halves of every
-        phase bin (frames at about the same fractional shift, alternate frames in each half). Its error variance
-        per frame follows from the two halves' difference; its bias from the difference to the yardstick
-        (:data:`YARDSTICK_BAND`, which keeps only low frequencies — where every model of motion agrees — and has
-        little bias and much variance), the yardstick's own noise taken off as measured by the halves. The choice
-        minimises bias² + variance.
+        phase bin (frames at about the same fractional shift, alternate frames in each half). Its bias is the
+        difference to the yardstick (:data:`YARDSTICK_BAND`, which keeps only low frequencies — where every model of
+        motion agrees — and has little bias and much variance) on the same means, where the sums' alignment error
+        cancels; the difference's noise, measured by the two halves, is taken off. Its variance is measured on
+        frames drawn from the new reference under the detector's model (:meth:`_trial_frames`): the variance of
+        the groups' means would favour the estimator that aligned them. The choice minimises bias² + variance.
         """
         pairs = [(a, b) for a, b in halves if a[0] is not None and b[0] is not None]
         due = not self.choices or (len(self.choices) == 1 and self.seen >= CHOOSE_AGAIN)
@@ -227,23 +229,24 @@ class ReferenceGrowth:
         na = np.array([a[1] for a, _ in pairs], dtype=np.float64)
         nb = np.array([b[1] for _, b in pairs], dtype=np.float64)
 
-        def measured(band) -> tuple[ShiftEstimator | None, np.ndarray | None]:
+        def measured(band) -> np.ndarray | None:
+            """Shifts (px) of every pair's two half means, by the estimator of ``band``; None if any is not finite."""
             try:
                 est = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band)
             except ValueError:
-                return None, None
+                return None
             with np.errstate(all="ignore"):
                 out = np.array([[est.estimate_binned(m)[:2] for m in (a[0], b[0])] for a, b in pairs])
-            return est, (out if np.all(np.isfinite(out)) else None)
+            return out if np.all(np.isfinite(out)) else None
 
-        _, yard = measured(YARDSTICK_BAND)
+        yard = measured(YARDSTICK_BAND)
         trials = self._trial_frames(ref)
         if yard is None or trials is None:
             return self.band
         frames, truth, drawn_ref = trials
         scores = {}
         for band in ML_BANDS:
-            _, x = measured(band)
+            x = measured(band)
             if x is None:
                 continue
             try:
