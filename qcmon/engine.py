@@ -954,10 +954,8 @@ class Engine:
                 if given is not None and given[4] == _growth_state(st):
                     # measured by a copy of this engine in the same state (register_only): the same numbers
                     res, st.shift.out_of_range = ShiftResult(*given[:3]), given[3]
-                elif finite:
-                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
-                else:  # non-finite pixels: the estimator replaces them (and warns) before binning
-                    res = st.shift.estimate(img, valid=valid)
+                else:
+                    res = _estimate_shift(st.shift, img, binned, finite, mean_binned, valid, valid_counts)
             if structured and motion is None and st.shift.out_of_range:
                 where = f"{frame.source} page {frame.page}: " if frame.source else ""
                 self.problems.append(
@@ -1079,15 +1077,23 @@ class Engine:
                     row["shot_snr"] = math.sqrt(photons) if photons > 0 else 0.0
         st.prev, st.prev_shift = img, ishift
         st.n_measured += 1
-        if st.grow is not None:
-            new = st.grow.tick()  # at fixed counts of frames: the estimator of the accumulated reference
-            if new is not None:
-                st.shift = new
-            if st.grow.settled:
+        self._tick_growth(st, report=True)
+        return [row]
+
+    def _tick_growth(self, st: _Stream, *, report: bool) -> None:
+        """Count a measured frame in the stream's reference growth; at its fixed counts of frames the stream takes
+        the estimator of the accumulated reference. Once the growth is settled its notes become problems
+        (``report``) or are dropped (a copy that only registers: the engine measuring the frames reports them)."""
+        if st.grow is None:
+            return
+        new = st.grow.tick()
+        if new is not None:
+            st.shift = new
+        if st.grow.settled:
+            if report:
                 for note in st.grow.notes:
                     self.problems.append(f"channel {st.channel}, plane {st.plane}: {note}")
-                st.grow.notes.clear()
-        return [row]
+            st.grow.notes.clear()
 
     def _off_plane(self, st: _Stream) -> bool:
         """The last z estimate (from the start's plane) is more than one z-stack step away: the frames show
@@ -1160,10 +1166,7 @@ class Engine:
                 elif st.exact_binning:
                     mean_binned = float(np.add.reduce(binned, axis=None, dtype=np.float64)) / binned.size
                 finite = img.dtype.kind in "ui" or bool(np.isfinite(binned).all())
-                if finite:
-                    res = st.shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
-                else:
-                    res = st.shift.estimate(img, valid=valid)
+                res = _estimate_shift(st.shift, img, binned, finite, mean_binned, valid, valid_counts)
                 dy, dx, corr = res.dy_px, res.dx_px, res.corr
                 if st.grow is not None and valid is None and finite and not st.shift.out_of_range:
                     st.grow.offer(binned, dy, dx, corr)
@@ -1172,12 +1175,7 @@ class Engine:
         st.prev2 = None  # photon transfer's triples start again with the frames measured in full
         st.n_measured += 1
         out = (dy, dx, corr, bool(structured and st.shift.out_of_range), before)
-        if st.grow is not None:
-            new = st.grow.tick()
-            if new is not None:
-                st.shift = new
-            if st.grow.settled:
-                st.grow.notes.clear()  # the engine that measures these frames in full reports them
+        self._tick_growth(st, report=False)  # the engine that measures these frames in full reports the notes
         return out
 
     def give_registrations(self, items) -> None:
@@ -1234,6 +1232,15 @@ _STARTUP_SAMPLES = 1 << 17
 #: the gain, at a bounded cost (every 4th row at 256², 7th at 512², 8th at 1024²; bench_photometry).
 _TRIPLE_ROW_STEP = 4
 _TRIPLE_SAMPLES = 1 << 15
+
+
+def _estimate_shift(shift: ShiftEstimator, img: np.ndarray, binned: np.ndarray, finite: bool, mean_binned,
+                    valid, valid_counts):
+    """The frame's shift: from its binned image when every pixel is finite, else from the frame itself (the
+    estimator replaces non-finite pixels, and warns, before binning)."""
+    if finite:
+        return shift.estimate_binned(binned, mean=mean_binned, valid=valid, valid_counts=valid_counts)
+    return shift.estimate(img, valid=valid)
 
 
 def _growth_state(st: _Stream) -> tuple[int, int] | None:

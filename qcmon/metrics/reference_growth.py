@@ -278,7 +278,7 @@ class ReferenceGrowth:
         session's; the reference itself already holds that much noise, so this errs toward the roll-off); None
         without a known gain. The same seed at every update: the same frames give the same choice, live or
         offline."""
-        dark, gain, read_noise = self.initial._facts
+        dark, gain, read_noise = self.initial.detector
         if gain is None or not (math.isfinite(gain) and gain > 0):
             return None
         b = self.initial.bin_factor

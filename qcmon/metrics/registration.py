@@ -287,6 +287,12 @@ class ShiftEstimator:
         self._band_power_ref = float(np.sum(self._absf2))
         self._n_band = self._absf2.size
 
+    @property
+    def detector(self) -> tuple[float | None, float | None, float | None]:
+        """The detector this estimator models: (dark level DN, gain DN per photon, read noise DN), None or NaN
+        where unknown."""
+        return self._facts
+
     def with_reference(self, binned_reference: np.ndarray, *, reference_frames: float,
                        ml_band: tuple[float, float] | None = None) -> "ShiftEstimator":
         """A copy of this estimator (same binning, band, range and detector) measuring against a new reference.
