@@ -40,6 +40,25 @@ _MIN_K3_COUNT = 200
 MAX_DARK_SE_DN = 1.0
 
 
+def _stencil_rows(frames, step: int):
+    """The rows of 3-row stencils centred on every ``step``-th row (1, 1 + step, ...) of each frame, as float32,
+    and the slices of those arrays that hold the rows above, at and below the centres.
+
+    Each pixel enters every computation on these rows once: with ``step`` up to 3 the stencils' rows overlap or
+    touch, so the whole frames are used (no copy for float32 frames) and the slices step through them; with a
+    larger step the rows are gathered (three rows per centre) and the slices are three blocks. The values in the
+    three slices are the same either way, so anything computed pixel by pixel from them is too.
+    """
+    m = frames[0].shape[0]
+    if step <= 3:
+        return ([f.astype(np.float32, copy=False) for f in frames],
+                (slice(0, m - 2, step), slice(1, m - 1, step), slice(2, m, step)))
+    centre = np.arange(1, m - 1, step)
+    rows = np.concatenate((centre - 1, centre, centre + 1))
+    k = centre.size
+    return [f[rows].astype(np.float32) for f in frames], (slice(0, k), slice(k, 2 * k), slice(2 * k, 3 * k))
+
+
 @dataclass(frozen=True, slots=True)
 class PhotonTransferResult:
     """Fit of ``var = K (mean - dark) + read_noise**2``.
@@ -302,25 +321,20 @@ class PhotonTransfer:
 
     def _triple_samples(self, a: np.ndarray, b: np.ndarray, c: np.ndarray):
         """Per stencil: the centre's three-frame mean, the neighbours' mean, Δ and whether the sample is used."""
-        m = a.shape[0]
-        centre = np.arange(1, m - 1, self.triple_row_step or self.row_step)
-        rows = np.concatenate((centre - 1, centre, centre + 1))
-        fa, fb, fc = (f[rows].astype(np.float32) for f in (a, b, c))
-        k = centre.size
+        (fa, fb, fc), (up, mid, down) = _stencil_rows((a, b, c), self.triple_row_step or self.row_step)
         bad = ~((fa < self.max_value) & (fa > self.floor) & (fb < self.max_value) & (fb > self.floor)
                 & (fc < self.max_value) & (fc > self.floor))  # NaN pixels too, as in _samples
         s = fa + fb + fc
-        mid = slice(k, 2 * k)
         delta = (fc[mid, 1:-1] - 2.0 * fb[mid, 1:-1] + fa[mid, 1:-1]).astype(np.float64).ravel()
         x = (s[mid, 1:-1] / 3.0).ravel()
         nbr = ((s[mid, :-2] + s[mid, 2:]) / 6.0).ravel()
         # structure seen by the columns either side, as for the pairs (sums of three frames: 12 × the pixel
         # variance on a flat field)
         gx = s[mid, 2:] - s[mid, :-2]
-        gy_left = s[2 * k:, :-2] - s[:k, :-2]
-        gy_right = s[2 * k:, 2:] - s[:k, 2:]
+        gy_left = s[down, :-2] - s[up, :-2]
+        gy_right = s[down, 2:] - s[up, 2:]
         grad2 = (gx * gx + 0.5 * (gy_left * gy_left + gy_right * gy_right)).ravel()
-        badc = bad[:k] | bad[mid] | bad[2 * k:]
+        badc = bad[up] | bad[mid] | bad[down]
         ok = ~(badc[:, 1:-1] | badc[:, :-2] | badc[:, 2:]).ravel()
         slope, intercept = self._line
         predicted = np.maximum(slope * np.maximum(x, nbr) + intercept, 1e-6)
@@ -383,27 +397,22 @@ class PhotonTransfer:
 
     def _samples(self, a: np.ndarray, b: np.ndarray):
         """Per-stencil weighted pair mean x, variance sample y, neighbour pair mean and a validity mask."""
-        m = a.shape[0]
-        centre = np.arange(1, m - 1, self.row_step)
-        rows = np.concatenate((centre - 1, centre, centre + 1))
-        fa = a[rows].astype(np.float32)
-        fb = b[rows].astype(np.float32)
-        k = centre.size
+        (fa, fb), (up, mid, down) = _stencil_rows((a, b), self.row_step)
         # a limit, or no number at all (NaN in float frames: a comparison with NaN is never true)
         bad = ~((fa < self.max_value) & (fa > self.floor) & (fb < self.max_value) & (fb > self.floor))
         d = fa - fb
         s = fa + fb
-        h = d[k : 2 * k, 1:-1] - 0.5 * (d[:k, 1:-1] + d[2 * k :, 1:-1])
+        h = d[mid, 1:-1] - 0.5 * (d[up, 1:-1] + d[down, 1:-1])
         y = (h * h) / 3.0
-        x = (0.5 * s[k : 2 * k, 1:-1] + 0.125 * (s[:k, 1:-1] + s[2 * k :, 1:-1])) / 1.5
-        nbr = 0.25 * (s[k : 2 * k, :-2] + s[k : 2 * k, 2:])
+        x = (0.5 * s[mid, 1:-1] + 0.125 * (s[up, 1:-1] + s[down, 1:-1])) / 1.5
+        nbr = 0.25 * (s[mid, :-2] + s[mid, 2:])
         # Local structure seen by the columns either side (independent of the stencil's noise): squared
         # horizontal and vertical differences of the pair sums; 8 x the pixel variance on a flat field.
-        gx = s[k : 2 * k, 2:] - s[k : 2 * k, :-2]
-        gy_left = s[2 * k :, :-2] - s[:k, :-2]
-        gy_right = s[2 * k :, 2:] - s[:k, 2:]
+        gx = s[mid, 2:] - s[mid, :-2]
+        gy_left = s[down, :-2] - s[up, :-2]
+        gy_right = s[down, 2:] - s[up, 2:]
         grad2 = gx * gx + 0.5 * (gy_left * gy_left + gy_right * gy_right)
-        badc = bad[:k] | bad[k : 2 * k] | bad[2 * k :]
+        badc = bad[up] | bad[mid] | bad[down]
         ok = ~(badc[:, 1:-1] | badc[:, :-2] | badc[:, 2:])
         return x.ravel(), y.ravel(), nbr.ravel(), grad2.ravel(), ok.ravel()
 
