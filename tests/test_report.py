@@ -371,3 +371,34 @@ def test_photon_transfer_says_why_its_dark_level_is_blank(session):
     metrics = _text(report_html(summary, traces, events, prof, facts)).split("Metrics", 1)[1].split("Traces", 1)[0]
     assert "conversion gain 2.50 DN/photon" in metrics and "dark level 1" not in metrics
     assert "dark level uncertain (±7 DN" in metrics
+
+
+def test_field_pictures_show_the_image_between_its_percentiles_grey_unless_pixels_are_marked():
+    # The page's pictures of the field: grey levels between the 0.5th and 99.5th percentiles (numpy's), saved as a
+    # one-channel PNG when no pixel is coloured (it decodes, with Pillow, to the same pixels as three equal
+    # channels), as RGB when a mark colours some pixel.
+    import io
+
+    from PIL import Image
+
+    from qcmon.record import report
+    from tests.outside_data import nuclei_2d
+
+    img = nuclei_2d()[:200, :160].astype(np.float64)
+    lo, hi = np.percentile(img, (0.5, 99.5))
+    want = (np.clip((img - lo) / (hi - lo), 0, 1) * 255).astype(np.uint8)
+
+    def decoded(png: str) -> Image.Image:
+        return Image.open(io.BytesIO(base64.b64decode(png)))
+
+    plain = decoded(report._image_png(img))
+    assert plain.mode == "L" and np.array_equal(np.asarray(plain), want)
+    unmarked = decoded(report._image_png(img, marks={"#ff2020": np.zeros(img.shape, bool)}))
+    assert np.array_equal(np.asarray(unmarked.convert("RGB")), np.repeat(want[..., None], 3, axis=2))
+    mask = np.zeros(img.shape, bool)
+    mask[5:9, 7:12] = True
+    lo_m, hi_m = np.percentile(img[~mask], (0.5, 99.5))  # the contrast is the unmarked pixels'
+    marked = np.asarray(decoded(report._image_png(img, marks={"#ff2020": mask})).convert("RGB"))
+    assert (marked[mask] == [255, 0x20, 0x20]).all()
+    grey = (np.clip((img - lo_m) / (hi_m - lo_m), 0, 1) * 255).astype(np.uint8)
+    assert np.array_equal(marked[~mask], np.repeat(grey[~mask][:, None], 3, axis=1))

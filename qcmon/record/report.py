@@ -393,11 +393,17 @@ def _image_png(image: np.ndarray, *, marks: Mapping[str, np.ndarray] | None = No
     finite = img[shown] if shown.any() else img[np.isfinite(img)]
     lo, hi = (np.percentile(finite, (0.5, 99.5)) if finite.size else (0.0, 1.0))
     grey = np.clip((np.nan_to_num(img, nan=lo) - lo) / ((hi - lo) or 1.0), 0, 1)
-    rgb = np.repeat((grey * 255).astype(np.uint8)[..., None], 3, axis=2)
-    for colour, mask in (marks or {}).items():
-        rgb[np.asarray(mask, bool)] = [int(colour[i:i + 2], 16) for i in (1, 3, 5)]
+    grey8 = (grey * 255).astype(np.uint8)
+    coloured = [(c, m) for c, m in (marks or {}).items() if np.asarray(m, bool).any()]
+    if coloured:
+        pic = np.repeat(grey8[..., None], 3, axis=2)
+        for colour, mask in coloured:
+            pic[np.asarray(mask, bool)] = [int(colour[i:i + 2], 16) for i in (1, 3, 5)]
+        pic = Image.fromarray(pic, "RGB")
+    else:  # a grey PNG shows the same pixels as three equal channels, in a sixth of the encoding time here
+        pic = Image.fromarray(grey8, "L")
     buf = io.BytesIO()
-    Image.fromarray(rgb, "RGB").save(buf, format="PNG", optimize=False)
+    pic.save(buf, format="PNG", optimize=False)
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
