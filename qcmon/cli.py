@@ -10,7 +10,12 @@ from pathlib import Path
 from qcmon import __version__
 from qcmon.arguments import EXIT_ERROR, EXIT_INTERRUPTED, EXIT_OK, finite, positive, raw_dtype
 from qcmon.errors import QcmonError, display_path
-from qcmon.frames import RATE_UNKNOWN
+
+#: Threads of the linear-algebra library (OpenBLAS) for the ``qcmon`` command, unless the environment says otherwise:
+#: the monitor measures with one (``Monitor.run``), and a library that starts more when it loads costs 0.1 s of
+#: processor time at start-up (in this process and in each helper process, which inherit the setting). Set before
+#: numpy loads, so this module imports nothing that loads it.
+BLAS_THREADS = "1"
 
 def _add_acquisition(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("acquisition facts (used when the files do not carry them)")
@@ -123,6 +128,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", BLAS_THREADS)  # before numpy loads (see BLAS_THREADS)
     argv = sys.argv[1:] if argv is None else list(argv)
     named = next((a for a in argv if not a.startswith("-")), None)  # the only options before it are -h, --version
     parser = build_parser(only=named if named in COMMANDS else None)
@@ -144,6 +150,7 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def cmd_summarize(args) -> int:
+    from qcmon.frames import RATE_UNKNOWN
     from qcmon.ui.console import format_event
     from qcmon.monitor.loop import Monitor
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import os
 import re
 from html.parser import HTMLParser
 
@@ -111,6 +112,7 @@ def test_plots_drawn_by_other_processes_give_the_same_report(session):
     here = report_html(summary, traces, events, prof, facts)
     workers = PlotWorkers(2)
     try:
+        assert workers.ready(timeout=120)  # else the plots would be drawn here (see the next test)
         there = report_html(summary, traces, events, prof, facts, plots=workers)
     finally:
         workers.close()
@@ -119,6 +121,30 @@ def test_plots_drawn_by_other_processes_give_the_same_report(session):
     broken = PlotWorkers(1)
     broken.close()
     assert report_html(summary, traces, events, prof, facts, plots=broken) == here
+
+
+def test_plots_are_drawn_here_while_no_process_is_ready_and_such_processes_are_ended(session):
+    # At the lowest priority on a busy machine the processes may still be loading matplotlib when the report is
+    # written: it is then drawn in this process, and closing does not wait for their loading. Held still here
+    # (SIGSTOP), as the scheduler holds them when other programs keep the cores busy.
+    import signal
+
+    from qcmon.record.report import PlotWorkers
+
+    if not hasattr(signal, "SIGSTOP"):
+        pytest.skip("no SIGSTOP on this system")
+    prof, traces, events, facts, summary = session
+    here = report_html(summary, traces, events, prof, facts)
+    workers = PlotWorkers(2)
+    try:
+        assert len(workers._processes) == 2
+        for proc in workers._processes:
+            os.kill(proc.pid, signal.SIGSTOP)
+        assert not workers.ready(timeout=0.5)
+        assert report_html(summary, traces, events, prof, facts, plots=workers) == here
+    finally:
+        workers.close()  # a stopped process would never end by itself
+    assert not any(proc.is_alive() for proc in workers._processes)
 
 
 def test_plot_processes_run_at_the_lowest_priority():

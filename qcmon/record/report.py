@@ -190,12 +190,25 @@ class PlotWorkers:
 
         from qcmon.record._plotproc import start
 
+        before = set(multiprocessing.active_children())
         # low priority (qcmon.record._plotproc): loading matplotlib must not slow the measurement on a busy core
         self._pool = ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"),
                                          initializer=start)
-        # processes start on demand: one empty job per process starts them all now
-        for _ in range(processes):
-            self._pool.submit(_nothing)
+        # processes start on demand: one empty job per process starts them all now; it is done once its process
+        # has loaded matplotlib
+        self._warm = [self._pool.submit(_nothing) for _ in range(processes)]
+        self._processes = [p for p in multiprocessing.active_children() if p not in before]
+
+    def ready(self, timeout: float = 0.0) -> bool:
+        """Whether a process has loaded matplotlib and can draw (waiting up to ``timeout`` s for one).
+
+        Not yet at the end of a short session on a busy machine: at the lowest priority the processes get almost
+        no processor time while other programs keep both cores busy (a 300-frame summary waited 1.9 s for them
+        here); the plots are then drawn in this process (:class:`PanelDrawing`), at its normal priority."""
+        from concurrent.futures import FIRST_COMPLETED, wait
+
+        done, _ = wait(self._warm, timeout=timeout, return_when=FIRST_COMPLETED)
+        return any(not f.cancelled() and f.exception() is None for f in done)
 
     def submit(self, jobs: list[tuple]) -> list:
         """Start ``_panel(*job)`` of every job; the futures, in order."""
@@ -204,9 +217,14 @@ class PlotWorkers:
     def close(self) -> None:
         """Stop the processes and wait for them (a plot being drawn is finished first, at most about 0.1 s).
 
-        Not waiting would leave the pool's manager thread running into the interpreter's exit, where Python 3.11 may
-        print an ignored ``OSError: Bad file descriptor`` (seen once here: a race between ``concurrent.futures``'
-        exit hook and that thread, which closes the pipe the hook writes to)."""
+        A process still loading matplotlib has nothing to finish: it is ended at once (at the lowest priority on a
+        busy machine its loading could take seconds, and the pool would wait for it). Not waiting would leave the
+        pool's manager thread running into the interpreter's exit, where Python 3.11 may print an ignored
+        ``OSError: Bad file descriptor`` (seen once here: a race between ``concurrent.futures``' exit hook and that
+        thread, which closes the pipe the hook writes to)."""
+        if not all(f.done() for f in self._warm):
+            for proc in self._processes:
+                proc.kill()
         self._pool.shutdown(wait=True, cancel_futures=True)
 
 
@@ -224,8 +242,8 @@ class PanelDrawing:
             self._jobs.append((needed, self.streams, list(events), profile, title, columns, scale, unit))
         self._futures = None
         if plots is not None and self.streams:
-            try:
-                self._futures = plots.submit(self._jobs)
+            try:  # drawn here when no process is ready to draw (see PlotWorkers.ready)
+                self._futures = plots.submit(self._jobs) if plots.ready() else None
             except Exception:  # noqa: BLE001 - no drawing processes: drawn here in result()
                 self._futures = None
 
