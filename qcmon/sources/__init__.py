@@ -9,6 +9,15 @@ from __future__ import annotations
 
 from qcmon.sources._drain import drain
 from qcmon.sources.session import SessionSource, natural_key
-from qcmon.sources.watcher import FolderWatcher, iter_live
 
 __all__ = ["FolderWatcher", "SessionSource", "drain", "iter_live", "natural_key"]
+
+
+def __getattr__(name: str):
+    """``FolderWatcher`` and ``iter_live`` load the file-system watcher library when first asked for: a summary,
+    an audit or a split worker reads finished files and never needs it."""
+    if name in ("FolderWatcher", "iter_live"):
+        from qcmon.sources import watcher
+
+        return getattr(watcher, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
