@@ -314,6 +314,9 @@ class Engine:
                 lo, hi = st.shift._ML_BAND
                 info["registration_rolloff"] = "none" if not math.isfinite(lo) else [lo, hi]
                 info["registration_rolloff_chosen_at"] = st.grow.choices[-1][0] if st.grow.choices else None
+                # the model of a frame: the reference on the frames' own grid, or on a grid twice as fine
+                # (reconstructed from the frames at their fractional shifts, for frames aliased by their pixels)
+                info["registration_model"] = "fine grid" if st.shift._fine else "frame grid"
             if st.range is not None:
                 info.update(saturation_level_origin=st.range.ceiling.origin,
                             saturation_level_text=st.range.ceiling.text, floor_level_dn=st.range.floor.value,

@@ -216,12 +216,15 @@ def _fourier_session(walk: np.ndarray, seed: int, photons: float) -> np.ndarray:
     return np.stack(out)
 
 
-def _after_choice(frames: np.ndarray, walk: np.ndarray, monkeypatch, bands) -> tuple[float, ReferenceGrowth]:
+def _after_choice(frames: np.ndarray, walk: np.ndarray, monkeypatch, bands, *, fine: bool = False
+                  ) -> tuple[float, ReferenceGrowth]:
     """RMS error (px, about the first frames' offset) of frames 120-239, measured with the references (and
-    roll-offs) the growth made at frames 60 and 120, choosing among ``bands``."""
+    roll-offs) the growth made at frames 60 and 120, choosing among ``bands`` (and the fine grid's model if
+    ``fine``)."""
     from qcmon.metrics import reference_growth
 
     monkeypatch.setattr(reference_growth, "ML_BANDS", bands)
+    monkeypatch.setattr(reference_growth, "FINE_CANDIDATE", fine)
     est = _initial(frames)
     growth = ReferenceGrowth(est, initial_frames=30, updates=(60, 120))
     err = _register(frames, est, growth) - walk
@@ -232,14 +235,17 @@ def test_rolloff_choice_keeps_every_frequency_when_frames_move_rigidly(monkeypat
     # Frames that are the specimen moved rigidly (Fourier shift): every frequency carries the shift, and the
     # likelihood without a roll-off is the efficient estimator; the fixed roll-off of the highest frequencies
     # throws away information (measured: 2.4x the Cramér–Rao bound against 1.2-1.4x, bench/bench_shift_models.py)
+    from qcmon.metrics import reference_growth
     from qcmon.metrics.reference_growth import ML_BANDS
 
     walk = _walk(240, 3)
     frames = _fourier_session(walk, 4, 5.0)
-    chosen, growth = _after_choice(frames, walk, monkeypatch, ML_BANDS)
+    chosen, growth = _after_choice(frames, walk, monkeypatch, ML_BANDS, fine=True)
     kept, _ = _after_choice(frames, walk, monkeypatch, (ML_BANDS[0],))  # the default roll-off, as before
     assert [c[0] for c in growth.choices] == [60]  # chosen once here (again from frame 480 on)
-    assert growth.choices[-1][1][0] >= 0.9, growth.choices  # (0.9, 1.4) or every frequency
+    best = growth.choices[-1][1]
+    # every frequency, (0.9, 1.4), or the fine grid's model (which keeps every frequency too)
+    assert best == reference_growth.FINE or best[0] >= 0.9, growth.choices
     assert chosen < 0.8 * kept, (chosen, kept)
 
 
@@ -256,7 +262,7 @@ def test_rolloff_choice_keeps_the_rolloff_when_high_frequencies_do_not_follow_th
     rng = np.random.default_rng(6)
     frames = np.stack([detect(specimen_crop(img, SHAPE, *d) * (20.0 / img.mean()), rng, gain=GAIN, offset=OFFSET,
                               read_noise_dn=READ_NOISE) for d in walk])
-    chosen, growth = _after_choice(frames, walk, monkeypatch, ML_BANDS)
+    chosen, growth = _after_choice(frames, walk, monkeypatch, ML_BANDS, fine=True)
     every, _ = _after_choice(frames, walk, monkeypatch, ((math.inf, math.inf),))
     assert growth.choices[-1][1][0] <= 0.7, growth.choices
     assert chosen < 0.5 * every, (chosen, every)
@@ -268,6 +274,7 @@ def test_rolloff_choice_is_the_same_for_the_same_frames(session, monkeypatch):
     from qcmon.metrics import reference_growth
 
     monkeypatch.setattr(reference_growth, "CHOOSE_AGAIN", 120)
+    monkeypatch.setattr(reference_growth, "FINE_FROM", 60)  # the fine grid's model a candidate at both choices
     walk, frames = session
     runs = []
     for _ in range(2):

@@ -54,6 +54,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from qcmon.metrics._imageops import add_shifted
+from qcmon.metrics.fine_reference import fine_noise, fine_reference
 from qcmon.metrics.registration import ShiftEstimator
 
 __all__ = ["ReferenceGrowth", "REFERENCE_UPDATES"]
@@ -67,6 +68,18 @@ ML_BANDS: tuple[tuple[float, float], ...] = ((0.5, 1.0), (0.9, 1.4), (math.inf, 
 #: The roll-off of the yardstick the choice measures bias against (low frequencies move alike in every model of
 #: motion: its bias stayed within 0.8x the bound on four, see ``bench/bench_shift_models.py``)
 YARDSTICK_BAND = (0.25, 0.5)
+#: The choice's other candidate: the likelihood with a reference on a grid twice as fine, reconstructed from the
+#: frames at their many fractional shifts (:mod:`qcmon.metrics.fine_reference`), for frames aliased by their pixels
+FINE = "fine grid"
+#: Whether the choice considers :data:`FINE`
+FINE_CANDIDATE = True
+#: Fewest joined frames for a choice to consider :data:`FINE` (its reference holds four unknowns per frequency, and
+#: its cross-fitted test halves the frames again: with 60 frames at 1.5 photons/px it was chosen and the first
+#: seconds' error rose from 2.0 to 2.5x the bound on the pixel-area harness)
+FINE_FROM = 240
+#: :data:`FINE` is chosen only when its measured error (mean square) is below this fraction of the best roll-off's:
+#: it costs more per frame (README, performance)
+FINE_GAIN = 0.95
 #: Fewest joined frames for an update to choose the roll-off (fewer: the estimator's stays)
 CHOOSE_FROM = 60
 #: The roll-off is chosen twice: at the first update with CHOOSE_FROM joined frames, and again (with more frames to
@@ -129,6 +142,11 @@ class ReferenceGrowth:
         #: ``(frames seen, chosen band, {band: mse})``
         self.choices: list[tuple[int, tuple[float, float], dict]] = []
         self.band: tuple[float, float] | None = None  # the roll-off last chosen (None: the initial estimator's)
+        #: whether the last choice was the model on the fine grid (:data:`FINE`); ``band`` is then the roll-off of its
+        #: model on the frames' grid (frames with clipped pixels, large shifts)
+        self.fine = False
+        self._whole = 0  # the largest whole-pixel shift (binned px) of a joined frame
+        self._offset = (0.0, 0.0)  # the accumulated reference's shift to the initial one at the last update
 
     @property
     def settled(self) -> bool:
@@ -155,6 +173,7 @@ class ReferenceGrowth:
         if acc is None:
             acc = self._sums[k] = np.zeros(binned.shape, dtype=np.float32)
         add_shifted(binned, ny, nx, acc)  # acc(x) += frame(x + n): the frame moved back by its whole pixels
+        self._whole = max(self._whole, abs(ny), abs(nx))
         self._count[k] += 1
         self._frac[k, 0] += fy
         self._frac[k, 1] += fx
@@ -204,7 +223,13 @@ class ReferenceGrowth:
                   for b in range(len(self._sums) // 2)]
         return ref.astype(np.float32, copy=False), halves
 
-    def _choose_band(self, ref: np.ndarray, halves: list) -> tuple[float, float] | None:
+    def _choice_due(self) -> bool:
+        """Whether this update chooses the likelihood's model (see :meth:`_choose_band`)."""
+        due = not self.choices or (len(self.choices) == 1 and self.seen >= CHOOSE_AGAIN)
+        return self.joined >= CHOOSE_FROM and due
+
+    def _choose_band(self, ref: np.ndarray, halves: list, fine: tuple[np.ndarray, int] | None = None
+                     ) -> tuple[float, float] | None:
         """The likelihood roll-off (of :data:`ML_BANDS`) with the smallest measured error, at the first update with
         :data:`CHOOSE_FROM` joined frames and the first at or after :data:`CHOOSE_AGAIN` frames measured; otherwise
         (and with fewer than four phase bins holding two halves) the last choice (None before any: the initial
@@ -223,8 +248,7 @@ class ReferenceGrowth:
         the groups' means would favour the estimator that aligned them. The choice minimises bias² + variance.
         """
         pairs = [(a, b) for a, b in halves if a[0] is not None and b[0] is not None]
-        due = not self.choices or (len(self.choices) == 1 and self.seen >= CHOOSE_AGAIN)
-        if self.joined < CHOOSE_FROM or not due or len(pairs) < 4:
+        if not self._choice_due() or len(pairs) < 4:
             return self.band
         na = np.array([a[1] for a, _ in pairs], dtype=np.float64)
         nb = np.array([b[1] for _, b in pairs], dtype=np.float64)
@@ -245,6 +269,7 @@ class ReferenceGrowth:
             return self.band
         frames, truth, drawn_ref = trials
         scores = {}
+        full_noise = None
         for band in ML_BANDS:
             x = measured(band)
             if x is None:
@@ -258,14 +283,163 @@ class ReferenceGrowth:
             err = got - truth
             if not np.all(np.isfinite(err)):
                 continue
-            _, bias2 = _mean_square(x - yard, na, nb)
-            scores[band] = max(bias2, 0.0) + float(np.mean((err - err.mean(axis=0)) ** 2))
+            noise_var, bias2 = _mean_square(x - yard, na, nb)
+            var = float(np.mean((err - err.mean(axis=0)) ** 2))
+            scores[band] = max(bias2, 0.0) + var
+            if fine is not None and not math.isfinite(band[0]):
+                full_noise = noise_var  # one frame's variance of a difference to the yardstick (every frequency)
         if not scores:
             return self.band
-        best = min(scores, key=scores.get)
+        band_best = min(scores, key=scores.get)
+        if fine is not None and full_noise is not None:
+            score = self._fine_score(ref, fine, band_best, full_noise)
+            if score is not None:
+                scores[FINE] = score
+        # the fine grid's model costs about 1.5x the frame's registration: it must pay for itself
+        best = FINE if FINE in scores and scores[FINE] < FINE_GAIN * scores[band_best] else band_best
         self.choices.append((self.seen, best, scores))
-        self.band = best
-        return best
+        self.band = band_best
+        self.fine = best == FINE
+        return band_best
+
+    def _fine_score(self, ref: np.ndarray, fine: tuple[np.ndarray, int], band, noise_var: float) -> float | None:
+        """The measured error (bias² + variance, px²) of the likelihood with the fine reference, as
+        :meth:`_choose_band` measures the others'.
+
+        *Bias*, cross-fitted: the fine reference made from one half of every phase bin measures the mean of the
+        other half *as its frames were* (moved back by whole pixels only: a mean moved back by the Fourier shift is
+        no longer a frame at any shift of the fine model), less the yardstick's shift of the same mean; the groups'
+        mean square less their noise (``noise_var``, one frame's variance of such a difference, as measured for
+        the estimator with every frequency), less the error a reference of half the frames adds by its own noise
+        (twice the full reference's, measured below). A reference made from the very frames it is tested on would
+        follow their noise and their departures from a rigid shift (measured: a quarter of the error it then made
+        on frames moved by a cubic spline). *Variance*: frames drawn from the fine reference itself (moved by the shift
+        theorem on its grid, read at the frame's pixels, the detector's noise), measured against a fine reference
+        made from the bin means drawn again with their photons (its own noise counts, as in the session).
+        """
+        image, edge = fine
+        p = self.PHASES
+        bins = [k for k in range(p * p) if self._count[2 * k] > 0 and self._count[2 * k + 1] > 0
+                and self._sums[2 * k] is not None and self._sums[2 * k + 1] is not None]
+        if len(bins) < 4 or noise_var is None:
+            return None
+        halves = [self._fine_model(self._offset, h) for h in (0, 1)]
+        if any(h is None for h in halves):
+            return None
+        try:
+            est = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band,
+                                              fine_reference=image, fine_edge=edge)
+            # the reference of each half: the other half's frames test it
+            cross = [self.initial.with_reference(ref, reference_frames=self.joined / 2, ml_band=band,
+                                                 fine_reference=h[0], fine_edge=max(h[1], edge)) for h in halves]
+            yard = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=YARDSTICK_BAND)
+        except ValueError:
+            return None
+        x = []
+        with np.errstate(all="ignore"):
+            for k in bins:
+                row = []
+                for h in (0, 1):
+                    mean = self._sums[2 * k + h] / np.float32(self._count[2 * k + h])
+                    row.append(np.array(cross[1 - h].estimate_binned(mean)[:2])
+                               - np.array(yard.estimate_binned(mean)[:2]))
+                x.append(row)
+        x = np.array(x)
+        if not np.all(np.isfinite(x)):
+            return None
+        na = np.array([self._count[2 * k] for k in bins], dtype=np.float64)
+        nb = np.array([self._count[2 * k + 1] for k in bins], dtype=np.float64)
+        n = na + nb
+        group = (na[:, None] * x[:, 0] + nb[:, None] * x[:, 1]) / n[:, None]
+        bias2 = float(np.sum(n[:, None] * group ** 2) / (2 * n.sum())) - len(n) * noise_var / n.sum()
+        trials = self._fine_trials(image)
+        if trials is None:
+            return None
+        frames, truth = trials
+        # measured against a fine reference made from bin means drawn from it with their photons: its own noise
+        # counts, as it does in the session
+        drawn = self._fine_model(self._offset, rng=np.random.default_rng(20261205), model=image)
+        if drawn is None:
+            return None
+        try:
+            est_drawn = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band,
+                                                    fine_reference=drawn[0], fine_edge=drawn[1])
+        except ValueError:
+            return None
+        with np.errstate(all="ignore"):
+            err = np.array([est_drawn.estimate_binned(f)[:2] for f in frames]) - truth
+            err_clean = np.array([est.estimate_binned(f)[:2] for f in frames]) - truth
+        if not (np.all(np.isfinite(err)) and np.all(np.isfinite(err_clean))):
+            return None
+        var = float(np.mean((err - err.mean(axis=0)) ** 2))
+        # the cross-fitted differences also hold the error of a reference made from half the frames: twice the
+        # reference's own part of the variance (measured: drawn reference against the model itself)
+        var_ref = max(var - float(np.mean((err_clean - err_clean.mean(axis=0)) ** 2)), 0.0)
+        return max(bias2 - 2.0 * var_ref, 0.0) + var
+
+    def _fine_trials(self, image: np.ndarray) -> tuple[list[np.ndarray], np.ndarray] | None:
+        """:attr:`TRIALS` binned frames drawn from the fine reference ``image`` — moved by a random subpixel shift
+        (the shift theorem on its grid), read at the frame's pixels (its even samples), the detector's noise — and
+        their shifts (original px); None without a known gain. Seeded like :meth:`_trial_frames`."""
+        det = self._binned_detector()
+        if det is None:
+            return None
+        rng = np.random.default_rng(20261204)
+        shifts = rng.uniform(-0.5, 0.5, (self.TRIALS, 2))
+        frames = [_drawn(_fine_moved(image, (sy, sx)), rng, *det) for sy, sx in shifts]
+        return frames, shifts * self.initial.bin_factor
+
+    def _binned_detector(self) -> tuple[float, float, float] | None:
+        """The detector for a binned frame: (dark level, gain, read noise) in DN per binned px; None without a
+        known gain."""
+        dark, gain, read_noise = self.initial.detector
+        if gain is None or not (math.isfinite(gain) and gain > 0):
+            return None
+        b = self.initial.bin_factor
+        dark_b = b * b * float(dark) if dark is not None and math.isfinite(dark) else 0.0
+        rn = float(read_noise) * b if read_noise is not None and math.isfinite(read_noise) else 0.0
+        return dark_b, float(gain), rn
+
+    def _frac_mean(self, parts: list[int]) -> np.ndarray:
+        """The mean fractional shift (binned px) of the frames in the sums ``parts``."""
+        return sum(self._frac[j] for j in parts) / float(sum(self._count[j] for j in parts))
+
+    def _fine_model(self, offset: tuple[float, float], half: int | None = None,
+                    rng: np.random.Generator | None = None, model: np.ndarray | None = None
+                    ) -> tuple[np.ndarray, int] | None:
+        """The reference on the fine grid from the phase bins (both halves), in the initial reference's coordinates
+        (the bins' shifts less the accumulated reference's ``offset`` to it), and the margin (binned px) where it is
+        not the specimen's: the largest whole-pixel move of a joined frame (whose edge pixels were repeated) and 2 px
+        of ringing. None without a known gain, with fewer than 4 phase bins, or when that margin exceeds an eighth of
+        the frame. ``half`` (0 or 1): from that half of every bin only. ``rng`` and ``model`` (a fine reference):
+        every bin's mean drawn from ``model`` at the bin's shift with the bin's photons (Poisson at the detector's
+        gain, read noise), as :meth:`_trial_frames` draws a reference."""
+        det = self._binned_detector()
+        if det is None:
+            return None
+        p = self.PHASES
+        means, shifts, counts = [], [], []
+        for k in range(p * p):
+            parts = [j for j in ((2 * k, 2 * k + 1) if half is None else (2 * k + half,))
+                     if self._count[j] > 0 and self._sums[j] is not None]
+            if not parts:
+                continue
+            n = int(sum(self._count[j] for j in parts))
+            means.append(sum(self._sums[j] for j in parts) / np.float32(n))
+            shifts.append(self._frac_mean(parts) + np.asarray(offset))
+            if rng is not None:  # the bin's mean drawn anew from the fine model at the bin's shift, its photons
+                means[-1] = _drawn(_fine_moved(model, shifts[-1]), rng, *det, frames=float(n))
+            counts.append(n)
+        if len(means) < 4:
+            return None
+        edge = self._whole + 2
+        mb, nb = means[0].shape
+        if edge >= min(mb, nb) // 8:
+            return None
+        dark_b, gain, rn = det
+        mean = np.sum([m * c for m, c in zip(means, counts)], axis=0) / sum(counts)
+        noise = fine_noise(mean, dark_b, gain, rn)
+        return fine_reference(means, shifts, counts, noise=noise, edge=edge), edge
 
     #: Frames drawn from the new reference to measure each candidate's variance
     TRIALS = 16
@@ -278,27 +452,15 @@ class ReferenceGrowth:
         session's; the reference itself already holds that much noise, so this errs toward the roll-off); None
         without a known gain. The same seed at every update: the same frames give the same choice, live or
         offline."""
-        dark, gain, read_noise = self.initial.detector
-        if gain is None or not (math.isfinite(gain) and gain > 0):
+        det = self._binned_detector()
+        if det is None:
             return None
-        b = self.initial.bin_factor
-        dark_b = b * b * float(dark) if dark is not None and math.isfinite(dark) else 0.0
-        rn = float(read_noise) * b if read_noise is not None and math.isfinite(read_noise) else 0.0
         rng = np.random.default_rng(20261203)
         shifts = rng.uniform(-0.5, 0.5, (self.TRIALS, 2))
         moved = _moved_back_each([ref] * self.TRIALS, -shifts)  # content moved by +shift
-        frames = []
-        for lam in moved:
-            photons = np.clip(lam.astype(np.float64) - dark_b, 0.0, None) / gain
-            frame = rng.poisson(photons) * gain + dark_b
-            if rn > 0:
-                frame = frame + rng.normal(0.0, rn, frame.shape)
-            frames.append(frame.astype(np.float32))
-        n = float(self.joined)
-        drawn = rng.poisson(np.clip(ref.astype(np.float64) - dark_b, 0.0, None) * (n / gain)) * (gain / n) + dark_b
-        if rn > 0:
-            drawn = drawn + rng.normal(0.0, rn / math.sqrt(n), drawn.shape)
-        return frames, shifts * b, drawn.astype(np.float32)
+        frames = [_drawn(lam, rng, *det) for lam in moved]
+        drawn = _drawn(ref, rng, *det, frames=float(self.joined))
+        return frames, shifts * self.initial.bin_factor, drawn
 
     def _rebuild(self) -> ShiftEstimator | None:
         groups = self._groups()
@@ -317,14 +479,44 @@ class ReferenceGrowth:
                               f"{res.dx_px:.2f} px)")
             return None
         ref = _moved_back_each([ref], [(oy, ox)])[0]
-        band = self._choose_band(ref, halves)
+        self._offset = (oy, ox)
+        fine = None
+        if FINE_CANDIDATE and (self.fine or (self._choice_due() and self.joined >= FINE_FROM)):
+            fine = self._fine_model((oy, ox))
+        band = self._choose_band(ref, halves, fine)
         try:
-            new = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band)
+            if self.fine and fine is not None:
+                new = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band,
+                                                  fine_reference=fine[0], fine_edge=fine[1])
+            else:
+                new = self.initial.with_reference(ref, reference_frames=self.joined, ml_band=band)
         except ValueError as err:
             self.notes.append(f"reference not renewed at frame {self.seen} of it: {err}")
             return None
         self.frames = self.joined
         return new
+
+
+def _drawn(lam: np.ndarray, rng: np.random.Generator, dark_b: float, gain: float, rn: float, *,
+           frames: float = 1.0) -> np.ndarray:
+    """The mean of ``frames`` frames drawn from expected values ``lam`` (DN) under the detector's model: Poisson
+    photons at ``gain`` DN each above ``dark_b``, Gaussian read noise ``rn`` DN; float32."""
+    photons = np.clip(np.asarray(lam, dtype=np.float64) - dark_b, 0.0, None) / (gain / frames)
+    out = rng.poisson(photons) * (gain / frames) + dark_b
+    if rn > 0:
+        out = out + rng.normal(0.0, rn / math.sqrt(frames), out.shape)
+    return out.astype(np.float32)
+
+
+def _fine_moved(image: np.ndarray, shift) -> np.ndarray:
+    """A frame of the fine reference ``image`` with its content moved by ``shift`` (binned px; the shift theorem
+    on the fine grid), read at the frame's pixels (the even samples), float64."""
+    mf, nf = image.shape
+    ky = sfft.fftfreq(mf)[:, None]
+    kx = sfft.rfftfreq(nf)[None, :]
+    spec = sfft.rfft2(image.astype(np.float64))
+    spec *= np.exp(-2j * np.pi * (ky * 2 * shift[0] + kx * 2 * shift[1]))
+    return sfft.irfft2(spec, s=(mf, nf))[::2, ::2]
 
 
 def _mean_square(x: np.ndarray, na: np.ndarray, nb: np.ndarray) -> tuple[float, float]:

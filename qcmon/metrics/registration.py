@@ -156,6 +156,8 @@ class ShiftEstimator:
     _ML_FLOOR = 0.02  # least expected count of the likelihood model, as a fraction of the reference's mean
     _ML_STEPS = 2  # Newton steps of the maximum-likelihood refinement (from within 0.1 binned px: quadratic)
     _ML_BAND = (0.5, 1.0)  # the likelihood's frequencies roll off between these fractions of the Nyquist frequency
+    _fine = False  # whether the likelihood models the frame with a reference on a grid twice as fine (_ml_setup_fine)
+    _FINE_STEPS = 1  # Fisher scoring steps with the fine model, from the likelihood's estimate on the frame's grid
 
     def __init__(self, reference, *, upsample: int = 20, bin_factor: int | None = None, window: bool = True,
                  max_shift_px: float | None = None, workers: int = 1, dark_level: float | None = None,
@@ -294,7 +296,8 @@ class ShiftEstimator:
         return self._facts
 
     def with_reference(self, binned_reference: np.ndarray, *, reference_frames: float,
-                       ml_band: tuple[float, float] | None = None) -> "ShiftEstimator":
+                       ml_band: tuple[float, float] | None = None, fine_reference: np.ndarray | None = None,
+                       fine_edge: int = 0) -> "ShiftEstimator":
         """A copy of this estimator (same binning, band, range and detector) measuring against a new reference.
 
         Parameters
@@ -309,6 +312,16 @@ class ShiftEstimator:
             Where the likelihood's frequencies roll off (fractions of the binned Nyquist frequency, as
             ``_ML_BAND``; ``(inf, inf)`` keeps every frequency), e.g. chosen by the growing reference from how its
             frames follow a rigid shift (:mod:`qcmon.metrics.reference_growth`). None keeps this estimator's.
+        fine_reference : (2 M // bin_factor, 2 N // bin_factor) array_like, optional
+            The reference on a grid twice as fine (binned px of half the size; sample ``(2y, 2x)`` is binned pixel
+            ``(y, x)``), e.g. :func:`qcmon.metrics.fine_reference.fine_reference`, denoised: the likelihood then
+            models a frame as this reference moved and sampled at the frame's pixels (:meth:`_ml_setup_fine`), which
+            follows a frame aliased by its pixels' area at every fractional shift. Frames with unusable pixels, and
+            shifts of ``fine_edge`` binned px or more, keep the model of ``binned_reference``.
+        fine_edge : int, optional
+            Binned px at each edge where ``fine_reference`` is not the specimen's (at least 2; see
+            :mod:`qcmon.metrics.fine_reference`). The estimator's window is zero over twice this margin, for every
+            frame, so that no weighted frame pixel meets those parts at a shift the fine model measures.
         """
         refb = np.asarray(binned_reference)
         if refb.shape != self._bshape:
@@ -322,12 +335,36 @@ class ShiftEstimator:
             lo, hi = (float(v) for v in ml_band)
             if not (0 < lo <= hi):
                 raise ValueError(f"ml_band must be (low, high) with 0 < low <= high, got {ml_band!r}")
+        fine = None
+        if fine_reference is not None:
+            mb, nb = self._bshape
+            fine = np.asarray(fine_reference, dtype=np.float64)
+            if fine.shape != (2 * mb, 2 * nb):
+                raise ValueError(f"fine_reference must have twice the binned shape, {(2 * mb, 2 * nb)}, got "
+                                 f"{fine.shape}")
+            if not np.all(np.isfinite(fine)):
+                raise ValueError("fine_reference has non-finite samples")
+            edge = int(fine_edge)
+            if not (2 <= edge < min(mb, nb) // 8) or not self.window:
+                raise ValueError(f"fine_edge must be 2 to an eighth of the binned {mb} x {nb} frame (and the "
+                                 f"estimator windowed), got {fine_edge!r}")
         new = copy.copy(self)
         if ml_band is not None:
             new._ML_BAND = (lo, hi)  # this estimator's own roll-off (the class's is the default)
         new.out_of_range = False
+        new._wm_last = None
+        new._fine = False
+        if fine is not None:
+            # the window of every frame leaves out the edges where the fine reference is not the specimen's
+            mb, nb = self._bshape
+            win = np.zeros((mb, nb), np.float32)
+            e2 = 2 * edge
+            win[e2:mb - e2, e2:nb - e2] = _tukey2d((mb - 2 * e2, nb - 2 * e2), self._ALPHA)
+            new._win = win
         new._set_reference(refb)
         new._ml_setup(refb, *self._facts, reference_frames)
+        if fine is not None:
+            new._ml_setup_fine(fine, edge)
         return new
 
     # ------------------------------------------------------------------ maximum likelihood
@@ -345,12 +382,7 @@ class ShiftEstimator:
             rn2 = read_noise_dn ** 2 if read_noise_dn is not None and math.isfinite(read_noise_dn) else 0.0
             noise = (gain * float(np.clip(rb, 0.0, None).sum()) + rb.size * b2 * rn2) / float(reference_frames)
         rd, wiener = _wiener_denoise(rb, self._ml_rolloff(), noise=noise)
-        mean_sig = float(np.mean(np.clip(rd, 0.0, None)))
-        floor = 0.0
-        if gain is not None and read_noise_dn is not None and math.isfinite(gain) and gain > 0 \
-                and math.isfinite(read_noise_dn):
-            floor = b2 * read_noise_dn ** 2 / gain  # read noise as extra Poisson counts (DN above dark)
-        floor = max(floor, self._ML_FLOOR * mean_sig, 1e-6 * max(abs(mean_sig), 1e-30))
+        floor = self._ml_floor(rd)
         # a constant added to the model keeps the frame's expected counts and the model equal up to a constant
         # (which the likelihood's window correction absorbs); clipping negative ringing would not
         # The same constant is added to the frame (as read noise is in the model of Huang et al. 2013, Nat. Methods
@@ -388,6 +420,65 @@ class ShiftEstimator:
         self._ml_reach = (max(0.5 * taper * mb, 1.0), max(0.5 * taper * nb, 1.0))  # binned px
         self._ml_uy = (_TWO_PI / mb) * _signed_freqs(mb, mb)
         self._ml_ux = (_TWO_PI / nb) * np.arange(nb // 2 + 1, dtype=np.float64)
+
+    def _ml_floor(self, rd: np.ndarray) -> float:
+        """The least expected count (DN above dark, per binned px) of the likelihood's model of reference ``rd``:
+        the read noise as extra Poisson counts, at least :attr:`_ML_FLOOR` of its mean."""
+        _, gain, read_noise_dn = self._facts
+        mean_sig = float(np.mean(np.clip(rd, 0.0, None)))
+        floor = 0.0
+        if gain is not None and read_noise_dn is not None and math.isfinite(gain) and gain > 0 \
+                and math.isfinite(read_noise_dn):
+            floor = self.bin_factor ** 2 * read_noise_dn ** 2 / gain  # read noise as extra Poisson counts
+        return max(floor, self._ML_FLOOR * mean_sig, 1e-6 * max(abs(mean_sig), 1e-30))
+
+    def _ml_setup_fine(self, fine: np.ndarray, edge: int) -> None:
+        """Precompute the model of a frame for a reference on a grid twice as fine (see :meth:`_ml_refine_fine`).
+
+        The frame's pixel ``x`` (binned px) expects the fine reference's value at ``2x - 2d`` at shift ``d``: the
+        fine model moved by the shift theorem and read at its even samples.
+        """
+        mb, nb = self._bshape
+        mf, nf = 2 * mb, 2 * nb
+        rd = fine - self._dark_b
+        v = 2 * edge  # fine px at each edge that are not the specimen's
+        inner = (slice(v, mf - v), slice(v, nf - v))
+        floor = self._ml_floor(rd[inner])
+        add = floor + max(0.0, -float(rd[inner].min()))
+        lam = np.maximum(rd + add, floor)
+        # The model is moved by the shift theorem, periodic over the fine grid: across its edges it would jump, and
+        # the derivative of a jump rings over the whole image. Over the margin (which no weighted frame pixel meets
+        # at a shift measured here) the model is drawn smoothly to its mean, so that it wraps around continuously.
+        mean = float(lam[inner].mean())
+        ty, tx = (np.sin(0.5 * np.pi * np.clip(np.minimum(np.arange(k), k - 1 - np.arange(k)) / v, 0, 1)) ** 2
+                  for k in (mf, nf))
+        lam = mean + (lam - mean) * (ty[:, None] * tx[None, :])
+        self._fine_spec = sfft.rfft2(lam).astype(np.complex64)
+        uy = (_TWO_PI / mf) * _signed_freqs(mf, mf)
+        ux = (_TWO_PI / nf) * np.arange(nf // 2 + 1, dtype=np.float64)
+        # spectral derivatives per binned px of shift (lam(2x - 2d): -2 d/du), the Nyquist terms (no derivative
+        # for a real signal) left out
+        dy, dx = -2j * uy, -2j * ux
+        dy[mf // 2] = 0.0
+        dx[-1] = 0.0
+        self._fine_dy, self._fine_dx = dy.astype(np.complex64), dx.astype(np.complex64)
+        self._fine_uy, self._fine_ux = uy, ux
+        self._fine_flip_rows = (-np.arange(mb)) % mb
+        self._fine_add = add
+        self._fine_reach = edge - 1.0
+        self._fine = True
+
+    def _fine_sampled(self, rows: np.ndarray) -> np.ndarray:
+        """The image at the frame's pixels (the fine grid's even samples) of a fine half spectrum whose two halves of
+        rows are already summed (``rows``, the frame's rows by the fine grid's columns): its columns folded onto
+        the frame grid's (each frame frequency is the sum of its two fine ones per axis)."""
+        mb, nb = self._bshape
+        half = nb // 2
+        out = np.empty((mb, half + 1), dtype=np.complex64)
+        np.add(rows[:, :half], np.conj(rows[self._fine_flip_rows, nb:half:-1]), out=out[:, :half])
+        out[:, half] = rows[:, half]
+        out *= np.complex64(0.25)
+        return _fft.irfft2(out, self._bshape, self.workers)
 
     def _ml_rolloff(self) -> np.ndarray:
         """Radial cosine roll-off of the highest binned frequencies (between the fractions ``_ML_BAND`` of the
@@ -434,7 +525,63 @@ class ShiftEstimator:
             r = self._ml_masked(g_full, gb, c1, cy, cx, vmask)
             if r is None:
                 return None
-        uy, ux = self._ml_uy, self._ml_ux
+        return self._newton(r, self._ml_uy, self._ml_ux, cy, cx, 1.0)
+
+    def _ml_refine_fine(self, g: np.ndarray, cy: float, cx: float) -> tuple[float, float] | None:
+        """Maximise the Poisson likelihood of the frame ``g`` (binned, as measured) under the fine model
+        (:meth:`_ml_setup_fine`), ``lambda(x) = a * lam_fine(2x - 2d)``, by Fisher scoring from (``cy``, ``cx``).
+
+        Each step computes the model and its two derivatives at the frame's pixels for the current ``d`` (three
+        inverse transforms of the frame's size) and solves ``I step = score`` with ``score = sum w (g / lambda - 1)
+        grad lambda`` and ``I = sum w grad lambda grad lambda^T / lambda`` (``w`` the window). The score is exactly
+        zero for a frame equal to the model, at every shift: no interpolation of the logarithm enters (the
+        logarithm of a sharp model aliases, and its interpolated derivative would bias the shift by up to 0.01 px).
+        The brightness ``a`` is matched over the window at each step. None if the steps leave 1 binned px of the
+        start or the information is singular.
+        """
+        w = self._win
+        gt = g - np.float32(self._dark_b - self._fine_add)
+        sw_g = float(np.sum(w * gt, dtype=np.float64))
+        y, x = cy, cx
+        uy, ux = self._fine_uy, self._fine_ux
+        mb = self._bshape[0]
+        spec, dyv = self._fine_spec, self._fine_dy
+        for _ in range(self._FINE_STEPS):
+            # the model moved by d: the spectrum times exp(-i u 2d); the row halves folded before the columns' ramp
+            ry = np.exp(-2j * uy * y).astype(np.complex64)
+            rx = np.exp(-2j * ux * x).astype(np.complex64)
+            top = spec[:mb] * ry[:mb, None]
+            bot = spec[mb:] * ry[mb:, None]
+            rows = (top + bot) * rx
+            rows_y = (top * dyv[:mb, None] + bot * dyv[mb:, None]) * rx
+            lam = np.maximum(self._fine_sampled(rows), np.float32(1e-30))
+            ly = self._fine_sampled(rows_y)
+            lx = self._fine_sampled(rows * self._fine_dx)
+            a = sw_g / float(np.sum(w * lam, dtype=np.float64))
+            inv = w / lam
+            res = inv * gt - np.float32(a) * w
+            wl = np.float32(a) * inv
+            sy, sx = float(np.vdot(res, ly)), float(np.vdot(res, lx))
+            wly, wlx = wl * ly, wl * lx
+            iyy, iyx, ixx = float(np.vdot(wly, ly)), float(np.vdot(wly, lx)), float(np.vdot(wlx, lx))
+            det = iyy * ixx - iyx * iyx
+            if not (iyy > 0 and det > 0):
+                return None
+            dy = (ixx * sy - iyx * sx) / det
+            dx = (iyy * sx - iyx * sy) / det
+            y += dy
+            x += dx
+            if abs(y - cy) > 1.0 or abs(x - cx) > 1.0:
+                return None
+            if abs(dy) < 1e-4 and abs(dx) < 1e-4:
+                break
+        return y, x
+
+    def _newton(self, r: np.ndarray, uy: np.ndarray, ux: np.ndarray, cy: float, cx: float,
+                reach: float) -> tuple[float, float] | None:
+        """Maximise ``J(y, x) = Re sum_k r(k) exp(i (uy_k y + ux_k x))`` (a half spectrum ``r`` over the angular
+        frequencies ``uy``, ``ux``) by :attr:`_ML_STEPS` Newton steps from (``cy``, ``cx``); None if the surface is
+        not concave there or the steps leave ``reach`` of the start."""
         y, x = cy, cx
         for _ in range(self._ML_STEPS):
             ec = np.exp(1j * ux * x)
@@ -453,7 +600,7 @@ class ShiftEstimator:
             dx = -(hyy * gx - hxy * gy) / det
             y += dy
             x += dx
-            if abs(y - cy) > 1.0 or abs(x - cx) > 1.0:
+            if abs(y - cy) > reach or abs(x - cx) > reach:
                 return None
             if abs(dy) < 1e-4 and abs(dx) < 1e-4:
                 break
@@ -676,6 +823,7 @@ class ShiftEstimator:
             mean = float(np.dot(gb.ravel(), vmask.ravel())) / n_valid  # mean of the usable bins
         elif mean is None:
             mean = float(np.add.reduce(gb, axis=None)) / gb.size  # float32 pairwise summation: rel. error ~1e-7
+        g_in = gb  # as measured, for the fine model's refinement
         gb = np.subtract(gb, np.float32(mean))  # a new array: the caller's binned frame is not modified
         if self._win is not None:
             gb *= self._win
@@ -730,6 +878,9 @@ class ShiftEstimator:
         ml = None
         if use_ml and abs(cy) <= self._ml_reach[0] and abs(cx) <= self._ml_reach[1]:
             ml = self._ml_refine(g_full, mean, cy, cx, vmask, gb)
+            if ml is not None and self._fine and vmask is None and self._ref_vmask is None \
+                    and max(abs(ml[0]), abs(ml[1])) <= self._fine_reach:
+                ml = self._ml_refine_fine(g_in, *ml) or ml
         if ml is not None:
             cy, cx = ml
         elif len(stages) < len(self._stages):  # no refinement after all: the last grid stage
